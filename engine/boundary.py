@@ -8,12 +8,58 @@ particles k (itself included), so unevenly sampled surfaces contribute evenly
 hydrostatic tank test).
 """
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy.spatial import cKDTree
 
 from .kernels import kernel
 
 FACE_NAMES = ("x_min", "x_max", "y_min", "y_max", "z_min", "z_max")
+
+
+@dataclass(frozen=True)
+class BoundaryParticles:
+    """Boundary particles at one moment (what ``World.boundary_at(t)`` provides).
+
+    Attributes:
+        positions: (B, 3) float64, metres.
+        velocities: (B, 3) float64, m/s (non-zero on moving colliders).
+        normals: (B, 3) float64 unit normals pointing into the fluid side.
+        volumes: (B,) float64 Akinci volumes V_b in m^3 (``boundary_volumes``).
+    """
+
+    positions: np.ndarray
+    velocities: np.ndarray
+    normals: np.ndarray
+    volumes: np.ndarray
+
+    @property
+    def count(self):
+        return len(self.positions)
+
+
+def make_boundary(points, normals, support_radius, velocities=None):
+    """BoundaryParticles for static (or given-velocity) samples, volumes computed here.
+
+    Args:
+        points: (B, 3) float positions in metres.
+        normals: (B, 3) float unit normals.
+        support_radius: kernel support H in metres.
+        velocities: optional (B, 3) float m/s; zeros by default.
+    """
+    points = np.asarray(points, np.float64).reshape(-1, 3)
+    normals = np.asarray(normals, np.float64).reshape(-1, 3)
+    if velocities is None:
+        velocities = np.zeros_like(points)
+    return BoundaryParticles(points, np.asarray(velocities, np.float64).reshape(-1, 3), normals,
+                             boundary_volumes(points, support_radius))
+
+
+def empty_boundary():
+    """A BoundaryParticles with no particles."""
+    zeros = np.zeros((0, 3))
+    return BoundaryParticles(zeros, zeros, zeros, np.zeros(0))
 
 
 def boundary_volumes(points, support_radius):
@@ -26,15 +72,16 @@ def boundary_volumes(points, support_radius):
     Returns:
         (B,) float64 volumes.
     """
-    points = np.asarray(points, np.float64)
+    points = np.asarray(points, np.float64).reshape(-1, 3)
     if len(points) == 0:
         return np.zeros(0)
     tree = cKDTree(points)
     pairs = tree.query_pairs(support_radius * (1 - 1e-12), output_type="ndarray")
     w = kernel(np.linalg.norm(points[pairs[:, 0]] - points[pairs[:, 1]], axis=1), support_radius)
-    total = np.full(len(points), kernel(0.0, support_radius))
-    np.add.at(total, pairs[:, 0], w)
-    np.add.at(total, pairs[:, 1], w)
+    n = len(points)
+    total = (np.full(n, float(kernel(0.0, support_radius)))
+             + np.bincount(pairs[:, 0], weights=w, minlength=n)
+             + np.bincount(pairs[:, 1], weights=w, minlength=n))
     return 1.0 / total
 
 

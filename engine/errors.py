@@ -47,6 +47,12 @@ class SolverError(SplashdraftError):
     exit_code = 6
 
 
+class UsageError(SplashdraftError):
+    """A command-line request that cannot be met (e.g. a frame range outside the shot)."""
+
+    exit_code = 64
+
+
 class ValidationFailed(SplashdraftError):
     """A validation case ran but fell outside its published tolerance."""
 

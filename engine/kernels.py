@@ -52,3 +52,26 @@ def kernel_gradient(offsets, support_radius):
     with np.errstate(invalid="ignore", divide="ignore"):
         scale = np.where(r > 1e-12 * support_radius, dwdr / r, 0.0)
     return offsets * scale[:, None]
+
+
+def kernel_terms(distances, support_radius):
+    """W(r) and (dW/dr)/r together, for pair loops (one pass over the distances).
+
+    Args:
+        distances: (P,) float distances in metres, >= 0.
+        support_radius: H in metres.
+
+    Returns:
+        ``(w, f)``: (P,) float64 W in 1/m^3 and (P,) float64 (dW/dr)/r in 1/m^5,
+        so the gradient of W with respect to x_i is ``f * (x_i - x_j)``. On the
+        inner branch (dW/dr)/r = 8/(pi H^5) * 6(3q - 2) has a finite limit at
+        r = 0, so coincident points get a zero gradient without a division.
+    """
+    q = np.asarray(distances, dtype=np.float64) * (1.0 / support_radius)
+    inner = q <= 0.5
+    one_minus = np.clip(1.0 - q, 0.0, None)
+    sigma = 8.0 / (np.pi * support_radius**3)
+    w = np.where(inner, 6.0 * (q - 1.0) * q * q + 1.0, 2.0 * one_minus**3) * sigma
+    scale = sigma / support_radius**2
+    f = np.where(inner, 6.0 * (3.0 * q - 2.0), -6.0 * one_minus * one_minus / np.maximum(q, 0.5)) * scale
+    return w, f

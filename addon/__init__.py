@@ -1,0 +1,25 @@
+"""Splashdraft for Blender: the thin add-on around the engine.
+
+Modules: ``props`` (roles and shot settings), ``export`` (Blender scene ->
+engine scene file), ``jobs`` (the bake worker process; no bpy), ``display``
+(playback of a bake on a points object), ``ops`` (operators), ``ui``
+(the sidebar tab), ``versions`` and ``motion`` (pure helpers; no bpy).
+
+The bpy-using modules are imported in ``register()`` so that the pure
+helpers can be imported (and tested) without Blender.
+"""
+
+
+def _modules():
+    from . import display, ops, props, ui
+    return (props, display, ops, ui)
+
+
+def register():
+    for module in _modules():
+        module.register()
+
+
+def unregister():
+    for module in reversed(_modules()):
+        module.unregister()

@@ -1,0 +1,370 @@
+"""Play a bake back: one points-only mesh object per shot, refilled on every frame change.
+
+The object keeps its name, modifiers and material when the artist switches
+versions; only the vertices and their attributes change. Attributes on the
+points: ``velocity`` (Blender units/s, what motion blur reads), ``speed``
+(m/s), ``id`` (int), ``density`` (kg/m³), ``pressure`` (Pa).
+
+Rendering: a Geometry Nodes modifier turns the vertices into spheres
+(Mesh to Points, radius = point size x spacing) and sets a material coloured by
+speed; an optional second modifier meshes a surface (points -> volume -> mesh).
+
+The frame handler never raises into Blender: a missing or corrupt frame shows
+as empty and is reported once per version.
+"""
+
+from pathlib import Path
+
+import bpy
+import numpy as np
+
+from ..engine.cache import open_cache
+from ..engine.errors import CacheError
+
+POINTS_GROUP = "Splashdraft points"
+SURFACE_GROUP = "Splashdraft surface"
+PASS_GROUP = "Splashdraft pass-through"
+POINTS_MODIFIER = "Splashdraft spheres"
+SURFACE_MODIFIER = "Splashdraft surface"
+MATERIAL_NAME = "Splashdraft liquid"
+SPEED_FOR_WHITE = 3.0  # m/s: speeds at and above this show the lightest colour of the ramp
+
+_readers = {}       # folder -> (manifest mtime_ns, CacheReader)
+_warned = set()     # (folder, kind) already reported
+_last_shown = {}    # display object name -> (folder, frame, mtime) last written
+
+
+def warn_once(key, message):
+    """Print a warning the first time ``key`` is seen (never raises)."""
+    if key in _warned:
+        return
+    _warned.add(key)
+    print(f"Splashdraft warning: {message}")
+
+
+def clear_warnings():
+    _warned.clear()
+    _last_shown.clear()
+
+
+def reader_for(folder):
+    """Open (or reuse) the cache reader of ``folder``; reopened whenever the manifest changes (running bakes).
+
+    Raises:
+        CacheError: no readable cache there.
+    """
+    folder = str(folder)
+    manifest = Path(folder) / "manifest.json"
+    try:
+        mtime = manifest.stat().st_mtime_ns
+    except OSError as exc:
+        raise CacheError(f"{manifest}: no manifest yet; bake this version first") from exc
+    cached = _readers.get(folder)
+    if cached is not None and cached[0] == mtime:
+        return cached[1]
+    reader = open_cache(folder)
+    _readers[folder] = (mtime, reader)
+    return reader
+
+
+def empty_frame():
+    return {"positions": np.zeros((0, 3), np.float32), "velocities": np.zeros((0, 3), np.float32),
+            "ids": np.zeros(0, np.int32), "density": np.zeros(0, np.float32), "pressure": np.zeros(0, np.float32)}
+
+
+def write_points(mesh, arrays, scale_length=1.0):
+    """Replace the vertices of ``mesh`` by the particles of one frame.
+
+    Args:
+        mesh: a bpy Mesh (its vertices and attributes are replaced).
+        arrays: ``positions``, ``velocities`` (N, 3) m and m/s; ``ids``, ``density``, ``pressure`` (N,).
+        scale_length: metres per Blender unit (positions and velocity are divided by it).
+    """
+    positions = np.asarray(arrays["positions"], np.float32)
+    velocities = np.asarray(arrays["velocities"], np.float32)
+    count = len(positions)
+    mesh.clear_geometry()
+    if count:
+        mesh.vertices.add(count)
+        inverse = np.float32(1.0 / scale_length)
+        mesh.attributes["position"].data.foreach_set(
+            "vector", np.ascontiguousarray(positions * inverse if scale_length != 1.0 else positions).ravel())
+    attrs = mesh.attributes
+    values = {
+        "velocity": ("FLOAT_VECTOR", "vector", velocities * np.float32(1.0 / scale_length)),
+        "speed": ("FLOAT", "value", np.sqrt(np.einsum("ij,ij->i", velocities, velocities))),
+        "id": ("INT", "value", np.asarray(arrays["ids"], np.int32)),
+        "density": ("FLOAT", "value", np.asarray(arrays["density"], np.float32)),
+        "pressure": ("FLOAT", "value", np.asarray(arrays["pressure"], np.float32)),
+    }
+    for name, (kind, key, data) in values.items():
+        attribute = attrs.get(name) or attrs.new(name, kind, "POINT")
+        if count:
+            dtype = np.int32 if kind == "INT" else np.float32
+            attribute.data.foreach_set(key, np.ascontiguousarray(data, dtype).ravel())
+    mesh.update()
+
+
+def current_version(scene):
+    """The version row shown for ``scene`` (or None)."""
+    shot = scene.splashdraft
+    if not len(shot.versions):
+        return None
+    index = min(max(shot.versions_index, 0), len(shot.versions) - 1)
+    return shot.versions[index]
+
+
+def frame_arrays(folder, frame):
+    """Arrays of ``frame`` in the bake ``folder``, or an empty frame (warned once) when it cannot be read."""
+    try:
+        reader = reader_for(folder)
+    except CacheError as exc:
+        warn_once((folder, "open"), str(exc))
+        return empty_frame()
+    if str(int(frame)) not in reader.manifest["frames"]:
+        return empty_frame()  # outside the baked range (or not baked yet): nothing to show, nothing wrong
+    try:
+        return reader.read_frame(frame)
+    except CacheError as exc:
+        warn_once((folder, "frame"), f"{exc} (showing nothing on frames that fail like this)")
+        return empty_frame()
+
+
+def show_frame(scene, frame=None, force=False):
+    """Fill the scene's liquid object with ``frame`` (default: the current frame) of the shown version.
+
+    Returns the number of points shown, or None when there is nothing to show into.
+    """
+    shot = scene.splashdraft
+    obj = shot.display_object
+    if obj is None or obj.type != "MESH":
+        return None
+    frame = scene.frame_current if frame is None else int(frame)
+    version = current_version(scene)
+    folder = version.folder if version is not None else ""
+    manifest = Path(folder) / "manifest.json" if folder else None
+    try:
+        mtime = manifest.stat().st_mtime_ns if manifest is not None else 0
+    except OSError:
+        mtime = 0
+    key = (folder, frame, mtime)
+    if not force and _last_shown.get(obj.name) == key:
+        return len(obj.data.vertices)
+    arrays = frame_arrays(folder, frame) if folder else empty_frame()
+    write_points(obj.data, arrays, float(scene.unit_settings.scale_length) or 1.0)
+    _last_shown[obj.name] = key
+    return len(arrays["positions"])
+
+
+@bpy.app.handlers.persistent
+def on_frame_change(scene, depsgraph=None):
+    """frame_change_pre handler: show the new frame; never raises into Blender's loop."""
+    try:
+        show_frame(scene)
+    except Exception as exc:  # noqa: BLE001 - a handler must not break playback or rendering
+        warn_once(("handler", type(exc).__name__), f"could not show frame {scene.frame_current}: {exc}")
+
+
+@bpy.app.handlers.persistent
+def on_file_loaded(*_args):
+    """load_post handler: forget readers and warnings of the previous file."""
+    _readers.clear()
+    clear_warnings()
+
+
+# --- building the object, its node groups and material ------------------------------------------
+
+def _new_group(name):
+    group = bpy.data.node_groups.get(name)
+    if group is not None:
+        return group, False
+    group = bpy.data.node_groups.new(name, "GeometryNodeTree")
+    group.interface.new_socket("Geometry", in_out="INPUT", socket_type="NodeSocketGeometry")
+    group.interface.new_socket("Geometry", in_out="OUTPUT", socket_type="NodeSocketGeometry")
+    return group, True
+
+
+def _input_socket(group, name, socket_type, default, minimum=0.0):
+    socket = group.interface.new_socket(name, in_out="INPUT", socket_type=socket_type)
+    socket.default_value = default
+    if hasattr(socket, "min_value"):
+        socket.min_value = minimum
+    return socket
+
+
+def liquid_material():
+    """Material coloured by the ``speed`` attribute: deep blue when still, near white when fast."""
+    material = bpy.data.materials.get(MATERIAL_NAME)
+    if material is not None:
+        return material
+    material = bpy.data.materials.new(MATERIAL_NAME)
+    if material.node_tree is None:  # 4.2 makes no tree until use_nodes is set (5.0 always has one)
+        material.use_nodes = True
+    nodes, links = material.node_tree.nodes, material.node_tree.links
+    shader = next(n for n in nodes if n.type == "BSDF_PRINCIPLED")
+    attribute = nodes.new("ShaderNodeAttribute")
+    attribute.attribute_name = "speed"
+    scale = nodes.new("ShaderNodeMapRange")
+    scale.inputs["From Max"].default_value = SPEED_FOR_WHITE
+    ramp = nodes.new("ShaderNodeValToRGB")
+    ramp.color_ramp.elements[0].color = (0.02, 0.10, 0.35, 1.0)
+    ramp.color_ramp.elements[1].color = (0.85, 0.95, 1.0, 1.0)
+    links.new(attribute.outputs["Fac"], scale.inputs["Value"])
+    links.new(scale.outputs["Result"], ramp.inputs["Fac"])
+    links.new(ramp.outputs["Color"], shader.inputs["Base Color"])
+    shader.inputs["Roughness"].default_value = 0.15
+    material.diffuse_color = (0.1, 0.3, 0.8, 1.0)
+    return material
+
+
+def points_group(material):
+    """Mesh to Points (radius input) + Set Material."""
+    group, is_new = _new_group(POINTS_GROUP)
+    if not is_new:
+        return group
+    _input_socket(group, "Radius", "NodeSocketFloat", 0.01)
+    nodes, links = group.nodes, group.links
+    source, sink = nodes.new("NodeGroupInput"), nodes.new("NodeGroupOutput")
+    to_points = nodes.new("GeometryNodeMeshToPoints")
+    set_material = nodes.new("GeometryNodeSetMaterial")
+    set_material.inputs["Material"].default_value = material
+    links.new(source.outputs["Geometry"], to_points.inputs["Mesh"])
+    links.new(source.outputs["Radius"], to_points.inputs["Radius"])
+    links.new(to_points.outputs["Points"], set_material.inputs["Geometry"])
+    links.new(set_material.outputs["Geometry"], sink.inputs["Geometry"])
+    return group
+
+
+def surface_group(material):
+    """Points -> volume (radius, voxel size inputs) -> mesh, smooth shaded, with the liquid material."""
+    group, is_new = _new_group(SURFACE_GROUP)
+    if not is_new:
+        return group
+    _input_socket(group, "Radius", "NodeSocketFloat", 0.02)
+    _input_socket(group, "Voxel Size", "NodeSocketFloat", 0.01, minimum=1e-4)
+    nodes, links = group.nodes, group.links
+    source, sink = nodes.new("NodeGroupInput"), nodes.new("NodeGroupOutput")
+    to_points = nodes.new("GeometryNodeMeshToPoints")
+    to_volume = nodes.new("GeometryNodePointsToVolume")
+    to_mesh = nodes.new("GeometryNodeVolumeToMesh")
+    smooth = nodes.new("GeometryNodeSetShadeSmooth")
+    set_material = nodes.new("GeometryNodeSetMaterial")
+    set_material.inputs["Material"].default_value = material
+    to_volume.inputs["Density"].default_value = 1.0
+    _set_voxel_size_mode(to_volume)
+    _set_voxel_size_mode(to_mesh)
+    links.new(source.outputs["Geometry"], to_points.inputs["Mesh"])
+    links.new(to_points.outputs["Points"], to_volume.inputs["Points"])
+    links.new(source.outputs["Radius"], to_volume.inputs["Radius"])
+    links.new(source.outputs["Voxel Size"], to_volume.inputs["Voxel Size"])
+    links.new(to_volume.outputs["Volume"], to_mesh.inputs["Volume"])
+    links.new(source.outputs["Voxel Size"], to_mesh.inputs["Voxel Size"])
+    links.new(to_mesh.outputs["Mesh"], smooth.inputs[0])
+    links.new(smooth.outputs[0], set_material.inputs["Geometry"])
+    links.new(set_material.outputs["Geometry"], sink.inputs["Geometry"])
+    return group
+
+
+def _set_voxel_size_mode(node):
+    # 4.2 has a node property; 5.0 turned it into a menu input socket.
+    if hasattr(node, "resolution_mode"):
+        node.resolution_mode = "VOXEL_SIZE"
+    elif "Resolution Mode" in node.inputs:
+        node.inputs["Resolution Mode"].default_value = "Size"
+
+
+def pass_through_group():
+    """Input -> output; lets Alembic/USD see the points as an animated mesh (host notes §9)."""
+    group, is_new = _new_group(PASS_GROUP)
+    if is_new:
+        source, sink = group.nodes.new("NodeGroupInput"), group.nodes.new("NodeGroupOutput")
+        group.links.new(source.outputs["Geometry"], sink.inputs["Geometry"])
+    return group
+
+
+def _socket_id(group, name):
+    return group.interface.items_tree[name].identifier
+
+
+def ensure_display_object(scene):
+    """The scene's liquid object, created (with modifiers and material) if missing.
+
+    Returns the bpy Object; also stored in ``scene.splashdraft.display_object``.
+    """
+    shot = scene.splashdraft
+    obj = shot.display_object
+    if obj is None or obj.type != "MESH" or obj.name not in bpy.data.objects:
+        from .paths import shot_name
+        name = f"{shot_name(scene)} liquid"
+        mesh = bpy.data.meshes.new(name)
+        obj = bpy.data.objects.new(name, mesh)
+        scene.collection.objects.link(obj)
+        shot.display_object = obj
+    if obj.name not in scene.objects:
+        scene.collection.objects.link(obj)
+    material = liquid_material()
+    if not obj.data.materials:
+        obj.data.materials.append(material)
+    if POINTS_MODIFIER not in obj.modifiers:
+        obj.modifiers.new(POINTS_MODIFIER, "NODES").node_group = points_group(material)
+    if SURFACE_MODIFIER not in obj.modifiers:
+        modifier = obj.modifiers.new(SURFACE_MODIFIER, "NODES")
+        modifier.node_group = surface_group(material)
+    apply_display_settings(scene)
+    return obj
+
+
+def apply_display_settings(scene):
+    """Point radius, voxel size and the spheres/surface switch from the shot settings."""
+    shot = scene.splashdraft
+    obj = shot.display_object
+    if obj is None:
+        return
+    spacing = float(shot.particle_spacing)
+    version = current_version(scene)
+    if version is not None:
+        # The bake's own spacing wins: the setting may have changed since.
+        try:
+            reader = reader_for(version.folder)
+            scale = float(scene.unit_settings.scale_length) or 1.0
+            spacing = float(reader.manifest.get("particle_spacing", spacing * scale)) / scale
+        except CacheError:
+            pass
+    points = obj.modifiers.get(POINTS_MODIFIER)
+    if points is not None and points.node_group is not None:
+        points[_socket_id(points.node_group, "Radius")] = spacing * shot.point_size
+        points.show_viewport = points.show_render = not shot.use_surface
+    surface = obj.modifiers.get(SURFACE_MODIFIER)
+    if surface is not None and surface.node_group is not None:
+        surface[_socket_id(surface.node_group, "Radius")] = spacing * 1.0
+        surface[_socket_id(surface.node_group, "Voxel Size")] = spacing * 0.5
+        surface.show_viewport = surface.show_render = bool(shot.use_surface)
+    obj.data.update()
+
+
+def refresh(scene):
+    """Re-apply settings and re-show the current frame (after a version switch or setting change)."""
+    try:
+        if scene.splashdraft.display_object is not None:
+            apply_display_settings(scene)
+            show_frame(scene, force=True)
+    except Exception as exc:  # noqa: BLE001 - called from property updates, must not raise into the UI
+        warn_once(("refresh", type(exc).__name__), f"could not refresh the liquid object: {exc}")
+
+
+def register():
+    if on_frame_change not in bpy.app.handlers.frame_change_pre:
+        bpy.app.handlers.frame_change_pre.append(on_frame_change)
+    if on_file_loaded not in bpy.app.handlers.load_post:
+        bpy.app.handlers.load_post.append(on_file_loaded)
+
+
+def unregister():
+    for handlers, function in ((bpy.app.handlers.frame_change_pre, on_frame_change),
+                               (bpy.app.handlers.load_post, on_file_loaded)):
+        for existing in list(handlers):
+            if getattr(existing, "__name__", "") == function.__name__ and \
+                    getattr(existing, "__module__", "") == function.__module__:
+                handlers.remove(existing)
+    _readers.clear()
+    clear_warnings()

@@ -1,0 +1,62 @@
+"""Cache versions of a shot: ``<cache root>/<shot>/v003_sph`` folders (no bpy here).
+
+Every bake writes a new version folder, so earlier bakes stay available to
+compare and swap. A version folder holds the engine's bake output
+(``manifest.json``, ``points_####.ply``, ``checkpoint.npz``; see
+DEVELOPERS.md) and, under ``input/``, the scene file and meshes the add-on
+exported for that bake.
+"""
+
+import json
+import re
+from pathlib import Path
+
+VERSION_PATTERN = re.compile(r"^v(\d{3,})_([a-z]+)$")
+INPUT_FOLDER = "input"
+SCENE_FILE = "scene.json"
+
+
+def safe_name(text, fallback="shot"):
+    """``text`` reduced to letters, digits, ``_`` and ``-`` (for folder and file names)."""
+    cleaned = re.sub(r"[^A-Za-z0-9_-]+", "_", str(text)).strip("_")
+    return cleaned or fallback
+
+
+def list_versions(shot_dir):
+    """Version folders of a shot, oldest first.
+
+    Returns:
+        list of dicts: ``name`` ("v003_sph"), ``number`` (3), ``solver`` ("sph"),
+        ``path`` (Path), ``frames`` (count of finished frames), ``complete`` (bool),
+        ``particles`` (count in the last finished frame), ``readable`` (manifest parsed).
+    """
+    shot_dir = Path(shot_dir)
+    if not shot_dir.is_dir():
+        return []
+    found = []
+    for child in shot_dir.iterdir():
+        match = VERSION_PATTERN.match(child.name)
+        if not match or not child.is_dir():
+            continue
+        info = {"name": child.name, "number": int(match.group(1)), "solver": match.group(2), "path": child,
+                "frames": 0, "complete": False, "particles": 0, "readable": False}
+        try:
+            manifest = json.loads((child / "manifest.json").read_text(encoding="utf-8"))
+            frames = manifest.get("frames", {})
+            info["frames"] = len(frames)
+            info["complete"] = bool(manifest.get("complete", False))
+            if frames:
+                last = max(frames, key=int)
+                info["particles"] = int(frames[last].get("particles", 0))
+            info["readable"] = True
+        except (OSError, ValueError, AttributeError, TypeError):
+            pass  # a version whose bake never started, or a damaged manifest: listed, shown as empty
+        found.append(info)
+    found.sort(key=lambda item: item["number"])
+    return found
+
+
+def next_version_dir(shot_dir, solver):
+    """Path of the next version folder (not created): one past the highest number present."""
+    numbers = [item["number"] for item in list_versions(shot_dir)]
+    return Path(shot_dir) / f"v{(max(numbers) + 1) if numbers else 1:03d}_{safe_name(solver).lower()}"

@@ -1,0 +1,363 @@
+"""The bake loop: scene -> world + solver -> one cached frame after another.
+
+``bake`` writes frame ``frame_start`` (the initial state, t = 0) and then, for
+each following frame f, advances the solver to t = (f - frame_start) / fps,
+writes the frame's PLY, lists it in the manifest and saves the checkpoint.
+
+Cancel: SIGINT (Ctrl-C), SIGTERM and, on Windows, SIGBREAK only raise a flag
+(as does ``should_stop()`` returning true); the frame being computed is
+finished and written, then the bake returns with ``is_cancelled`` set (the
+command line exits with status 130). A second signal interrupts at once; the
+atomic writes of ``engine.cache`` still leave every finished frame readable.
+
+Resume: the checkpoint holds the full State after the last finished frame.
+Between frames the loop keeps nothing but that State, and it continues from
+the State *as reloaded from its checkpoint form* (``state_to_arrays`` then
+``state_from_arrays``) even in an uninterrupted bake, so a resumed bake and an
+uninterrupted one run the solver on identical inputs and write bit-identical
+frames (for a deterministic solver that keeps its warm-start data in State, as
+the Solver protocol requires).
+"""
+
+import dataclasses
+import json
+import signal
+import threading
+import time
+from pathlib import Path
+
+from .cache import MANIFEST_NAME, CacheWriter, open_cache
+from .errors import CacheError, SolverError, SplashdraftError, UsageError
+from .progress import SilentProgress
+from .state import state_from_arrays, state_to_arrays
+
+SOLVER_NAMES = ("sph", "learned")
+
+
+@dataclasses.dataclass(frozen=True)
+class BakeResult:
+    """What one call of ``bake`` did.
+
+    Attributes:
+        cache_dir: the bake folder.
+        solver: solver name.
+        first_frame, last_frame: the range asked for.
+        last_written: the last frame now in the cache (None if none was written).
+        frames_written: frames written by this call.
+        particles: particles in the last written frame.
+        seconds: wall-clock seconds of this call.
+        is_cancelled: stopped early by a signal or ``should_stop``.
+    """
+
+    cache_dir: str
+    solver: str
+    first_frame: int
+    last_frame: int
+    last_written: int
+    frames_written: int
+    particles: int
+    seconds: float
+    is_cancelled: bool
+
+
+def load_scene_any(scene):
+    """A Scene object from a path (str or Path) or a Scene itself."""
+    if isinstance(scene, (str, Path)):
+        from .scene import load_scene
+
+        return load_scene(scene)
+    return scene
+
+
+def scene_hash(scene):
+    """sha256 (hex) of the canonical scene JSON plus the bytes of every file it references."""
+    from .scene import scene_hash as hash_of_scene
+
+    return hash_of_scene(scene)
+
+
+def make_solver(name):
+    """A fresh solver called ``name`` ("sph" or "learned"), imported lazily."""
+    if name == "sph":
+        from .sph import SphSolver
+
+        return SphSolver()
+    if name == "learned":
+        from .learned import LearnedSolver
+
+        return LearnedSolver()
+    raise UsageError(f"solver {name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
+
+
+def frame_time(scene, frame):
+    """Simulated time (s) of ``frame``: (frame - frame_start) / fps."""
+    return (int(frame) - scene.frame_start) / scene.fps
+
+
+def resolve_frames(scene, frames):
+    """(first, last) frames of a bake; ``frames`` is None, (a, b) or "a:b"."""
+    if frames is None:
+        return scene.frame_start, scene.frame_end
+    if isinstance(frames, str):
+        frames = parse_frame_range(frames)
+    first, last = int(frames[0]), int(frames[1])
+    if not scene.frame_start <= first <= last <= scene.frame_end:
+        raise UsageError(
+            f"--frames {first}:{last}: scene {scene.name!r} runs from frame {scene.frame_start} to "
+            f"{scene.frame_end}; pick a range inside it with A <= B"
+        )
+    return first, last
+
+
+def parse_frame_range(text):
+    """'12:40' -> (12, 40); raises UsageError for anything else."""
+    parts = str(text).split(":")
+    try:
+        if len(parts) != 2:
+            raise ValueError
+        return int(parts[0]), int(parts[1])
+    except ValueError:
+        raise UsageError(f"--frames {text!r}: expected two frame numbers as A:B, e.g. 1:48") from None
+
+
+class StopFlag:
+    """Set by SIGINT/SIGTERM (while installed) or by hand; a second signal raises KeyboardInterrupt."""
+
+    def __init__(self):
+        self.is_set = False
+        self._previous = {}
+
+    def _handle(self, signum, frame):
+        if self.is_set:
+            raise KeyboardInterrupt
+        self.is_set = True
+
+    def install(self):
+        if threading.current_thread() is not threading.main_thread():
+            return self  # signal handlers can only be set from the main thread
+        for name in ("SIGINT", "SIGTERM", "SIGBREAK"):
+            number = getattr(signal, name, None)
+            if number is not None:
+                self._previous[number] = signal.signal(number, self._handle)
+        return self
+
+    def restore(self):
+        for number, handler in self._previous.items():
+            signal.signal(number, handler)
+        self._previous = {}
+
+
+def _reloaded(state):
+    """The state as a resume would see it: through the checkpoint's array form."""
+    return state_from_arrays(state_to_arrays(state), source="in-memory state")
+
+
+def _check_state(state, frame):
+    import numpy as np
+
+    if state.count and not (np.isfinite(state.positions).all() and np.isfinite(state.velocities).all()):
+        raise SolverError(
+            f"frame {frame}: the solver produced non-finite positions or velocities; "
+            "reduce solver.max_time_step or solver.cfl_factor in the scene"
+        )
+
+
+def _manifest_header(scene, solver, last, hash_hex, source):
+    header = {
+        "scene_name": scene.name,
+        "scene_hash": hash_hex,
+        "solver": {"name": solver.name, "settings": _json_ready(solver.settings())},
+        "fps": scene.fps,
+        "frame_start": scene.frame_start,
+        "frame_end": last,
+        "particle_spacing": scene.particle_spacing,
+        "rest_density": scene.fluid.rest_density,
+    }
+    if source is not None:
+        header["scene_file"] = str(Path(source).resolve())
+    return header
+
+
+def _json_ready(value):
+    """Settings as plain JSON types (numpy scalars and tuples converted), so they compare after a reload."""
+    return json.loads(json.dumps(value, default=lambda v: v.tolist() if hasattr(v, "tolist") else str(v)))
+
+
+def bake(scene, solver_name, out_dir, frames=None, resume=False, progress=None, should_stop=None,
+         max_particles=None, overwrite=False, use_signals=True, world=None, solver=None):
+    """Bake ``scene`` with solver ``solver_name`` into the folder ``out_dir``.
+
+    Args:
+        scene: scene file path or a loaded Scene.
+        solver_name: "sph" or "learned".
+        out_dir: bake folder (created if missing).
+        frames: None (the whole shot), (a, b) or "a:b". ``a`` must be the
+            scene's frame_start, or the cache in ``out_dir`` must hold a
+            checkpoint at frame a - 1 or later, from which the bake continues.
+        resume: continue from the checkpoint in ``out_dir`` up to ``b``.
+        progress: a reporter from ``engine.progress`` (default silent).
+        should_stop: callable polled after each frame; true stops the bake.
+        max_particles: overrides ``scene.budget.max_particles``.
+        overwrite: allow replacing another scene's or solver's cache.
+        use_signals: install the SIGINT/SIGTERM stop flag while baking (main thread only).
+        world, solver: an already built World / Solver object to use instead of
+            building them from the scene and ``solver_name`` (for callers that
+            hold them already, and for tests).
+
+    Returns:
+        BakeResult.
+
+    Raises:
+        SceneError, MeshError, BudgetError, CacheError, SolverError, ModelError,
+        UsageError. Frames finished before an error stay in the cache.
+    """
+    progress = progress or SilentProgress()
+    try:
+        return _bake(scene, solver_name, Path(out_dir), frames, resume, progress, should_stop, max_particles,
+                     overwrite, use_signals, world, solver)  # fmt: skip
+    except SplashdraftError as exc:
+        progress.error(str(exc))
+        raise
+    except Exception as exc:
+        progress.error(f"internal error: {type(exc).__name__}: {exc}")
+        raise
+
+
+def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, max_particles, overwrite,
+          use_signals, world, solver):
+    from .estimate import check_budget
+
+    started = time.monotonic()
+    source = scene if isinstance(scene, (str, Path)) else getattr(scene, "source", None)
+    scene = load_scene_any(scene)
+    first, last = resolve_frames(scene, frames)
+    if solver_name not in SOLVER_NAMES:
+        raise UsageError(f"solver {solver_name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
+    hash_hex = scene_hash(scene)
+
+    continue_from = None  # (state, frame) of an existing checkpoint
+    if resume or first > scene.frame_start:
+        if not (out_dir / MANIFEST_NAME).is_file():
+            why = "--resume" if resume else f"--frames {first}:{last}"
+            raise CacheError(
+                f"{out_dir}: no cache to continue from for {why} (no {MANIFEST_NAME}); "
+                f"bake from frame {scene.frame_start} first, without --resume"
+            )
+        reader = open_cache(out_dir)
+        state, checkpoint_frame, checkpoint_hash = reader.read_checkpoint()
+        if checkpoint_hash != hash_hex or reader.manifest.get("scene_hash") != hash_hex:
+            raise CacheError(
+                f"{out_dir}: its cache was baked from a different version of scene {scene.name!r}; "
+                "bake again from the first frame (without --resume) or into another --out folder"
+            )
+        if reader.manifest.get("solver", {}).get("name") != solver_name:
+            raise CacheError(
+                f"{out_dir}: its cache was baked with the {reader.manifest['solver'].get('name')!r} solver, "
+                f"not {solver_name!r}; resume with the same --solver or bake into another --out folder"
+            )
+        if checkpoint_frame < first - 1:
+            raise CacheError(
+                f"{out_dir}: cannot start at frame {first}: the cache's checkpoint is at frame {checkpoint_frame}; "
+                f"bake --frames {checkpoint_frame + 1}:{last} (or --resume) instead"
+            )
+        if resume and frames is None:
+            first = scene.frame_start
+        continue_from = (state, checkpoint_frame)
+        last_in_cache = reader.manifest.get("frame_end", last)
+
+    if world is None:
+        from .world import build_world
+
+        world = build_world(scene)
+    check_budget(scene, world, max_particles=max_particles)
+    if solver is None:
+        solver = make_solver(solver_name)
+    # start() also resolves the solver's settings for the manifest; a resume discards its state.
+    initial_state = solver.start(world)
+    header = _manifest_header(scene, solver, last, hash_hex, source)
+    if continue_from is not None:
+        header["frame_end"] = max(last, int(last_in_cache))
+    if continue_from is not None:
+        previous_settings = open_cache(out_dir).manifest.get("solver", {}).get("settings")
+        if previous_settings is not None and previous_settings != header["solver"]["settings"]:
+            raise CacheError(
+                f"{out_dir}: the {solver_name} solver settings differ from the ones this cache was baked with; "
+                "bake again from the first frame (without --resume)"
+            )
+    writer = CacheWriter(out_dir, header, keep_frames=continue_from is not None, overwrite=overwrite)
+
+    stop = StopFlag()
+    if use_signals:
+        stop.install()
+    written = 0
+    last_written = None
+    particles = 0
+    try:
+        if continue_from is None:
+            state = _reloaded(initial_state)
+            current = scene.frame_start
+            progress.start(frames=(scene.frame_start, last), solver=solver.name, particles=state.count)
+            frame_started = time.monotonic()
+            _write(writer, solver, world, state, current, 0, 0.0)
+            written, last_written, particles = 1, current, state.count
+            progress.frame(
+                frame=current, done=1, total=last - scene.frame_start + 1, particles=state.count,
+                substeps=0, seconds=time.monotonic() - frame_started,
+                eta=float("nan"),
+            )  # fmt: skip
+        else:
+            state, current = continue_from
+            state = _reloaded(state)
+            last_written, particles = current, state.count
+            progress.start(frames=(current + 1, last), solver=solver.name, particles=state.count)
+        total = last - current + written
+        loop_started = time.monotonic()
+        for frame in range(current + 1, last + 1):
+            if stop.is_set or (should_stop is not None and should_stop()):
+                break
+            frame_started = time.monotonic()
+            state, stats = solver.advance(state, world, frame_time(scene, frame))
+            _check_state(state, frame)
+            substeps = int(getattr(stats, "substeps", 0))
+            _write(writer, solver, world, state, frame, substeps, time.monotonic() - frame_started)
+            state = _reloaded(state)
+            written += 1
+            last_written, particles = frame, state.count
+            now = time.monotonic()
+            done_here = frame - current
+            eta = (now - loop_started) / done_here * (last - frame)
+            progress.frame(
+                frame=frame, done=written, total=total, particles=state.count,
+                substeps=substeps, seconds=now - frame_started, eta=eta,
+            )  # fmt: skip
+        is_cancelled = last_written is None or last_written < last
+        if is_cancelled:
+            progress.cancelled(last_frame=last_written)
+        else:
+            writer.mark_complete(True)
+            progress.finished(frames=written, cache=str(out_dir), seconds=time.monotonic() - started)
+    except KeyboardInterrupt:
+        # A second Ctrl-C: stop at once; finished frames are safe on disk.
+        is_cancelled = True
+        progress.cancelled(last_frame=last_written)
+    finally:
+        stop.restore()
+    return BakeResult(
+        cache_dir=str(out_dir), solver=solver.name, first_frame=first, last_frame=last,
+        last_written=last_written, frames_written=written, particles=particles,
+        seconds=time.monotonic() - started, is_cancelled=is_cancelled,
+    )  # fmt: skip
+
+
+def _write(writer, solver, world, state, frame, substeps, seconds):
+    """Write one frame's PLY + manifest entry, then the checkpoint (in that order; see ``engine.cache``)."""
+    attributes = solver.frame_attributes(state, world)
+    arrays = {
+        "positions": state.positions,
+        "velocities": state.velocities,
+        "ids": state.ids,
+        "density": attributes["density"],
+        "pressure": attributes["pressure"],
+    }
+    writer.write_frame(frame, arrays, time=state.time, substeps=substeps, seconds=seconds)
+    writer.write_checkpoint(state, frame)

@@ -1,0 +1,345 @@
+"""The command line: ``python -m engine {bake,info,estimate,validate,demo,compare}``.
+
+Human-readable messages and progress go to stderr; ``--json`` output goes to
+stdout. Engine errors become one ``error: ...`` line and the error's exit
+status (``engine.errors.EXIT_CODES``, listed in ``--help``); usage errors exit
+with 64. Every command ends with a one-line summary on stderr.
+"""
+
+import argparse
+import json
+import sys
+import time
+from pathlib import Path
+
+from .errors import EXIT_CODES, SplashdraftError, UsageError, ValidationFailed
+from .progress import PROGRESS_KINDS, format_duration, make_progress
+
+USAGE_EXIT = 64
+CANCELLED_EXIT = 130
+
+
+def _exit_code_epilog():
+    lines = ["exit status:"]
+    lines += [f"  {code:>3}  {meaning}" for code, meaning in sorted(EXIT_CODES.items())]
+    return "\n".join(lines)
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with usage errors as exit 64 (instead of 2, which we use for bad scenes)."""
+
+    def error(self, message):
+        self.print_usage(sys.stderr)
+        print(f"{self.prog}: error: {message}", file=sys.stderr)
+        raise SystemExit(USAGE_EXIT)
+
+
+def _add_progress(parser):
+    parser.add_argument(
+        "--progress", choices=PROGRESS_KINDS, default="bar",
+        help="How to report progress on stderr: a progress bar, one JSON object per line "
+        "(for the Blender add-on) or nothing. Default: bar.",
+    )  # fmt: skip
+
+
+def _add_budget(parser):
+    parser.add_argument(
+        "--max-particles", type=int, metavar="N",
+        help="Refuse scenes with more than N particles. Default: the scene's budget.max_particles.",
+    )
+
+
+def build_parser():
+    formatter = argparse.RawDescriptionHelpFormatter
+    parser = _Parser(
+        prog="python -m engine",
+        description="Splashdraft engine: bake liquid splash shots to per-frame PLY point caches, "
+        "inspect caches, estimate bakes and run the validation cases.",
+        epilog=_exit_code_epilog(),
+        formatter_class=formatter,
+    )
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    commands.required = True
+
+    bake = commands.add_parser(
+        "bake", help="Bake a scene into a cache folder.", epilog=_exit_code_epilog(), formatter_class=formatter,
+        description="Bake a scene file into a cache folder, one PLY file per frame. Ctrl-C or SIGTERM stops "
+        "after the frame being computed; --resume continues from the last finished frame.",
+    )  # fmt: skip
+    bake.add_argument("scene", help="The scene file (splashdraft-scene JSON).")
+    bake.add_argument("--solver", choices=("sph", "learned"), default="sph",
+                      help="The reference DFSPH solver or the learned preview. Default: sph.")  # fmt: skip
+    bake.add_argument("--out", required=True, help="The cache folder to write; it is created if missing.")
+    bake.add_argument("--frames", metavar="A:B",
+                      help="Bake frames A to B only (inclusive). A must be the scene's first frame, or the "
+                      "cache must already hold frame A - 1. Default: the whole shot.")  # fmt: skip
+    bake.add_argument("--resume", action="store_true",
+                      help="Continue an interrupted bake from its checkpoint. Default: start from the first frame.")
+    bake.add_argument("--overwrite", action="store_true",
+                      help="Allow replacing a cache of another scene or solver in --out. Default: refuse.")
+    _add_progress(bake)
+    _add_budget(bake)
+
+    info = commands.add_parser(
+        "info", help="Describe a cache folder.", epilog=_exit_code_epilog(), formatter_class=formatter,
+        description="Describe a cache folder: frames, particles per frame, disk use, solver and its settings.",
+    )  # fmt: skip
+    info.add_argument("cache", help="The cache folder.")
+    info.add_argument("--json", action="store_true", help="Print the description as JSON on stdout.")
+    info.add_argument("--verify", action="store_true",
+                      help="Also read every frame and check its checksum. Default: read the manifest only.")
+
+    estimate = commands.add_parser(
+        "estimate", help="Estimate particles, memory, disk and time of a bake.", epilog=_exit_code_epilog(),
+        formatter_class=formatter,
+        description="Estimate a bake before running it: particle count, memory, disk per frame and for the "
+        "shot, and a rough time. Exits with status 3 when the scene exceeds its particle budget.",
+    )  # fmt: skip
+    estimate.add_argument("scene", help="The scene file.")
+    estimate.add_argument("--solver", choices=("sph", "learned"), default="sph",
+                          help="The solver the estimate is for. Default: sph.")
+    estimate.add_argument("--json", action="store_true", help="Print the estimate as JSON on stdout.")
+    _add_budget(estimate)
+
+    validate = commands.add_parser(
+        "validate", help="Run a validation case against published values.", epilog=_exit_code_epilog(),
+        formatter_class=formatter,
+        description="Run a validation case and print simulated against published values and the error. "
+        "Exits with status 7 when a value falls outside its tolerance. CASE 'all' runs every case.",
+    )  # fmt: skip
+    validate.add_argument("case", help="The case name (see the list printed for an unknown name), or 'all'.")
+    validate.add_argument("--json", action="store_true", help="Print the results as JSON on stdout.")
+    _add_progress(validate)
+
+    demo = commands.add_parser(
+        "demo", help="Write the built-in demo shot and bake it.", epilog=_exit_code_epilog(),
+        formatter_class=formatter,
+        description="Write the built-in demo shot (a block of water let go in an open-topped trough with a "
+        "rough boulder) into OUT/scene and bake it into OUT/<solver>.",
+    )  # fmt: skip
+    demo.add_argument("--solver", choices=("sph", "learned"), default="sph",
+                      help="The solver to bake with. Default: sph.")
+    demo.add_argument("--out", default="out/demo", help="The output folder. Default: out/demo.")
+    demo.add_argument("--frames", metavar="A:B", help="Bake frames A to B only. Default: the whole shot.")
+    demo.add_argument("--preset", choices=("full", "small"), default="full",
+                      help="full: spacing 0.02 m, about 25k particles, 60 frames; small: spacing 0.05 m, "
+                      "about 1.6k particles, 12 frames. Default: full.")  # fmt: skip
+    demo.add_argument("--spacing", type=float, metavar="S",
+                      help="Particle spacing in metres, overriding the preset's.")
+    _add_progress(demo)
+    _add_budget(demo)
+
+    # The compare command is handled by engine.compare.main_compare (see main); listed here for --help.
+    commands.add_parser(
+        "compare", help="Compare one bake against another (see 'compare --help').", add_help=False,
+    )
+    return parser
+
+
+def _say(text):
+    print(text, file=sys.stderr)
+
+
+def _print_json(data):
+    print(json.dumps(data, indent=1))
+
+
+# --------------------------------------------------------------------------- commands
+
+
+def _run_bake(scene, solver, out, frames, resume, progress, max_particles, overwrite):
+    from .bake import bake
+
+    result = bake(
+        scene, solver, out, frames=frames, resume=resume, progress=make_progress(progress),
+        max_particles=max_particles, overwrite=overwrite,
+    )  # fmt: skip
+    done = "cancelled" if result.is_cancelled else "baked"
+    last = "none" if result.last_written is None else result.last_written
+    _say(
+        f"{done}: {result.frames_written} frames written (last frame {last}), {result.particles:,} particles, "
+        f"{format_duration(result.seconds)} wall time, solver {result.solver}, cache {result.cache_dir}"
+    )
+    return CANCELLED_EXIT if result.is_cancelled else 0
+
+
+def command_bake(args):
+    return _run_bake(args.scene, args.solver, args.out, args.frames, args.resume, args.progress,
+                     args.max_particles, args.overwrite)  # fmt: skip
+
+
+def describe_cache(folder, verify=False):
+    """Summary dict of a cache folder (for ``info``)."""
+    from .cache import open_cache
+
+    cache = open_cache(folder)
+    manifest = cache.manifest
+    entries = [manifest["frames"][str(f)] for f in cache.frames]
+    counts = [int(e.get("particles", 0)) for e in entries]
+    if verify:
+        for frame in cache.frames:
+            cache.read_frame(frame)
+    return {
+        "cache": str(folder),
+        "scene_name": manifest.get("scene_name"),
+        "solver": manifest.get("solver", {}).get("name"),
+        "settings": manifest.get("solver", {}).get("settings", {}),
+        "fps": manifest.get("fps"),
+        "frame_start": manifest.get("frame_start"),
+        "frame_end": manifest.get("frame_end"),
+        "frames": len(cache.frames),
+        "first_frame": cache.frames[0] if cache.frames else None,
+        "last_frame": cache.frames[-1] if cache.frames else None,
+        "complete": bool(manifest.get("complete")),
+        "particles": {
+            "min": min(counts) if counts else 0,
+            "max": max(counts) if counts else 0,
+            "mean": sum(counts) / len(counts) if counts else 0.0,
+            "last": counts[-1] if counts else 0,
+        },
+        "particle_spacing": manifest.get("particle_spacing"),
+        "bake_seconds": round(sum(float(e.get("seconds", 0.0)) for e in entries), 3),
+        "substeps": sum(int(e.get("substeps", 0)) for e in entries),
+        "disk_bytes": cache.disk_bytes(),
+        "verified": bool(verify),
+        "updated": manifest.get("updated"),
+    }
+
+
+def command_info(args):
+    from .estimate import format_bytes
+
+    info = describe_cache(args.cache, verify=args.verify)
+    if args.json:
+        _print_json(info)
+    particles = info["particles"]
+    state = "complete" if info["complete"] else "incomplete"
+    _say(f"cache {info['cache']}: scene {info['scene_name']!r}, solver {info['solver']}, {state}")
+    _say(f"  frames: {info['frames']} ({info['first_frame']}..{info['last_frame']} of "
+         f"{info['frame_start']}..{info['frame_end']}) at {info['fps']} fps")  # fmt: skip
+    _say(f"  particles per frame: min {particles['min']:,}, mean {particles['mean']:,.0f}, "
+         f"max {particles['max']:,}, last {particles['last']:,}")  # fmt: skip
+    _say(f"  disk: {format_bytes(info['disk_bytes'])}; bake time {format_duration(info['bake_seconds'])}, "
+         f"{info['substeps']} substeps")  # fmt: skip
+    _say("  settings: " + json.dumps(info["settings"], sort_keys=True))
+    if args.verify:
+        _say("  every frame's checksum matches the manifest")
+    _say(f"{info['frames']} frames, {particles['last']:,} particles in the last, cache {info['cache']}")
+    return 0
+
+
+def command_estimate(args):
+    from .bake import load_scene_any
+    from .estimate import estimate_scene, format_bytes
+
+    scene = load_scene_any(args.scene)
+    result = estimate_scene(scene, solver=args.solver, max_particles=args.max_particles)
+    if args.json:
+        _print_json(result.as_dict())
+    _say(f"scene {result.scene_name!r} with the {result.solver} solver (estimates):")
+    _say(f"  particles: about {result.particles:,} fluid (budget {result.max_particles:,}), "
+         f"{result.boundary_particles:,} boundary")  # fmt: skip
+    _say(f"  memory: about {format_bytes(result.memory_bytes)} (solver arrays and neighbour lists)")
+    _say(f"  disk: {format_bytes(result.frame_bytes)} per frame, about {format_bytes(result.disk_bytes)} "
+         f"for {result.frames} frames")  # fmt: skip
+    _say(f"  time: roughly {format_duration(result.seconds)} ({result.substeps_per_frame} substeps per frame, "
+         f"{result.throughput:,.0f} particle-substeps/s from {result.throughput_source}; "
+         "a rough figure, expect a factor of two either way)")  # fmt: skip
+    _say(f"estimate: {result.frames} frames, {result.particles:,} particles, "
+         f"about {format_duration(result.seconds)}")  # fmt: skip
+    return 0
+
+
+def _format_metric(name, value, tolerance):
+    return f"  {name}: {value!r} (tolerance {tolerance!r})" if tolerance is not None else f"  {name}: {value!r}"
+
+
+def command_validate(args):
+    from . import validate
+
+    names = list(validate.CASES) if args.case == "all" else [args.case]
+    unknown = [n for n in names if n not in validate.CASES]
+    if unknown:
+        raise UsageError(
+            f"validation case {unknown[0]!r} does not exist; choose one of {', '.join(validate.CASES)} or 'all'"
+        )
+    started = time.monotonic()
+    results = []
+    for name in names:
+        _say(f"running validation case {name} ...")
+        result = validate.run_case(name, progress=make_progress(args.progress))
+        results.append(result)
+        _say(format_validation(result))
+    if args.json:
+        _print_json(results[0] if len(results) == 1 else results)
+    failed = [r["case"] for r in results if not r.get("passed")]
+    _say(f"validate: {len(results) - len(failed)} of {len(results)} cases within tolerance "
+         f"in {format_duration(time.monotonic() - started)}")  # fmt: skip
+    if failed:
+        raise ValidationFailed(
+            f"validation case {', '.join(failed)} fell outside the published tolerance (see above); "
+            "check the solver settings or report the regression"
+        )
+    return 0
+
+
+def format_validation(result):
+    """Human text for one ``run_case`` result."""
+    verdict = "within tolerance" if result.get("passed") else "OUTSIDE tolerance"
+    lines = [f"case {result.get('case')}: {verdict}"]
+    tolerances = result.get("tolerances", {}) or {}
+    for name, value in (result.get("metrics", {}) or {}).items():
+        lines.append(_format_metric(name, value, tolerances.get(name)))
+    for name, value in tolerances.items():
+        if name not in (result.get("metrics") or {}):
+            lines.append(f"  tolerance {name}: {value!r}")
+    if result.get("source"):
+        lines.append(f"  source: {result['source']}")
+    return "\n".join(lines)
+
+
+def command_demo(args):
+    from .demo import write_demo_scene
+
+    if args.spacing is not None and not args.spacing > 0:
+        raise UsageError(f"--spacing {args.spacing}: the particle spacing must be a positive length in metres")
+    out = Path(args.out)
+    scene_path = write_demo_scene(out / "scene", spacing=args.spacing, preset=args.preset)
+    _say(f"demo scene written to {scene_path}")
+    return _run_bake(scene_path, args.solver, out / args.solver, args.frames, False, args.progress,
+                     args.max_particles, True)  # fmt: skip
+
+
+COMMANDS = {
+    "bake": command_bake,
+    "info": command_info,
+    "estimate": command_estimate,
+    "validate": command_validate,
+    "demo": command_demo,
+}
+
+
+def main(argv=None):
+    """Run the command line; returns the exit status (see ``EXIT_CODES``)."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv and argv[0] == "compare":
+        # Owned by engine.compare (fidelity metrics of one bake against another).
+        from .compare import main_compare
+
+        return main_compare(argv[1:])
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:
+        return 0 if exc.code in (0, None) else USAGE_EXIT
+    try:
+        return COMMANDS[args.command](args)
+    except SplashdraftError as exc:
+        _say(f"error: {exc}")
+        return exc.exit_code
+    except MemoryError:
+        _say("error: out of memory; use a coarser particle_spacing or a smaller scene (see 'estimate')")
+        return 3
+    except KeyboardInterrupt:
+        _say("error: interrupted")
+        return CANCELLED_EXIT

@@ -1,0 +1,186 @@
+"""Before a bake: particle count, memory, disk and a rough time, and the budget check.
+
+Every figure here is an estimate, stated as such:
+
+- particles: ``World.estimate_particles()["total"]`` (fill emitters plus
+  everything the stream emitters add over the shot), boundary particles from ``boundary_at(0)``.
+- memory: bytes per particle of the solver's arrays plus its neighbour lists,
+  counted from the arrays the solvers keep (see ``MEMORY_MODEL``); a peak
+  figure for one substep, not a measurement.
+- disk: exact for a frame of N particles (PLY header + 36 bytes per particle,
+  see ``engine.cache.FRAME_DTYPE``), times the frames baked, using the
+  estimated particle count for every frame (an upper bound when particles
+  leave through open faces).
+- time: substeps per frame from the CFL rule with a free-fall speed over the
+  bounds height, times particles, divided by a throughput in
+  particle-substeps per second. The throughput is a rough constant measured
+  on a 2-core laptop-class CPU, replaced by the latest figure in
+  ``bench/results/<solver>_throughput.json`` (key
+  ``particle_substeps_per_second``) when a benchmark has written one. Expect
+  a factor of two either way.
+
+CFL rule: dt <= cfl_factor * particle_spacing / |v|max (Bender & Koschier 2015,
+"Divergence-Free Smoothed Particle Hydrodynamics", SCA; parameter from memory
+[M] in docs/physics-references.md).
+"""
+
+import dataclasses
+import json
+import math
+from pathlib import Path
+
+from .cache import FRAME_DTYPE, ply_header
+from .errors import BudgetError
+
+#: Rough throughput, particle-substeps per second on one process (overridden by bench/results).
+DEFAULT_THROUGHPUT = {"sph": 6.0e4, "learned": 2.0e5}
+
+#: Bytes per fluid particle, per neighbour pair, and per boundary particle, by solver.
+#: sph: State (positions, velocities 2x24, ids 8) + DFSPH per-particle float64 arrays
+#: (density, alpha, kappa, kappa_v, pressure, predicted velocity 24, accelerations 24)
+#: = 144 B; per pair: two int64 indices, distance, kernel value, gradient (3) and the
+#: difference vector (3) in float64 = 80 B; boundary: positions, velocities, normals,
+#: volumes (80 B) + KD-tree (~32 B). learned: State + float32 features (~64 B) and
+#: per pair the edge features and messages of the network (~16 float32 in and out).
+MEMORY_MODEL = {
+    "sph": {"per_particle": 144, "per_pair": 80, "per_boundary": 112, "neighbours": 45},
+    "learned": {"per_particle": 120, "per_pair": 160, "per_boundary": 112, "neighbours": 45},
+}
+
+
+@dataclasses.dataclass(frozen=True)
+class Estimate:
+    """Result of ``estimate_scene``; sizes in bytes, times in seconds (all estimates)."""
+
+    scene_name: str
+    solver: str
+    particles: int
+    boundary_particles: int
+    max_particles: int
+    frames: int
+    memory_bytes: int
+    frame_bytes: int
+    disk_bytes: int
+    substeps_per_frame: int
+    seconds_per_frame: float
+    seconds: float
+    throughput: float
+    throughput_source: str
+
+    def as_dict(self):
+        return dataclasses.asdict(self)
+
+
+def frame_file_bytes(particles):
+    """Exact size in bytes of one PLY frame with ``particles`` particles."""
+    return len(ply_header(particles)) + FRAME_DTYPE.itemsize * int(particles)
+
+
+def memory_bytes(particles, boundary_particles, solver="sph"):
+    """Estimated peak memory (bytes) of one substep (see ``MEMORY_MODEL``)."""
+    model = MEMORY_MODEL.get(solver, MEMORY_MODEL["sph"])
+    per_fluid = model["per_particle"] + model["neighbours"] * model["per_pair"]
+    return int(particles * per_fluid + boundary_particles * model["per_boundary"])
+
+
+def throughput(solver="sph", root=None):
+    """(particle-substeps per second, where the figure came from)."""
+    root = Path(root) if root is not None else Path(__file__).resolve().parents[1]
+    path = root / "bench" / "results" / f"{solver}_throughput.json"
+    try:
+        value = float(json.loads(path.read_text())["particle_substeps_per_second"])
+        if value > 0 and math.isfinite(value):
+            return value, str(path)
+    except (OSError, ValueError, KeyError, TypeError):
+        pass
+    return DEFAULT_THROUGHPUT.get(solver, DEFAULT_THROUGHPUT["sph"]), "built-in rough constant"
+
+
+def substeps_per_frame(scene):
+    """Substeps per frame from the CFL rule with the free-fall speed over the bounds height."""
+    height = float(scene.bounds.upper[2] - scene.bounds.lower[2])
+    gravity = math.sqrt(sum(g * g for g in scene.gravity))
+    speed = max(math.sqrt(2.0 * gravity * max(height, 0.0)), 1e-9)
+    for emitter in scene.emitters:
+        speed = max(speed, float(getattr(emitter, "speed", 0.0) or 0.0))
+    solver = scene.solver
+    time_step = min(solver.max_time_step, solver.cfl_factor * scene.particle_spacing / speed)
+    time_step = max(time_step, solver.min_time_step)
+    return max(1, math.ceil((1.0 / scene.fps) / time_step - 1e-9))
+
+
+def count_particles(world):
+    """(fluid particles over the shot, boundary particles at t = 0) of a built world."""
+    fluid = int(world.estimate_particles()["total"])
+    boundary = int(len(world.boundary_at(0.0).positions))
+    return fluid, boundary
+
+
+def budget_limit(scene, max_particles=None):
+    return int(max_particles) if max_particles is not None else int(scene.budget.max_particles)
+
+
+def check_budget(scene, world, max_particles=None, particles=None):
+    """Raise BudgetError when the scene's particle count exceeds its budget.
+
+    Args:
+        scene: the loaded Scene. world: its World (for the count).
+        max_particles: override of ``scene.budget.max_particles`` (``--max-particles``).
+        particles: a count already made (skips counting).
+
+    Returns:
+        the particle count.
+    """
+    if particles is None:
+        particles, _ = count_particles(world)
+    limit = budget_limit(scene, max_particles)
+    if particles > limit:
+        spacing = scene.particle_spacing
+        coarser = spacing * (particles / limit) ** (1.0 / 3.0)
+        raise BudgetError(
+            f"scene {scene.name!r}: about {particles:,} particles exceed the budget of {limit:,}; "
+            f"raise particle_spacing from {spacing:g} m to at least {coarser:.3g} m, "
+            "or raise budget.max_particles in the scene (or --max-particles)"
+        )
+    return particles
+
+
+def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=None):
+    """Estimate a bake of ``scene`` with ``solver``; raises BudgetError over the budget.
+
+    Args:
+        scene: loaded Scene. solver: "sph" or "learned".
+        max_particles: budget override. world: a built World (built here if None).
+        frames: number of frames to bake (default the whole shot).
+
+    Returns:
+        Estimate.
+    """
+    if world is None:
+        from .world import build_world
+
+        world = build_world(scene)
+    particles, boundary = count_particles(world)
+    check_budget(scene, world, max_particles=max_particles, particles=particles)
+    frames = int(frames) if frames is not None else scene.frame_end - scene.frame_start + 1
+    substeps = substeps_per_frame(scene)
+    rate, source = throughput(solver)
+    per_frame = substeps * max(particles, 1) / rate
+    frame_size = frame_file_bytes(particles)
+    return Estimate(
+        scene_name=scene.name, solver=solver, particles=particles, boundary_particles=boundary,
+        max_particles=budget_limit(scene, max_particles), frames=frames,
+        memory_bytes=memory_bytes(particles, boundary, solver), frame_bytes=frame_size,
+        disk_bytes=frame_size * frames, substeps_per_frame=substeps, seconds_per_frame=per_frame,
+        seconds=per_frame * max(frames - 1, 0), throughput=rate, throughput_source=source,
+    )  # fmt: skip
+
+
+def format_bytes(count):
+    """'1.2 MB' style (decimal units)."""
+    count = float(count)
+    for unit in ("B", "kB", "MB", "GB"):
+        if count < 1000 or unit == "GB":
+            return f"{count:.0f} {unit}" if unit == "B" else f"{count:.1f} {unit}"
+        count /= 1000.0
+    return f"{count:.1f} TB"

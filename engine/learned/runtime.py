@@ -1,0 +1,154 @@
+"""The learned core on onnxruntime (CPU): session set-up, warm-up and tiling.
+
+Session options follow the measurements in shared/docs/learned-surrogate.md:
+2 intra-op threads, graph optimisation level ALL, the CPU memory arena on,
+sequential execution, and one or two warm-up calls before use (the first
+calls are slow).
+
+Tiling bounds memory on large scenes: receivers are split into spatially
+compact tiles (sorted by a Morton code of their cell), and each tile is run
+with its ``rounds``-hop neighbourhood (a halo). With R message-passing rounds
+a receiver's output depends only on nodes at most R hops away, and a halo
+node k hops out needs correct latents only up to round R - k, which its own
+(k + 1)-hop neighbours -- all inside the set, or node-local at hop R --
+provide. So the tiled result equals the untiled one up to float rounding
+(tests/test_learned.py checks this).
+"""
+
+import os
+
+import numpy as np
+
+from ..errors import ModelError
+from .contract import INPUT_SPECS, OUTPUT_SPECS, RETRAIN_HINT
+
+#: Receivers per tile; above this many particles the core runs in tiles.
+DEFAULT_TILE_PARTICLES = 25000
+
+
+def make_session(onnx_path, threads=2):
+    """An onnxruntime InferenceSession for the CPU; ModelError if the file is not a loadable model."""
+    import onnxruntime as ort
+
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = int(threads)
+    options.inter_op_num_threads = 1
+    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    options.log_severity_level = 3
+    try:
+        session = ort.InferenceSession(os.fspath(onnx_path), sess_options=options, providers=["CPUExecutionProvider"])
+    except Exception as exc:  # onnxruntime raises its own untyped errors for bad files
+        raise ModelError(f"model file {onnx_path}: onnxruntime cannot load it ({exc}); {RETRAIN_HINT}") from exc
+    names = [i.name for i in session.get_inputs()]
+    expected = [name for name, _, _ in INPUT_SPECS]
+    if names != expected:
+        raise ModelError(f"model file {onnx_path}: inputs {names}, expected {expected}; {RETRAIN_HINT}")
+    outputs = [o.name for o in session.get_outputs()]
+    if outputs != [name for name, _, _ in OUTPUT_SPECS]:
+        raise ModelError(f"model file {onnx_path}: outputs {outputs}, expected {[n for n, _, _ in OUTPUT_SPECS]}; {RETRAIN_HINT}")
+    return session
+
+
+def morton_order(points, cell):
+    """Permutation sorting points by the Morton (Z-order) code of their cell of size ``cell``."""
+    points = np.asarray(points, np.float64)
+    if len(points) == 0:
+        return np.zeros(0, np.int64)
+    cells = np.floor((points - points.min(axis=0)) / cell).astype(np.int64)
+    cells = np.clip(cells, 0, (1 << 21) - 1).astype(np.uint64)
+    code = np.zeros(len(points), np.uint64)
+    for bit in range(21):
+        for axis in range(3):
+            code |= ((cells[:, axis] >> np.uint64(bit)) & np.uint64(1)) << np.uint64(3 * bit + axis)
+    return np.argsort(code, kind="stable")
+
+
+def halo_nodes(receivers, neighbour_index, rounds):
+    """Node list for one tile: the receivers first, then their <= ``rounds``-hop neighbours (sorted)."""
+    inside = np.zeros(len(neighbour_index), bool)
+    inside[receivers] = True
+    frontier = receivers
+    for _ in range(rounds):
+        reached = np.unique(neighbour_index[frontier].ravel())
+        frontier = reached[~inside[reached]]
+        inside[frontier] = True
+    halo = np.flatnonzero(inside)
+    is_receiver = np.zeros(len(neighbour_index), bool)
+    is_receiver[receivers] = True
+    return np.concatenate([receivers, halo[~is_receiver[halo]]])
+
+
+def subgraph(inputs, nodes):
+    """The core inputs restricted to ``nodes`` (indices into the full graph), neighbours re-indexed.
+
+    Neighbours outside ``nodes`` are masked out (they can only belong to the
+    outermost halo ring, whose output is discarded).
+    """
+    position = np.full(len(inputs["neighbour_index"]), -1, np.int64)
+    position[nodes] = np.arange(len(nodes))
+    index = position[inputs["neighbour_index"][nodes]]
+    mask = inputs["neighbour_mask"][nodes] * (index >= 0)
+    rows = np.arange(len(nodes))[:, None]
+    return {
+        "node_features": inputs["node_features"][nodes],
+        "neighbour_index": np.where(index >= 0, index, rows).astype(np.int64),
+        "neighbour_mask": mask.astype(np.float32),
+        "edge_features": inputs["edge_features"][nodes] * mask[..., None],
+        "boundary_features": inputs["boundary_features"][nodes],
+        "boundary_mask": inputs["boundary_mask"][nodes],
+    }
+
+
+class CoreRunner:
+    """Runs the ONNX core on normalised inputs, tiling large graphs.
+
+    Args:
+        onnx_path: the model file (already checked against its contract).
+        rounds: message-passing rounds of the model (from the contract).
+        threads: onnxruntime intra-op threads.
+        tile_particles: receivers per tile; 0 disables tiling.
+    """
+
+    def __init__(self, onnx_path, rounds, threads=2, tile_particles=DEFAULT_TILE_PARTICLES):
+        self.onnx_path = onnx_path
+        self.rounds = int(rounds)
+        self.tile_particles = int(tile_particles)
+        self.session = make_session(onnx_path, threads)
+
+    def warm_up(self, particles=2000, neighbours=30, boundary_neighbours=8, seed=0):
+        """Run the session twice on a random graph of the given size (first calls are slow)."""
+        rng = np.random.default_rng(seed)
+        n, k, kb = particles, neighbours, boundary_neighbours
+        inputs = {
+            "node_features": rng.standard_normal((n, INPUT_SPECS[0][2][1])).astype(np.float32),
+            "neighbour_index": rng.integers(0, n, (n, k)).astype(np.int64),
+            "neighbour_mask": np.ones((n, k), np.float32),
+            "edge_features": rng.standard_normal((n, k, INPUT_SPECS[3][2][2])).astype(np.float32),
+            "boundary_features": rng.standard_normal((n, kb, INPUT_SPECS[4][2][2])).astype(np.float32),
+            "boundary_mask": np.ones((n, kb), np.float32),
+        }
+        for _ in range(2):
+            self._run(inputs)
+
+    def _run(self, inputs):
+        return self.session.run(None, inputs)[0]
+
+    def run(self, inputs, positions=None, cell=None):
+        """Normalised core output (N, 3) float32 for normalised ``inputs``.
+
+        ``positions`` (N, 3) and ``cell`` (same unit) order the tiles
+        spatially; without them tiles follow the input order.
+        """
+        n = len(inputs["node_features"])
+        if n == 0:
+            return np.zeros((0, 3), np.float32)
+        if self.tile_particles <= 0 or n <= self.tile_particles:
+            return self._run(inputs)
+        order = morton_order(positions, cell) if positions is not None else np.arange(n)
+        out = np.empty((n, 3), np.float32)
+        for start in range(0, n, self.tile_particles):
+            receivers = order[start:start + self.tile_particles]
+            nodes = halo_nodes(receivers, inputs["neighbour_index"], self.rounds)
+            out[receivers] = self._run(subgraph(inputs, nodes))[: len(receivers)]
+        return out

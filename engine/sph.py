@@ -1,0 +1,618 @@
+"""DFSPH reference solver: the physically based bake (Solver protocol, ``name = "sph"``).
+
+Method: Bender & Koschier 2015, "Divergence-Free Smoothed Particle
+Hydrodynamics", Proc. ACM SIGGRAPH/Eurographics SCA (doi:10.1145/2786784.2786796),
+and Bender & Koschier 2017, "Divergence-Free SPH for Incompressible and Viscous
+Fluids", IEEE TVCG 23(3). Step order as in the SCA algorithm listing, arranged
+so that one neighbour search serves a whole substep (step 4 of one substep and
+step 1 of the next coincide):
+
+1. neighbours of x(t); density rho_i = sum_j m W_ij + sum_b Psi_b W_ib and the
+   DFSPH factor alpha_i = rho_i / (|sum_j m grad W_ij + sum_b Psi_b grad W_ib|^2
+   + sum_j |m grad W_ij|^2)  (0 where the denominator vanishes: lone particles);
+2. divergence-free solve on v(t) (warm-started from the previous substep);
+3. non-pressure terms: XSPH smoothing (Monaghan 1989, J. Comput. Phys. 82:1-15)
+   v_i += eps sum_j (m / rho_ij) (v_j - v_i) W_ij with rho_ij = (rho_i + rho_j)/2,
+   then gravity v* = v + dt g;
+4. constant-density solve on v* (warm-started);
+5. x(t + dt) = x(t) + dt v*.
+
+Both solvers are Jacobi-style iterations with the DFSPH factor as the diagonal.
+A constant-density iteration sets kappa_i <- max(0, kappa_i + alpha_i (rho*_i -
+rho0) / dt^2), with rho*_i = rho_i + dt (D rho / Dt)_i(v*), and applies the
+change of kappa as v_i -= dt sum_j m (dk_i / rho_i + dk_j / rho_j) grad W_ij.
+Keeping the accumulated kappa non-negative (a projection) lets the solver take
+back an over-correction and keeps free surfaces from pulling (no tension), the
+usual clamping of the source term in DFSPH implementations made consistent with
+warm starting. The divergence-free solver does the same with (D rho / Dt)_i.
+Stopping rules (SCA paper): mean compression max(rho* - rho0, 0) / rho0 <=
+``density_tolerance`` after at least 2 iterations; mean dt max(D rho/Dt, 0) /
+rho0 <= ``divergence_tolerance`` after at least 1 iteration; both capped at
+``max_iterations`` (not reaching the tolerance is reported in the stats, not
+raised).
+
+Warm start: the accumulated kappa of the constant-density solver (units m^2/s^2,
+kappa = p / rho) and dt * kappa_v of the divergence solver (m^2/s, so it does not
+depend on the step size) are stored per particle in
+``State.particle_arrays["sph_kappa"]`` and ``["sph_kappa_v"]``; checkpoints carry
+them, so a resumed bake is bit-identical to an uninterrupted one.
+
+Boundary: Akinci, Ihmsen, Akinci, Solenthaler & Teschner 2012, "Versatile
+Rigid-Fluid Coupling for Incompressible SPH", ACM TOG 31(4): boundary particles
+with Psi_b = rho0 V_b add to density and to the density rate with the relative
+velocity (v_i - v_b), so moving colliders push the fluid. Pressure variant:
+**mirrored** (p_b = p_i, rho_b = rho_i in the symmetric formula), i.e. the
+velocity change from boundary b is -dt * 2 (kappa_i / rho_i) Psi_b grad W_ib,
+twice the p_i / rho_i^2-only term. Mirroring makes a uniform pressure exert no
+net force next to a wall (sum_j m grad W_ij + sum_b Psi_b grad W_ib ~ 0 there);
+the hydrostatic tank (engine/validate.py) checks the resulting pressure profile.
+The boundary receives no reaction here (colliders are kinematic).
+
+Pressure output: p_i = kappa_i * rho_i in Pa, from the constant-density solve
+(kappa = p / rho, so the pressure term is sum_j m (p_i / rho_i^2 + p_j / rho_j^2)
+grad W_ij); p >= 0 by the projection above, with 0 at free surfaces.
+
+Kernel and mass: cubic spline (engine/kernels.py), support radius
+H = 2 * particle_spacing, mass m = rest_density * particle_spacing^3.
+
+Time step (CFL, as in the SCA paper): dt = cfl_factor * particle_spacing /
+max|v|, clipped to [min_time_step, max_time_step]; substeps land exactly on the
+requested end time (the last two are evened out rather than leaving a sliver).
+
+Everything is float64 with a fixed summation order (sparse matrix products and
+bincounts over pairs sorted by index), so the same input gives the same bits.
+"""
+
+import dataclasses
+import math
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sparse
+
+from .boundary import empty_boundary
+from .errors import SceneError, SolverError
+from .kernels import kernel, kernel_terms
+from .neighbours import SkinPairs
+
+KAPPA = "sph_kappa"
+KAPPA_V = "sph_kappa_v"
+
+
+@dataclass(frozen=True)
+class SphParams:
+    """Resolved solver parameters (SI units). Build with ``make_params`` or ``params_from_scene``.
+
+    Attributes:
+        particle_spacing: lattice spacing d in metres; H = 2 d, m = rho0 d^3.
+        rest_density: rho0 in kg/m^3.
+        viscosity: XSPH coefficient eps (dimensionless, per substep).
+        gravity: (3,) m/s^2 as a tuple.
+        cfl_factor: dt <= cfl_factor * d / max|v|.
+        max_time_step, min_time_step: bounds on dt in seconds.
+        density_tolerance: mean compression target of the constant-density solve (fraction).
+        divergence_tolerance: mean dt * (D rho / Dt) / rho0 target of the divergence solve.
+        max_iterations: cap on each solver's iterations.
+        neighbour_skin: Verlet-list skin in metres (0: search every substep).
+    """
+
+    particle_spacing: float
+    rest_density: float = 1000.0
+    viscosity: float = 0.02
+    gravity: tuple = (0.0, 0.0, -9.81)
+    cfl_factor: float = 0.4
+    max_time_step: float = 0.004
+    min_time_step: float = 1e-5
+    density_tolerance: float = 0.0005
+    divergence_tolerance: float = 0.001
+    max_iterations: int = 100
+    neighbour_skin: float = 0.0
+
+    @property
+    def support_radius(self):
+        return 2.0 * self.particle_spacing
+
+    @property
+    def particle_mass(self):
+        return self.rest_density * self.particle_spacing**3
+
+    @property
+    def max_speed(self):
+        """Speed above which the CFL step would drop below ``min_time_step`` (m/s)."""
+        return self.cfl_factor * self.particle_spacing / self.min_time_step
+
+
+#: Default Verlet skin as a fraction of the support radius.
+DEFAULT_SKIN_FRACTION = 0.25
+
+
+def make_params(particle_spacing, *, rest_density=1000.0, viscosity=0.02, gravity=(0.0, 0.0, -9.81),
+                cfl_factor=0.4, max_time_step=0.004, min_time_step=1e-5, density_tolerance=0.0005,
+                divergence_tolerance=0.001, max_iterations=100, neighbour_skin=None):
+    """Validated SphParams; ``neighbour_skin`` defaults to 0.25 H.
+
+    Raises:
+        SceneError: naming the field, the bad value and the allowed range.
+    """
+    def positive(name, value):
+        value = float(value)
+        if not math.isfinite(value) or value <= 0:
+            raise SceneError(f"{name}: must be a finite number > 0, got {value!r}; set a positive value")
+        return value
+
+    spacing = positive("particle_spacing", particle_spacing)
+    values = dict(
+        particle_spacing=spacing,
+        rest_density=positive("fluid.rest_density", rest_density),
+        cfl_factor=positive("solver.cfl_factor", cfl_factor),
+        max_time_step=positive("solver.max_time_step", max_time_step),
+        min_time_step=positive("solver.min_time_step", min_time_step),
+        density_tolerance=positive("solver.density_tolerance", density_tolerance),
+        divergence_tolerance=positive("solver.divergence_tolerance", divergence_tolerance),
+    )
+    viscosity = float(viscosity)
+    if not (0.0 <= viscosity <= 1.0):
+        raise SceneError(f"fluid.viscosity: XSPH coefficient must lie in [0, 1], got {viscosity!r}; "
+                         "use 0.01-0.05 for water")
+    if values["cfl_factor"] > 1.0:
+        raise SceneError(f"solver.cfl_factor: must be <= 1, got {cfl_factor!r}; use 0.4")
+    if values["min_time_step"] > values["max_time_step"]:
+        raise SceneError(f"solver.min_time_step ({min_time_step}) exceeds solver.max_time_step "
+                         f"({max_time_step}); make the minimum the smaller one")
+    gravity = tuple(float(g) for g in np.asarray(gravity, np.float64).reshape(-1))
+    if len(gravity) != 3 or not all(math.isfinite(g) for g in gravity):
+        raise SceneError(f"gravity: must be 3 finite numbers in m/s^2, got {gravity!r}")
+    iterations = int(max_iterations)
+    if iterations < 2 or iterations != max_iterations:
+        raise SceneError(f"solver.max_iterations: must be an integer >= 2, got {max_iterations!r}")
+    skin = DEFAULT_SKIN_FRACTION * 2.0 * spacing if neighbour_skin is None else float(neighbour_skin)
+    if not math.isfinite(skin) or skin < 0:
+        raise SceneError(f"neighbour_skin: must be >= 0 metres, got {neighbour_skin!r}")
+    return SphParams(viscosity=viscosity, gravity=gravity, max_iterations=iterations,
+                     neighbour_skin=skin, **values)
+
+
+def params_from_scene(scene, neighbour_skin=None):
+    """SphParams from a parsed scene (``engine.scene``): spacing, fluid, gravity, solver."""
+    solver = scene.solver
+    return make_params(
+        scene.particle_spacing, rest_density=scene.fluid.rest_density, viscosity=scene.fluid.viscosity,
+        gravity=scene.gravity, cfl_factor=solver.cfl_factor, max_time_step=solver.max_time_step,
+        min_time_step=solver.min_time_step, density_tolerance=solver.density_tolerance,
+        divergence_tolerance=solver.divergence_tolerance, max_iterations=solver.max_iterations,
+        neighbour_skin=neighbour_skin)
+
+
+def cfl_time_step(velocities, params):
+    """dt = cfl_factor * d / max|v| clipped to [min_time_step, max_time_step] (SCA 2015 CFL rule).
+
+    Args:
+        velocities: (N, 3) float64 m/s.
+
+    Returns:
+        ``(dt, fastest)``: the step in seconds and the index of the fastest
+        particle (-1 when N = 0). dt is below ``min_time_step`` only when the
+        fastest particle is faster than ``params.max_speed`` (the caller raises).
+    """
+    if len(velocities) == 0:
+        return params.max_time_step, -1
+    speed2 = np.einsum("ij,ij->i", velocities, velocities)
+    fastest = int(np.argmax(speed2))
+    speed = math.sqrt(float(speed2[fastest]))
+    if speed <= 0.0:
+        return params.max_time_step, fastest
+    dt = params.cfl_factor * params.particle_spacing / speed
+    if dt < params.min_time_step:
+        return dt, fastest
+    return min(dt, params.max_time_step), fastest
+
+
+def substep_length(dt, remaining):
+    """The step actually taken so that substeps land exactly on the end time.
+
+    Takes the rest if it fits in one step; splits it in two equal steps if it
+    fits in two, so the final step is never a sliver.
+    """
+    if remaining <= dt:
+        return remaining
+    if remaining < 2.0 * dt:
+        return 0.5 * remaining
+    return dt
+
+
+class PairOperators:
+    """SPH sums over the pairs of one substep, as sparse matrix products.
+
+    Built once per substep from the pair lists and reused by every solver
+    iteration. With U_c the (N, N) CSR matrix holding m * dW/dx_c(x_i - x_j) at
+    (i, j) for each pair i < j, the full antisymmetric gradient operator is
+    G_c = U_c - U_c^T, so each product is two sparse matvecs per axis.
+
+    Attributes:
+        count: N fluid particles.
+        density: (N,) rho_i in kg/m^3 (fluid + boundary).
+        alpha: (N,) DFSPH factor in m^5/kg.
+        boundary_neighbours: (N,) int, boundary particles within H.
+    """
+
+    def __init__(self, count, fluid_pairs, boundary_pairs, boundary, params):
+        n = count
+        h = params.support_radius
+        m = params.particle_mass
+        i, j, offsets, distances = fluid_pairs
+        w, f = kernel_terms(distances, h)
+        grad = offsets * (f * m)[:, None]  # m grad_i W_ij, kg/m^4
+        indptr = np.zeros(n + 1, np.int64)
+        np.cumsum(np.bincount(i, minlength=n), out=indptr[1:])
+        cols = j.astype(np.int32) if n < 2**31 else j
+        self.count = n
+        self._i, self._j = i, j
+        self._upper = [sparse.csr_matrix((np.ascontiguousarray(grad[:, c]), cols, indptr), shape=(n, n))
+                       for c in range(3)]
+        self._lower = [u.T for u in self._upper]
+        self._pair_w = w
+        # Row sums: s_i = sum_j m grad W_ij (antisymmetric pairs), sum_j |m grad W_ij|^2.
+        fluid_sum = np.stack([np.bincount(i, grad[:, c], n) - np.bincount(j, grad[:, c], n)
+                              for c in range(3)], axis=1)
+        grad2 = np.einsum("ij,ij->i", grad, grad)
+        square_sum = np.bincount(i, grad2, n) + np.bincount(j, grad2, n)
+        density = m * (float(kernel(0.0, h)) + np.bincount(i, w, n) + np.bincount(j, w, n))
+
+        boundary_sum = np.zeros((n, 3))
+        self.boundary_rate = np.zeros(n)  # sum_b Psi_b v_b . grad W_ib, kg/(m^3 s)
+        self.boundary_neighbours = np.zeros(n, np.int64)
+        bi, bk, b_offsets, b_distances = boundary_pairs
+        if len(bi):
+            bw, bf = kernel_terms(b_distances, h)
+            psi = params.rest_density * boundary.volumes[bk]
+            b_grad = b_offsets * (bf * psi)[:, None]
+            boundary_sum = np.stack([np.bincount(bi, b_grad[:, c], n) for c in range(3)], axis=1)
+            density = density + np.bincount(bi, psi * bw, n)
+            velocities = boundary.velocities[bk]
+            if np.any(velocities):
+                self.boundary_rate = np.bincount(bi, np.einsum("ij,ij->i", velocities, b_grad), n)
+            self.boundary_neighbours = np.bincount(bi, minlength=n)
+        total = fluid_sum + boundary_sum
+        denominator = np.einsum("ij,ij->i", total, total) + square_sum
+        floor = 1e-9 * (m / h**4) ** 2
+        self.alpha = np.where(denominator > floor, density / np.maximum(denominator, floor), 0.0)
+        self.density = density
+        self._rate_sum = total  # multiplies v_i in D rho / Dt
+        self._accel_sum = fluid_sum + 2.0 * boundary_sum  # mirrored boundary pressure
+
+    def density_rate(self, velocities):
+        """(D rho / Dt)_i = sum_j m (v_i - v_j).grad W_ij + sum_b Psi_b (v_i - v_b).grad W_ib, kg/(m^3 s)."""
+        rate = np.einsum("ij,ij->i", velocities, self._rate_sum) - self.boundary_rate
+        for c in range(3):
+            column = velocities[:, c]
+            rate -= self._upper[c] @ column
+            rate += self._lower[c] @ column
+        return rate
+
+    def pressure_term(self, k):
+        """(N, 3) sum_j m (k_i + k_j) grad W_ij + 2 k_i sum_b Psi_b grad W_ib, with k = kappa / rho."""
+        out = self._accel_sum * k[:, None]
+        for c in range(3):
+            out[:, c] += self._upper[c] @ k
+            out[:, c] -= self._lower[c] @ k
+        return out
+
+    def xsph(self, velocities, epsilon, mass):
+        """XSPH-smoothed velocities v_i + eps sum_j (m / rho_ij)(v_j - v_i) W_ij (Monaghan 1989)."""
+        if epsilon == 0.0 or len(self._i) == 0:
+            return velocities
+        i, j = self._i, self._j
+        weights = (epsilon * 2.0 * mass) * self._pair_w / (self.density[i] + self.density[j])
+        indptr = self._upper[0].indptr
+        smooth = sparse.csr_matrix((weights, self._upper[0].indices, indptr), shape=(self.count, self.count))
+        row_sum = np.bincount(i, weights, self.count) + np.bincount(j, weights, self.count)
+        return velocities + (smooth @ velocities + smooth.T @ velocities) - velocities * row_sum[:, None]
+
+
+@dataclass(frozen=True)
+class SubstepResult:
+    """Output of ``dfsph_substep``.
+
+    Attributes:
+        positions, velocities: (N, 3) float64 at t + dt.
+        kappa: (N,) accumulated constant-density kappa (m^2/s^2) for the warm start.
+        kappa_v: (N,) accumulated dt * kappa_v of the divergence solve (m^2/s).
+        density: (N,) rho_i at the start of the substep (kg/m^3).
+        pressure: (N,) kappa_i * rho_i in Pa.
+        pressure_iterations, divergence_iterations: iterations used.
+        density_error: mean predicted compression / rho0 after the solve.
+        max_density_error: max predicted compression / rho0 after the solve.
+        seconds: dict with "neighbours", "density", "solvers" wall times.
+    """
+
+    positions: np.ndarray
+    velocities: np.ndarray
+    kappa: np.ndarray
+    kappa_v: np.ndarray
+    density: np.ndarray
+    pressure: np.ndarray
+    pressure_iterations: int
+    divergence_iterations: int
+    density_error: float
+    max_density_error: float
+    seconds: dict
+
+
+def _find_pairs(positions, boundary, params, pairs):
+    if pairs is None:
+        pairs = SkinPairs(params.support_radius, 0.0)
+    inner, between = pairs.update(positions, boundary.positions if boundary.positions.shape[0] else None)
+    if between is None:
+        none = np.zeros(0, np.int64)
+        between = (none, none, np.zeros((0, 3)), np.zeros(0))
+    return inner, between
+
+
+def _divergence_solve(ops, velocities, kappa_v, params, dt):
+    """Divergence-free solve (SCA 2015, Alg. 2) in impulse units beta = dt * kappa_v."""
+    rho0 = params.rest_density
+    alpha, density = ops.alpha, ops.density
+    beta = kappa_v.copy()
+    if np.any(beta):
+        velocities = velocities - ops.pressure_term(beta / density)
+    iterations = 0
+    while True:
+        rate = ops.density_rate(velocities)
+        error = dt * float(np.mean(np.maximum(rate, 0.0))) / rho0
+        if (iterations >= 1 and error <= params.divergence_tolerance) or iterations >= params.max_iterations:
+            break
+        updated = np.maximum(beta + alpha * rate, 0.0)
+        change = updated - beta
+        beta = updated
+        velocities = velocities - ops.pressure_term(change / density)
+        iterations += 1
+    return velocities, beta, iterations
+
+
+def _pressure_solve(ops, velocities, kappa, params, dt):
+    """Constant-density solve (SCA 2015, Alg. 3); kappa in m^2/s^2 (= p / rho)."""
+    rho0 = params.rest_density
+    alpha, density = ops.alpha, ops.density
+    kappa = kappa.copy()
+    if np.any(kappa):
+        velocities = velocities - dt * ops.pressure_term(kappa / density)
+    iterations = 0
+    inv_dt2 = 1.0 / (dt * dt)
+    while True:
+        predicted = density + dt * ops.density_rate(velocities)
+        compression = np.maximum(predicted - rho0, 0.0) / rho0
+        error = float(np.mean(compression))
+        if (iterations >= 2 and error <= params.density_tolerance) or iterations >= params.max_iterations:
+            break
+        updated = np.maximum(kappa + alpha * (predicted - rho0) * inv_dt2, 0.0)
+        change = updated - kappa
+        kappa = updated
+        velocities = velocities - dt * ops.pressure_term(change / density)
+        iterations += 1
+    worst = float(np.max(compression))
+    return velocities, kappa, iterations, error, worst
+
+
+def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, pairs=None):
+    """One DFSPH substep of length dt (see the module docstring for the equations).
+
+    Args:
+        positions, velocities: (N, 3) float64 at time t (m, m/s).
+        kappa: (N,) float64 warm start of the constant-density solve (m^2/s^2).
+        kappa_v: (N,) float64 warm start of the divergence solve, dt * kappa_v (m^2/s).
+        boundary: object with ``positions`` (B, 3), ``velocities`` (B, 3) and
+            ``volumes`` (B,) (e.g. ``engine.boundary.BoundaryParticles``), or None.
+        params: SphParams.
+        dt: step in seconds, > 0.
+        pairs: optional ``engine.neighbours.SkinPairs`` reused across substeps
+            (an optimisation only: results do not depend on it).
+
+    Returns:
+        SubstepResult. Inputs are not modified.
+    """
+    positions = np.asarray(positions, np.float64)
+    velocities = np.asarray(velocities, np.float64)
+    n = len(positions)
+    boundary = boundary if boundary is not None else empty_boundary()
+    if n == 0:
+        empty = np.zeros(0)
+        return SubstepResult(positions, velocities, empty, empty, empty, empty, 0, 0, 0.0, 0.0,
+                             {"neighbours": 0.0, "density": 0.0, "solvers": 0.0})
+    clock = time.perf_counter()
+    fluid_pairs, boundary_pairs = _find_pairs(positions, boundary, params, pairs)
+    t_pairs = time.perf_counter()
+    ops = PairOperators(n, fluid_pairs, boundary_pairs, boundary, params)
+    t_density = time.perf_counter()
+
+    velocities, kappa_v, divergence_iterations = _divergence_solve(
+        ops, velocities, np.asarray(kappa_v, np.float64), params, dt)
+    velocities = ops.xsph(velocities, params.viscosity, params.particle_mass)
+    velocities = velocities + dt * np.asarray(params.gravity)
+    velocities, kappa, pressure_iterations, error, worst = _pressure_solve(
+        ops, velocities, np.asarray(kappa, np.float64), params, dt)
+    positions = positions + dt * velocities
+    t_solve = time.perf_counter()
+    return SubstepResult(
+        positions=positions, velocities=velocities, kappa=kappa, kappa_v=kappa_v, density=ops.density,
+        pressure=kappa * ops.density, pressure_iterations=pressure_iterations,
+        divergence_iterations=divergence_iterations, density_error=error, max_density_error=worst,
+        seconds={"neighbours": t_pairs - clock, "density": t_density - t_pairs, "solvers": t_solve - t_density})
+
+
+def sph_density(positions, boundary, params, pairs=None):
+    """rho_i = sum_j m W_ij + sum_b Psi_b W_ib (self included), (N,) float64 kg/m^3."""
+    positions = np.asarray(positions, np.float64)
+    if len(positions) == 0:
+        return np.zeros(0)
+    boundary = boundary if boundary is not None else empty_boundary()
+    fluid_pairs, boundary_pairs = _find_pairs(positions, boundary, params, pairs)
+    return PairOperators(len(positions), fluid_pairs, boundary_pairs, boundary, params).density
+
+
+@dataclass(frozen=True)
+class StepStats:
+    """What one ``advance`` call did (for progress, the manifest and the benchmark).
+
+    Attributes:
+        substeps: substeps taken.
+        iterations: pressure + divergence iterations summed over the substeps.
+        pressure_iterations, divergence_iterations: the two parts of ``iterations``.
+        max_density_error: largest per-substep mean predicted compression / rho0.
+        max_particle_density_error: largest per-particle predicted compression / rho0.
+        min_time_step, max_time_step: smallest and largest substep in seconds.
+        neighbour_seconds, density_seconds, solver_seconds: wall time in each stage.
+        neighbour_rebuilds: Verlet-list rebuilds.
+    """
+
+    substeps: int = 0
+    iterations: int = 0
+    pressure_iterations: int = 0
+    divergence_iterations: int = 0
+    max_density_error: float = 0.0
+    max_particle_density_error: float = 0.0
+    min_time_step: float = 0.0
+    max_time_step: float = 0.0
+    neighbour_seconds: float = 0.0
+    density_seconds: float = 0.0
+    solver_seconds: float = 0.0
+    neighbour_rebuilds: int = 0
+
+
+def _with_solver_arrays(state):
+    arrays = dict(state.particle_arrays)
+    changed = False
+    for name in (KAPPA, KAPPA_V):
+        if name not in arrays or arrays[name].shape != (state.count,):
+            arrays[name] = np.zeros(state.count)
+            changed = True
+    return dataclasses.replace(state, particle_arrays=arrays) if changed else state
+
+
+def check_health(positions, velocities, ids, params, time_now):
+    """Raise SolverError on NaN/inf or a particle faster than ``params.max_speed``."""
+    finite = np.isfinite(positions).all(axis=1) & np.isfinite(velocities).all(axis=1)
+    if not finite.all():
+        bad = int(np.flatnonzero(~finite)[0])
+        raise SolverError(
+            f"SPH solver: particle id {int(ids[bad])} has a non-finite position or velocity at t = {time_now:.6g} s; "
+            "the simulation blew up: lower solver.max_time_step or solver.cfl_factor, or check collider motion")
+    if len(velocities):
+        speed2 = np.einsum("ij,ij->i", velocities, velocities)
+        fastest = int(np.argmax(speed2))
+        speed = math.sqrt(float(speed2[fastest]))
+        if speed > params.max_speed:
+            raise SolverError(
+                f"SPH solver: particle id {int(ids[fastest])} moves at {speed:.4g} m/s at t = {time_now:.6g} s, above "
+                f"the {params.max_speed:.4g} m/s that solver.min_time_step = {params.min_time_step:g} s allows "
+                f"(runaway velocity); lower solver.max_time_step or solver.cfl_factor, or check emitter speeds "
+                "and collider motion")
+
+
+class SphSolver:
+    """The DFSPH reference solver behind ``--solver sph`` (Solver protocol, DEVELOPERS.md).
+
+    Args:
+        neighbour_skin: Verlet-list skin in metres (None: 0.25 H). Affects speed only.
+    """
+
+    name = "sph"
+
+    def __init__(self, neighbour_skin=None):
+        self._skin = neighbour_skin
+        self._params = None
+        self._scene = None
+        self._pairs = None
+
+    def _params_for(self, world):
+        if self._params is None or self._scene is not world.scene:
+            self._params = params_from_scene(world.scene, self._skin)
+            self._scene = world.scene
+            self._pairs = SkinPairs(self._params.support_radius, self._params.neighbour_skin)
+        return self._params
+
+    def settings(self):
+        """Solver settings for the cache manifest (resolved once ``start`` or ``advance`` ran)."""
+        out = {"method": "DFSPH (Bender & Koschier 2015)", "kernel": "cubic spline, H = 2 * spacing",
+               "boundary": "Akinci 2012 particles, mirrored pressure", "viscosity_model": "XSPH",
+               "neighbour_skin": self._skin}
+        if self._params is not None:
+            p = self._params
+            out.update(support_radius=p.support_radius, particle_mass=p.particle_mass, viscosity=p.viscosity,
+                       cfl_factor=p.cfl_factor, max_time_step=p.max_time_step, min_time_step=p.min_time_step,
+                       density_tolerance=p.density_tolerance, divergence_tolerance=p.divergence_tolerance,
+                       max_iterations=p.max_iterations, neighbour_skin=p.neighbour_skin)
+        return out
+
+    def start(self, world):
+        """Initial state (t = 0) of ``world`` with zeroed warm-start arrays."""
+        self._params_for(world)
+        return _with_solver_arrays(world.initial_state())
+
+    def advance(self, state, world, t_end):
+        """Integrate from ``state.time`` to exactly ``t_end`` seconds.
+
+        Per substep: boundary at t, DFSPH substep, ``world.enforce_bounds``,
+        ``world.emit`` over [t, t + dt).
+
+        Returns:
+            (State, StepStats).
+
+        Raises:
+            SolverError: t_end before state.time, NaN/inf, or runaway velocity.
+        """
+        params = self._params_for(world)
+        state = _with_solver_arrays(state)
+        t = float(state.time)
+        t_end = float(t_end)
+        if t_end < t:
+            raise SolverError(f"SPH solver: asked to advance back in time from t = {t} s to {t_end} s; "
+                              "frames must be baked in increasing order")
+        totals = dict(substeps=0, pressure_iterations=0, divergence_iterations=0, max_density_error=0.0,
+                      max_particle_density_error=0.0, neighbour_seconds=0.0, density_seconds=0.0,
+                      solver_seconds=0.0)
+        steps = []
+        rebuilds_before = self._pairs.rebuilds
+        while t < t_end:
+            dt_cfl, fastest = cfl_time_step(state.velocities, params)
+            if dt_cfl < params.min_time_step:
+                check_health(state.positions, state.velocities, state.ids, params, t)
+            dt = substep_length(dt_cfl, t_end - t)
+            t_next = t + dt if dt < t_end - t else t_end
+            boundary = world.boundary_at(t)
+            result = dfsph_substep(state.positions, state.velocities, state.particle_arrays[KAPPA],
+                                   state.particle_arrays[KAPPA_V], boundary, params, dt, self._pairs)
+            check_health(result.positions, result.velocities, state.ids, params, t_next)
+            arrays = dict(state.particle_arrays)
+            arrays[KAPPA] = result.kappa
+            arrays[KAPPA_V] = result.kappa_v
+            state = dataclasses.replace(state, time=t_next, positions=result.positions,
+                                        velocities=result.velocities, particle_arrays=arrays)
+            state = world.enforce_bounds(state)
+            state = world.emit(state, t, t_next)
+            state = _with_solver_arrays(state)
+            totals["substeps"] += 1
+            totals["pressure_iterations"] += result.pressure_iterations
+            totals["divergence_iterations"] += result.divergence_iterations
+            totals["max_density_error"] = max(totals["max_density_error"], result.density_error)
+            totals["max_particle_density_error"] = max(totals["max_particle_density_error"],
+                                                       result.max_density_error)
+            totals["neighbour_seconds"] += result.seconds["neighbours"]
+            totals["density_seconds"] += result.seconds["density"]
+            totals["solver_seconds"] += result.seconds["solvers"]
+            steps.append(dt)
+            t = t_next
+        stats = StepStats(iterations=totals["pressure_iterations"] + totals["divergence_iterations"],
+                          min_time_step=min(steps) if steps else 0.0, max_time_step=max(steps) if steps else 0.0,
+                          neighbour_rebuilds=self._pairs.rebuilds - rebuilds_before, **totals)
+        return state, stats
+
+    def frame_attributes(self, state, world):
+        """Per-particle ``density`` (kg/m^3, fresh SPH sum at the state's positions) and
+        ``pressure`` (Pa, kappa * rho from the last constant-density solve) for the cache."""
+        params = self._params_for(world)
+        density = sph_density(state.positions, world.boundary_at(state.time), params, self._pairs)
+        kappa = state.particle_arrays.get(KAPPA)
+        if kappa is None or kappa.shape != (state.count,):
+            kappa = np.zeros(state.count)
+        return {"density": density, "pressure": kappa * density}
