@@ -45,7 +45,7 @@ class SPLASHDRAFT_PG_object(bpy.types.PropertyGroup):
         size=3, subtype="VELOCITY", unit="VELOCITY", default=(0.0, 0.0, 0.0), soft_min=-50.0, soft_max=50.0)
     fill_jitter: FloatProperty(
         name="Jitter", description="Random offset of the initial particles, as a fraction of the particle spacing",
-        default=0.0, min=0.0, max=0.5, subtype="FACTOR")
+        default=0.0, min=0.0, max=0.49, subtype="FACTOR")
     # Stream
     stream_speed: FloatProperty(
         name="Speed", description="Speed at which liquid leaves the source surface",

@@ -232,7 +232,7 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
     scene = load_scene_any(scene)
     first, last = resolve_frames(scene, frames)
     if solver_name not in SOLVER_NAMES:
-        raise UsageError(f"solver {solver_name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
+        make_solver(solver_name)  # raises the UsageError naming the choices
     hash_hex = scene_hash(scene)
 
     continue_from = None  # (state, frame) of an existing checkpoint

@@ -88,35 +88,44 @@ def boundary_volumes(points, support_radius):
 def sample_box_walls(lower, upper, spacing, faces=None, layers=1):
     """Boundary particles on the inside faces of an axis-aligned box.
 
+    Each face is sampled with a square-ish lattice that spans the face exactly
+    (edge to edge), with the step along each axis the largest value <= spacing
+    that divides the face length, so samples land on the edges and corners
+    shared with neighbouring faces (those are kept once). Extra layers sit
+    outside the face, one spacing apart, and extend ``layer`` rows past the
+    edges so corners stay closed.
+
     Args:
-        lower, upper: (3,) box corners in metres.
+        lower, upper: (3,) box corners in metres (lower < upper on every axis).
         spacing: sample spacing in metres (usually the fluid particle spacing).
         faces: face name -> "wall" | "open"; only walls are sampled. Default all walls.
         layers: number of sample layers, the first on the face, the rest outside it.
 
     Returns:
-        points (B, 3) and inward unit normals (B, 3), float64. Edges and corners
-        are sampled once per face that meets there; duplicates are removed.
+        points (B, 3) and inward unit normals (B, 3), float64.
     """
     lower = np.asarray(lower, np.float64)
     upper = np.asarray(upper, np.float64)
+    if lower.shape != (3,) or upper.shape != (3,) or not np.all(upper > lower):
+        raise ValueError(f"box corners must be 3-vectors with upper > lower, got {lower} and {upper}")
+    if not spacing > 0:
+        raise ValueError(f"spacing must be > 0, got {spacing}")
     faces = faces or {name: "wall" for name in FACE_NAMES}
     points, normals = [], []
     for axis in range(3):
         others = [a for a in range(3) if a != axis]
-        # Extend the face lattice past the edges so corners are closed.
-        ranges = []
-        for a in others:
-            count = int(np.ceil((upper[a] - lower[a]) / spacing))
-            pad = layers
-            ranges.append(lower[a] + spacing * np.arange(-pad, count + pad + 1))
-        grid_u, grid_v = np.meshgrid(*ranges, indexing="ij")
         for side, sign in ((0, 1.0), (1, -1.0)):
             name = FACE_NAMES[2 * axis + side]
             if faces.get(name, "wall") != "wall":
                 continue
             plane = lower[axis] if side == 0 else upper[axis]
             for layer in range(layers):
+                ranges = []
+                for a in others:
+                    count = max(1, int(np.ceil((upper[a] - lower[a]) / spacing - 1e-9)))
+                    step = (upper[a] - lower[a]) / count
+                    ranges.append(lower[a] + step * np.arange(-layer, count + layer + 1))
+                grid_u, grid_v = np.meshgrid(*ranges, indexing="ij")
                 p = np.empty((grid_u.size, 3))
                 p[:, others[0]] = grid_u.ravel()
                 p[:, others[1]] = grid_v.ravel()

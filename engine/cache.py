@@ -451,7 +451,9 @@ class CacheWriter:
         try:
             write_atomic(path, data)
         except OSError as exc:
-            raise CacheError(f"{path}: cannot write ({exc.strerror}); free disk space or choose another --out folder") from exc
+            raise CacheError(
+                f"{path}: cannot write ({exc.strerror}); free disk space or choose another --out folder"
+            ) from exc
 
     def write_frame(self, frame, arrays, time, substeps, seconds):
         """Write frame ``frame`` and list it in the manifest.
@@ -462,7 +464,8 @@ class CacheWriter:
             time: simulated time of the frame, s. substeps: solver substeps taken to reach it.
             seconds: wall-clock seconds spent on it.
         """
-        data = frame_bytes(arrays["positions"], arrays["velocities"], arrays["ids"], arrays["density"], arrays["pressure"])
+        names = ("positions", "velocities", "ids", "density", "pressure")
+        data = frame_bytes(*(arrays[name] for name in names))
         name = frame_file_name(frame)
         self._write(self.folder / name, data)
         self.manifest["frames"][str(int(frame))] = {

@@ -739,41 +739,35 @@ def _write_array(target, key, array):
 
 
 def scene_hash(scene):
-    """sha256 hex of the canonical scene JSON plus every referenced mesh and motion file's bytes.
+    """sha256 hex of the canonical scene JSON plus the bytes of every mesh and motion array.
 
     Args:
-        scene: a scene file path or a Scene. Inline arrays are hashed by their bytes.
+        scene: a scene file path or a Scene.
 
     The canonical JSON is ``scene_to_dict`` (defaults written out) with sorted
-    keys and no whitespace, so formatting and omitted defaults do not change
-    the hash, while any value or mesh byte does.
+    keys and no whitespace, and with each mesh / motion reference replaced by
+    a marker; the arrays themselves (as loaded: float64 vertices, int64
+    triangles, float64 matrices or per-frame vertices) are hashed in scene
+    order. So formatting, omitted defaults, file names and the mesh file
+    format (OBJ, PLY, npz, inline) do not change the hash; any value does.
     """
     if not isinstance(scene, Scene):
         scene = load_scene(scene)
     data = scene_to_dict(scene)
-    digest = hashlib.sha256()
-    blobs = []
-
-    def collect(value):
-        if isinstance(value, dict) and set(value) == {"vertices", "triangles"}:
-            blobs.append(np.ascontiguousarray(value["vertices"], np.float64).tobytes())
-            blobs.append(np.ascontiguousarray(value["triangles"], np.int64).tobytes())
-            return "<inline mesh>"
-        if isinstance(value, np.ndarray):
-            blobs.append(np.ascontiguousarray(value, np.float64).tobytes())
-            return "<inline array>"
-        return value
-
     for key in ("emitters", "colliders"):
         for item in data[key]:
-            for field in ("mesh", "transforms", "vertices"):
-                value = item.get(field)
-                if isinstance(value, str):
-                    with open(os.path.join(scene.base_dir, value), "rb") as handle:
-                        blobs.append(handle.read())
-                elif value is not None:
-                    item[field] = collect(value)
-    digest.update(json.dumps(data, sort_keys=True, separators=(",", ":")).encode("utf-8"))
-    for blob in blobs:
-        digest.update(hashlib.sha256(blob).digest())
+            for field_name in ("mesh", "transforms", "vertices"):
+                if item.get(field_name) is not None:
+                    item[field_name] = "<array>"
+    arrays = []
+    for obj in scene.emitters + scene.colliders:
+        for name, dtype in (("vertices", np.float64), ("triangles", np.int64), ("transforms", np.float64),
+                            ("frame_vertices", np.float64)):
+            value = getattr(obj, name, None)
+            if value is not None:
+                arrays.append(np.ascontiguousarray(value, dtype))
+    digest = hashlib.sha256(json.dumps(data, sort_keys=True, separators=(",", ":")).encode("utf-8"))
+    for array in arrays:
+        digest.update(str(array.shape).encode("ascii"))
+        digest.update(array.tobytes())
     return digest.hexdigest()

@@ -17,40 +17,48 @@ step 1 of the next coincide):
 4. constant-density solve on v* (warm-started);
 5. x(t + dt) = x(t) + dt v*.
 
-Both solvers are Jacobi-style iterations with the DFSPH factor as the diagonal.
-A constant-density iteration sets kappa_i <- max(0, kappa_i + alpha_i (rho*_i -
-rho0) / dt^2), with rho*_i = rho_i + dt (D rho / Dt)_i(v*), and applies the
-change of kappa as v_i -= dt sum_j m (dk_i / rho_i + dk_j / rho_j) grad W_ij.
-Keeping the accumulated kappa non-negative (a projection) lets the solver take
-back an over-correction and keeps free surfaces from pulling (no tension), the
-usual clamping of the source term in DFSPH implementations made consistent with
-warm starting. The divergence-free solver does the same with (D rho / Dt)_i.
+Both solvers are Jacobi iterations with the DFSPH factor as the diagonal, as
+in the SCA paper. A constant-density iteration adds
+dkappa_i = alpha_i max(rho*_i - rho0, 0) / dt^2, with rho*_i = rho_i + dt
+(D rho / Dt)_i(v*), and applies it as v_i -= dt sum_j m (dk_i / rho_i + dk_j /
+rho_j) grad W_ij (dk = dkappa / rho). Only compression is corrected (clamped
+source term), so free surfaces do not pull (no tension) and kappa >= 0. The
+divergence-free solver does the same with dt * kappa_v increments alpha_i
+max(D rho / Dt, 0); particles with fewer than ``MIN_DIVERGENCE_NEIGHBOURS``
+neighbours (kernel sum truncated at a free surface or in spray) sit it out.
 Stopping rules (SCA paper): mean compression max(rho* - rho0, 0) / rho0 <=
 ``density_tolerance`` after at least 2 iterations; mean dt max(D rho/Dt, 0) /
 rho0 <= ``divergence_tolerance`` after at least 1 iteration; both capped at
 ``max_iterations`` (not reaching the tolerance is reported in the stats, not
-raised).
+raised). We tried two alternatives and dropped them: a signed (projected)
+Jacobi step oscillated and diverged at relaxation 1, and relaxing only the
+expansion part left a temporally noisy pressure field.
 
-Warm start: the accumulated kappa of the constant-density solver (units m^2/s^2,
-kappa = p / rho) and dt * kappa_v of the divergence solver (m^2/s, so it does not
-depend on the step size) are stored per particle in
-``State.particle_arrays["sph_kappa"]`` and ``["sph_kappa_v"]``; checkpoints carry
-them, so a resumed bake is bit-identical to an uninterrupted one.
+Warm start (SCA paper, damped here): each solver starts from
+``WARM_START_FACTOR`` = 1/2 of what it accumulated in the previous substep; see
+the constant for why. The accumulated kappa (m^2/s^2, kappa = p / rho) and
+dt * kappa_v (m^2/s, independent of the step size) are stored per particle in
+``State.particle_arrays["sph_kappa"]`` and ``["sph_kappa_v"]``, and the pressure
+output in ``["sph_pressure"]``; checkpoints carry them, so a resumed bake is
+bit-identical to an uninterrupted one.
 
 Boundary: Akinci, Ihmsen, Akinci, Solenthaler & Teschner 2012, "Versatile
 Rigid-Fluid Coupling for Incompressible SPH", ACM TOG 31(4): boundary particles
 with Psi_b = rho0 V_b add to density and to the density rate with the relative
 velocity (v_i - v_b), so moving colliders push the fluid. Pressure variant:
-**mirrored** (p_b = p_i, rho_b = rho_i in the symmetric formula), i.e. the
-velocity change from boundary b is -dt * 2 (kappa_i / rho_i) Psi_b grad W_ib,
-twice the p_i / rho_i^2-only term. Mirroring makes a uniform pressure exert no
-net force next to a wall (sum_j m grad W_ij + sum_b Psi_b grad W_ib ~ 0 there);
-the hydrostatic tank (engine/validate.py) checks the resulting pressure profile.
+**p_i / rho_i^2 only** (Akinci's boundary force, not mirrored): the velocity
+change from boundary b is -dt (kappa_i / rho_i) Psi_b grad W_ib. This is the
+transpose of the boundary part of the density-rate operator, so the pressure
+system stays symmetric and the Jacobi iteration converges; the mirrored variant
+(p_b = p_i, twice the term) made the iteration diverge next to walls in our
+tests. The hydrostatic tank (engine/validate.py) checks the pressure profile.
 The boundary receives no reaction here (colliders are kinematic).
 
-Pressure output: p_i = kappa_i * rho_i in Pa, from the constant-density solve
-(kappa = p / rho, so the pressure term is sum_j m (p_i / rho_i^2 + p_j / rho_j^2)
-grad W_ij); p >= 0 by the projection above, with 0 at free surfaces.
+Pressure output (Pa): p_i = rho_i (kappa_i + kappa_v_i), the total pressure
+applied during the substep by the two solvers (both act through the same
+symmetric pressure term, with kappa = p / rho: sum_j m (p_i / rho_i^2 + p_j /
+rho_j^2) grad W_ij); p >= 0, and 0 at free surfaces. The hydrostatic tank
+compares its depth profile with rho0 g d.
 
 Kernel and mass: cubic spline (engine/kernels.py), support radius
 H = 2 * particle_spacing, mass m = rest_density * particle_spacing^3.
@@ -78,6 +86,7 @@ from .neighbours import SkinPairs
 
 KAPPA = "sph_kappa"
 KAPPA_V = "sph_kappa_v"
+PRESSURE = "sph_pressure"
 
 
 @dataclass(frozen=True)
@@ -122,6 +131,20 @@ class SphParams:
         """Speed above which the CFL step would drop below ``min_time_step`` (m/s)."""
         return self.cfl_factor * self.particle_spacing / self.min_time_step
 
+
+#: Particles with fewer neighbours (fluid + boundary within H) skip the
+#: divergence solve: at H = 2 d a full lattice neighbourhood has 26 to 32.
+MIN_DIVERGENCE_NEIGHBOURS = 20
+
+#: Warm start: each solver starts from this fraction of the kappa it
+#: accumulated in the previous substep (SCA 2015 warm start, damped). With
+#: compression-only Jacobi steps an undamped warm start can only grow, so a
+#: pressure that is no longer needed (after an impact) is never released and the
+#: flow gains energy (a dam break ran away in our tests); with 1/2 an unneeded
+#: pressure halves every substep, while a steady one (hydrostatic) is rebuilt
+#: by the iterations from half its value (about half the iterations of a cold
+#: start in the hydrostatic tank).
+WARM_START_FACTOR = 0.5
 
 #: Default Verlet skin as a fraction of the support radius.
 DEFAULT_SKIN_FRACTION = 0.25
@@ -252,6 +275,7 @@ class PairOperators:
                        for c in range(3)]
         self._lower = [u.T for u in self._upper]
         self._pair_w = w
+        self.neighbour_count = np.bincount(i, minlength=n) + np.bincount(j, minlength=n)
         # Row sums: s_i = sum_j m grad W_ij (antisymmetric pairs), sum_j |m grad W_ij|^2.
         fluid_sum = np.stack([np.bincount(i, grad[:, c], n) - np.bincount(j, grad[:, c], n)
                               for c in range(3)], axis=1)
@@ -273,13 +297,14 @@ class PairOperators:
             if np.any(velocities):
                 self.boundary_rate = np.bincount(bi, np.einsum("ij,ij->i", velocities, b_grad), n)
             self.boundary_neighbours = np.bincount(bi, minlength=n)
+        self.neighbour_count = self.neighbour_count + self.boundary_neighbours
         total = fluid_sum + boundary_sum
         denominator = np.einsum("ij,ij->i", total, total) + square_sum
         floor = 1e-9 * (m / h**4) ** 2
         self.alpha = np.where(denominator > floor, density / np.maximum(denominator, floor), 0.0)
         self.density = density
         self._rate_sum = total  # multiplies v_i in D rho / Dt
-        self._accel_sum = fluid_sum + 2.0 * boundary_sum  # mirrored boundary pressure
+        self._accel_sum = total  # boundary term k_i Psi_b grad W_ib: p_i / rho_i^2 only
 
     def density_rate(self, velocities):
         """(D rho / Dt)_i = sum_j m (v_i - v_j).grad W_ij + sum_b Psi_b (v_i - v_b).grad W_ib, kg/(m^3 s)."""
@@ -291,7 +316,7 @@ class PairOperators:
         return rate
 
     def pressure_term(self, k):
-        """(N, 3) sum_j m (k_i + k_j) grad W_ij + 2 k_i sum_b Psi_b grad W_ib, with k = kappa / rho."""
+        """(N, 3) sum_j m (k_i + k_j) grad W_ij + k_i sum_b Psi_b grad W_ib, with k = kappa / rho."""
         out = self._accel_sum * k[:, None]
         for c in range(3):
             out[:, c] += self._upper[c] @ k
@@ -319,7 +344,7 @@ class SubstepResult:
         kappa: (N,) accumulated constant-density kappa (m^2/s^2) for the warm start.
         kappa_v: (N,) accumulated dt * kappa_v of the divergence solve (m^2/s).
         density: (N,) rho_i at the start of the substep (kg/m^3).
-        pressure: (N,) kappa_i * rho_i in Pa.
+        pressure: (N,) rho_i (kappa_i + kappa_v_i) in Pa (module docstring).
         pressure_iterations, divergence_iterations: iterations used.
         density_error: mean predicted compression / rho0 after the solve.
         max_density_error: max predicted compression / rho0 after the solve.
@@ -353,18 +378,21 @@ def _divergence_solve(ops, velocities, kappa_v, params, dt):
     """Divergence-free solve (SCA 2015, Alg. 2) in impulse units beta = dt * kappa_v."""
     rho0 = params.rest_density
     alpha, density = ops.alpha, ops.density
-    beta = kappa_v.copy()
+    beta = WARM_START_FACTOR * kappa_v
+    # Particles short of neighbours (free surface, spray) have a truncated kernel
+    # sum; their density rate is not a compression signal, so they sit out.
+    active = ops.neighbour_count >= MIN_DIVERGENCE_NEIGHBOURS
+    beta[~active] = 0.0
     if np.any(beta):
         velocities = velocities - ops.pressure_term(beta / density)
     iterations = 0
     while True:
-        rate = ops.density_rate(velocities)
+        rate = np.where(active, ops.density_rate(velocities), 0.0)
         error = dt * float(np.mean(np.maximum(rate, 0.0))) / rho0
         if (iterations >= 1 and error <= params.divergence_tolerance) or iterations >= params.max_iterations:
             break
-        updated = np.maximum(beta + alpha * rate, 0.0)
-        change = updated - beta
-        beta = updated
+        change = alpha * np.maximum(rate, 0.0)
+        beta = beta + change
         velocities = velocities - ops.pressure_term(change / density)
         iterations += 1
     return velocities, beta, iterations
@@ -374,7 +402,7 @@ def _pressure_solve(ops, velocities, kappa, params, dt):
     """Constant-density solve (SCA 2015, Alg. 3); kappa in m^2/s^2 (= p / rho)."""
     rho0 = params.rest_density
     alpha, density = ops.alpha, ops.density
-    kappa = kappa.copy()
+    kappa = WARM_START_FACTOR * kappa
     if np.any(kappa):
         velocities = velocities - dt * ops.pressure_term(kappa / density)
     iterations = 0
@@ -385,9 +413,8 @@ def _pressure_solve(ops, velocities, kappa, params, dt):
         error = float(np.mean(compression))
         if (iterations >= 2 and error <= params.density_tolerance) or iterations >= params.max_iterations:
             break
-        updated = np.maximum(kappa + alpha * (predicted - rho0) * inv_dt2, 0.0)
-        change = updated - kappa
-        kappa = updated
+        change = alpha * np.maximum(predicted - rho0, 0.0) * inv_dt2
+        kappa = kappa + change
         velocities = velocities - dt * ops.pressure_term(change / density)
         iterations += 1
     worst = float(np.max(compression))
@@ -435,7 +462,7 @@ def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, p
     t_solve = time.perf_counter()
     return SubstepResult(
         positions=positions, velocities=velocities, kappa=kappa, kappa_v=kappa_v, density=ops.density,
-        pressure=kappa * ops.density, pressure_iterations=pressure_iterations,
+        pressure=(kappa + kappa_v / dt) * ops.density, pressure_iterations=pressure_iterations,
         divergence_iterations=divergence_iterations, density_error=error, max_density_error=worst,
         seconds={"neighbours": t_pairs - clock, "density": t_density - t_pairs, "solvers": t_solve - t_density})
 
@@ -482,7 +509,7 @@ class StepStats:
 def _with_solver_arrays(state):
     arrays = dict(state.particle_arrays)
     changed = False
-    for name in (KAPPA, KAPPA_V):
+    for name in (KAPPA, KAPPA_V, PRESSURE):
         if name not in arrays or arrays[name].shape != (state.count,):
             arrays[name] = np.zeros(state.count)
             changed = True
@@ -534,7 +561,7 @@ class SphSolver:
     def settings(self):
         """Solver settings for the cache manifest (resolved once ``start`` or ``advance`` ran)."""
         out = {"method": "DFSPH (Bender & Koschier 2015)", "kernel": "cubic spline, H = 2 * spacing",
-               "boundary": "Akinci 2012 particles, mirrored pressure", "viscosity_model": "XSPH",
+               "boundary": "Akinci 2012 particles, pressure p_i/rho_i^2 only", "viscosity_model": "XSPH",
                "neighbour_skin": self._skin}
         if self._params is not None:
             p = self._params
@@ -586,6 +613,7 @@ class SphSolver:
             arrays = dict(state.particle_arrays)
             arrays[KAPPA] = result.kappa
             arrays[KAPPA_V] = result.kappa_v
+            arrays[PRESSURE] = result.pressure
             state = dataclasses.replace(state, time=t_next, positions=result.positions,
                                         velocities=result.velocities, particle_arrays=arrays)
             state = world.enforce_bounds(state)
@@ -608,11 +636,11 @@ class SphSolver:
         return state, stats
 
     def frame_attributes(self, state, world):
-        """Per-particle ``density`` (kg/m^3, fresh SPH sum at the state's positions) and
-        ``pressure`` (Pa, kappa * rho from the last constant-density solve) for the cache."""
+        """Per-particle ``density`` (kg/m^3, SPH sum at the state's positions) and
+        ``pressure`` (Pa, from the last substep; 0 for particles emitted since) for the cache."""
         params = self._params_for(world)
         density = sph_density(state.positions, world.boundary_at(state.time), params, self._pairs)
-        kappa = state.particle_arrays.get(KAPPA)
-        if kappa is None or kappa.shape != (state.count,):
-            kappa = np.zeros(state.count)
-        return {"density": density, "pressure": kappa * density}
+        pressure = state.particle_arrays.get(PRESSURE)
+        if pressure is None or pressure.shape != (state.count,):
+            pressure = np.zeros(state.count)
+        return {"density": density, "pressure": np.array(pressure, np.float64)}

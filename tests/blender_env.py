@@ -86,8 +86,8 @@ def enable_from_source():
 
     Returns the module name.
     """
-    import addon_utils
     import bpy
+    import addon_utils
 
     repo_dir = Path(tempfile.mkdtemp(prefix="splashdraft_repo_"))
     os.symlink(ROOT, repo_dir / PACKAGE_ID)
@@ -103,8 +103,8 @@ def enable_from_source():
 
 def install_zip(zip_path):
     """Install and enable a built zip into the isolated user folder; returns (module name, seconds)."""
-    import addon_utils
     import bpy
+    import addon_utils
 
     start = time.perf_counter()
     bpy.ops.extensions.package_install_files(filepath=str(zip_path), repo="user_default", enable_on_install=True)
@@ -116,8 +116,8 @@ def install_zip(zip_path):
 
 
 def uninstall(module):
-    import addon_utils
     import bpy
+    import addon_utils
 
     addon_utils.disable(module, default_set=True)
     repo = module.split(".")[1]
@@ -126,7 +126,8 @@ def uninstall(module):
 
 
 def reset_scene():
-    """An empty scene with metric units and frames 1..N kept by the caller."""
+    """Blender's factory start-up with an empty scene; call it before enabling the add-on
+    (factory settings reset the preferences, add-ons and extension repositories included)."""
     import bpy
 
     bpy.ops.wm.read_factory_settings(use_empty=True)

@@ -194,15 +194,16 @@ def build(platforms, use_wheels=True, out_dir=ROOT / "dist", cache_dir=ROOT / "w
     manifest = tomllib.loads((ROOT / "blender_manifest.toml").read_text(encoding="utf-8"))
     stem = f"{manifest['id']}-{manifest['version']}"
     stage(Path(stage_dir), platforms if use_wheels else [], wheels)
-    before = set(out_dir.glob(f"{stem}*.zip"))
-    for old in before:
-        old.unlink()
+    # Remove only the zips this kind of build writes (a quick build keeps the platform zips and back).
+    old_names = [f"{stem}-{p.replace('-', '_')}.zip" for p in platforms] if use_wheels else [f"{stem}.zip"]
+    for name in old_names:
+        (out_dir / name).unlink(missing_ok=True)
     args = ["build", "--source-dir", str(stage_dir), "--output-dir", str(out_dir)]
     if use_wheels:
         args.append("--split-platforms")
     print(run_blender_ext(script, tags, *args).splitlines()[-1])
-    zips = sorted(out_dir.glob(f"{stem}*.zip"))
-    if not zips:
+    zips = sorted(p for p in (out_dir / name for name in old_names) if p.exists())
+    if len(zips) != len(old_names):
         raise RuntimeError(f"blender_ext build wrote no {stem}*.zip into {out_dir}")
     for path in zips:
         run_blender_ext(script, tags, "validate", str(path))

@@ -1,0 +1,216 @@
+"""``LearnedSolver``: the learned preview behind ``--solver learned`` (Solver protocol, DEVELOPERS.md).
+
+Each learned step of (about) the model's fixed Froude duration:
+
+1. boundary particles of walls and colliders at t (``World.boundary_at``);
+2. features from positions, v_t and v_{t-1} (``features.build_graph``), normalised
+   with the contract's statistics;
+3. the ONNX core on onnxruntime (``runtime.CoreRunner``, tiled above
+   ``tile_particles``) predicts the non-gravity acceleration;
+4. semi-implicit Euler (``features.integrate``);
+5. the hard constraints (``World.enforce_bounds``: open faces remove particles,
+   walls clamp, colliders push out), then stream emission over [t, t + dt)
+   (``World.emit``), exactly as the reference solver does.
+
+A frame interval T is split into n = max(1, round(T / step)) equal steps, so
+the step the model sees stays within a few per cent of its trained step at
+ordinary frame rates. v_{t-1} is kept per particle in
+``State.particle_arrays["learned_previous_velocity"]`` so a resumed bake is
+identical to an uninterrupted one; newly emitted particles start with
+v_{t-1} = v_t.
+
+Frame attributes: ``density`` is the SPH estimate (cubic spline, H = 2 d,
+fluid + Akinci boundary term; Monaghan 1992). ``pressure`` is an
+equation-of-state *estimate*, not a solved pressure: p = c^2 max(rho - rho0, 0)
+with c = 10 sqrt(g L) and L the bounds height (the weakly compressible
+speed-of-sound rule c >= 10 U_max, Monaghan 1994, J. Comput. Phys. 110:399,
+with U_max ~ sqrt(g L); from memory). The manifest settings say so.
+"""
+
+import dataclasses
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from ..errors import ModelError, SolverError
+from . import features
+from .contract import load_contract
+from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
+
+PREVIOUS_VELOCITY = "learned_previous_velocity"
+
+#: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
+DEFAULT_MODEL_NAME = "preview-gn1"
+MODELS_DIR = Path(__file__).resolve().parents[2] / "models"
+
+
+def default_model_path():
+    return MODELS_DIR / f"{DEFAULT_MODEL_NAME}.onnx"
+
+
+@dataclass(frozen=True)
+class LearnedStepStats:
+    """What one ``advance`` did; ``substeps`` is the number of learned steps."""
+
+    substeps: int
+    time_step: float
+    neighbour_seconds: float
+    network_seconds: float
+    constraint_seconds: float
+    truncated_neighbour_rows: int
+
+
+class LearnedSolver:
+    """The learned preview (Solver protocol).
+
+    Args:
+        scene: accepted for the bake loop's uniform construction; unused.
+        model: path of the .onnx model (its .json contract beside it); default
+            ``models/preview-gn1.onnx``.
+        threads: onnxruntime intra-op threads (2 measured best here).
+        tile_particles: run the core in tiles of this many receivers above it.
+
+    Raises:
+        ModelError: model or contract missing, corrupt or mismatched (names the file and the fix).
+    """
+
+    name = "learned"
+
+    def __init__(self, scene=None, model=None, threads=2, tile_particles=DEFAULT_TILE_PARTICLES):
+        self.model_path = Path(model) if model is not None else default_model_path()
+        if not self.model_path.exists() and self.model_path.suffix != ".json":
+            contract_beside = self.model_path.with_suffix(".json")
+            if not contract_beside.exists():
+                raise ModelError(
+                    f"model file {self.model_path}: not found; the learned preview needs the shipped model "
+                    "(models/preview-gn1.onnx and .json) -- restore it from the repository, pass another model, "
+                    "or retrain with `python -m training.train` (see models/preview-gn1.md)"
+                )
+        self.contract, self.onnx_path = load_contract(self.model_path)
+        self.stats = self.contract["normalisation"]
+        self.runner = CoreRunner(self.onnx_path, self.contract["rounds"], threads, tile_particles)
+        self.runner.warm_up()
+        self._boundary_tree = None  # (positions, tree)
+
+    # -- protocol
+
+    def settings(self):
+        c = self.contract
+        return {
+            "method": "message-passing graph network preview (own design), onnxruntime CPU",
+            "model": c["name"],
+            "onnx_sha256": c["onnx_sha256"],
+            "feature_version": c["feature_version"],
+            "step_froude": c["step_froude"],
+            "radius_spacings": c["radius_spacings"],
+            "rounds": c["rounds"],
+            "constraints": "World.enforce_bounds after every step",
+            "density": "SPH estimate, cubic spline H = 2 d, fluid + boundary",
+            "pressure": "equation-of-state estimate c^2 max(rho - rho0, 0), c = 10 sqrt(g * bounds height); not solved",
+        }
+
+    def start(self, world):
+        state = world.initial_state()
+        arrays = dict(state.particle_arrays)
+        arrays[PREVIOUS_VELOCITY] = state.velocities.copy()
+        return dataclasses.replace(state, particle_arrays=arrays)
+
+    def step_acceleration(self, state, world, units):
+        """World-space accelerations (N, 3) m/s^2 the model predicts for ``state``; also returns the Graph."""
+        boundary = world.boundary_at(state.time)
+        previous = state.particle_arrays.get(PREVIOUS_VELOCITY)
+        if previous is None or previous.shape != state.velocities.shape:
+            previous = state.velocities
+        tree = None
+        if len(boundary.positions):
+            # The tree is over model-frame positions in spacings; build it from those.
+            bx = units.to_model_vectors(boundary.positions) / units.spacing
+            cached = self._boundary_tree
+            if cached is not None and cached[0].shape == bx.shape and np.array_equal(cached[0], bx):
+                tree = cached[1]
+            else:
+                tree = cKDTree(bx)
+                self._boundary_tree = (bx, tree)
+        c = self.contract
+        graph = features.build_graph(
+            state.positions, state.velocities, previous, boundary, units, c["radius_spacings"],
+            c["density_support_spacings"], c["max_neighbours"], c["max_boundary_neighbours"], boundary_tree=tree,
+        )  # fmt: skip
+        inputs = features.normalise(graph, self.stats)
+        output = self.runner.run(inputs, state.positions / units.spacing, 4.0)
+        return features.acceleration_from_output(output, self.stats, units), graph
+
+    def advance(self, state, world, t_end):
+        """Learned steps from ``state.time`` to exactly ``t_end`` (see the module docstring).
+
+        Raises:
+            SolverError: t_end before state.time, or non-finite values after a step (names the step).
+        """
+        t, t_end = float(state.time), float(t_end)
+        if t_end < t:
+            raise SolverError(f"learned solver: asked to advance back in time from t = {t} s to {t_end} s; "
+                              "frames must be baked in increasing order")
+        units = features.Units(world.particle_spacing, world.gravity)
+        step = self.contract["step_froude"] * units.time
+        count = max(1, int(round((t_end - t) / step))) if t_end > t else 0
+        dt = (t_end - t) / count if count else 0.0
+        timings = {"neighbours": 0.0, "network": 0.0, "constraints": 0.0}
+        truncated = 0
+        if PREVIOUS_VELOCITY not in state.particle_arrays:
+            arrays = dict(state.particle_arrays)
+            arrays[PREVIOUS_VELOCITY] = state.velocities.copy()
+            state = dataclasses.replace(state, particle_arrays=arrays)
+        for k in range(count):
+            t_next = t_end if k == count - 1 else t + dt
+            if state.count:
+                started = time.perf_counter()
+                accelerations, graph = self.step_acceleration(state, world, units)
+                truncated += graph.truncated_rows
+                timings["network"] += time.perf_counter() - started
+                positions, velocities = features.integrate(state.positions, state.velocities, accelerations, t_next - t)
+                if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
+                    bad = int(np.flatnonzero(~np.isfinite(positions).all(axis=1) | ~np.isfinite(velocities).all(axis=1))[0])
+                    raise SolverError(
+                        f"learned solver: step {k + 1} of {count} from t = {t:.6g} s produced non-finite values "
+                        f"(particle id {int(state.ids[bad])}); the model left its trained range -- bake this shot "
+                        "with --solver sph, or retrain with shots like it"
+                    )
+                arrays = dict(state.particle_arrays)
+                arrays[PREVIOUS_VELOCITY] = state.velocities
+                state = dataclasses.replace(state, time=t_next, positions=positions, velocities=velocities,
+                                            particle_arrays=arrays)
+            else:
+                state = dataclasses.replace(state, time=t_next)
+            started = time.perf_counter()
+            state = world.enforce_bounds(state)
+            first_new = state.next_id
+            state = world.emit(state, t, t_next)
+            if state.next_id > first_new:
+                arrays = dict(state.particle_arrays)
+                fresh = state.ids >= first_new
+                previous = arrays[PREVIOUS_VELOCITY].copy()
+                previous[fresh] = state.velocities[fresh]
+                arrays[PREVIOUS_VELOCITY] = previous
+                state = dataclasses.replace(state, particle_arrays=arrays)
+            timings["constraints"] += time.perf_counter() - started
+            t = t_next
+        stats = LearnedStepStats(substeps=count, time_step=dt, neighbour_seconds=timings["neighbours"],
+                                 network_seconds=timings["network"], constraint_seconds=timings["constraints"],
+                                 truncated_neighbour_rows=truncated)
+        return state, stats
+
+    def frame_attributes(self, state, world):
+        """``density`` (kg/m^3, SPH estimate) and ``pressure`` (Pa, equation-of-state estimate) per particle."""
+        from ..compare import sph_density
+
+        boundary = world.boundary_at(state.time)
+        density, _ = sph_density(state.positions, world.particle_spacing, world.rest_density,
+                                 boundary.positions, boundary.volumes)
+        height = float(world.upper[2] - world.lower[2])
+        g = float(np.linalg.norm(world.gravity))
+        sound = 10.0 * np.sqrt(max(g * height, 1e-12))
+        pressure = sound**2 * np.maximum(density - world.rest_density, 0.0)
+        return {"density": density, "pressure": pressure}

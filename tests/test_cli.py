@@ -1,0 +1,107 @@
+"""The command line through ``main([...])``: exit status, stdout (machine output) and stderr (people).
+
+Conventions checked (DEVELOPERS.md, docs/style.md "Command line"): ``--json`` output
+is the only thing on stdout; human text, progress and the final summary line go to
+stderr; exit codes are engine.errors.EXIT_CODES and are listed in ``--help``. Disk
+figures are checked against the PLY description (Turk 1994, "The PLY Polygon File
+Format"; Bourke) [from memory]: nine 4-byte properties per vertex = 36 bytes, plus
+the ASCII header; and against the size of a frame actually written.
+"""
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from engine.cli import main
+from engine.errors import EXIT_CODES
+from test_bake import ToySolver, run, write_tiny_scene
+
+
+def run_cli(argv, capsys):
+    code = main([str(a) for a in argv])
+    out, err = capsys.readouterr()
+    assert "Traceback" not in err
+    return code, out, err
+
+
+def test_help_lists_every_exit_code(capsys):
+    code, out, _ = run_cli(["--help"], capsys)
+    assert code == 0
+    for status, meaning in EXIT_CODES.items():
+        assert f"{status:>3}  {meaning}" in out
+    for command in ("bake", "info", "estimate", "validate", "demo", "compare"):
+        assert command in out
+    code, out, _ = run_cli(["bake", "--help"], capsys)
+    assert code == 0 and "Default: sph." in out and "--resume" in out and "exit status" in out
+
+
+def test_info_text_and_json(tmp_path, capsys):
+    """info reports the frames, the per-frame particle counts (as listed in the manifest and as read
+    back from the PLY files), the disk use (sum of file sizes) and the solver settings."""
+    scene = write_tiny_scene(tmp_path)
+    run(scene, tmp_path / "bake", solver=ToySolver())
+    code, out, err = run_cli(["info", tmp_path / "bake", "--json"], capsys)
+    assert code == 0
+    info = json.loads(out)
+    assert info["frames"] == 6 and info["first_frame"] == 1 and info["last_frame"] == 6 and info["complete"]
+    assert info["solver"] == "sph" and info["settings"] == ToySolver().settings()
+    assert info["disk_bytes"] == sum(p.stat().st_size for p in (tmp_path / "bake").iterdir())
+    from engine.cache import read_ply
+
+    counts = [len(read_ply(tmp_path / "bake" / f"points_{f:04d}.ply")["ids"]) for f in range(1, 7)]
+    assert info["particles"]["min"] == min(counts) and info["particles"]["max"] == max(counts)
+    assert "frames: 6 (1..6 of 1..6)" in err
+    assert err.strip().splitlines()[-1].startswith("6 frames,")
+    code, out, err = run_cli(["info", tmp_path / "bake"], capsys)
+    assert code == 0 and out == "" and "solver sph, complete" in err
+
+
+def test_estimate_json_matches_the_written_files(tmp_path, capsys):
+    """estimate's particle count equals the fill lattice (0.1 x 0.15 x 0.15 m block at 0.025 m:
+    4 x 6 x 6 = 144 cell centres) and its bytes per frame equal a frame file on disk."""
+    scene = write_tiny_scene(tmp_path)
+    code, out, err = run_cli(["estimate", scene, "--json"], capsys)
+    assert code == 0
+    estimate = json.loads(out)
+    assert estimate["particles"] == 144
+    run(scene, tmp_path / "bake", solver=ToySolver(), frames="1:1")
+    first = tmp_path / "bake" / "points_0001.ply"
+    assert estimate["frame_bytes"] == first.stat().st_size
+    header = first.read_bytes().split(b"end_header\n")[0] + b"end_header\n"
+    assert estimate["frame_bytes"] == len(header) + 36 * 144
+    assert estimate["disk_bytes"] == 6 * estimate["frame_bytes"]
+    assert estimate["memory_bytes"] > 144 * 1000 and estimate["seconds"] > 0
+    assert "rough" in err and err.strip().splitlines()[-1].startswith("estimate: 6 frames, 144 particles")
+
+
+def test_compare_is_dispatched(capsys):
+    code, out, _ = run_cli(["compare", "--help"], capsys)
+    assert code == 0 and "dir_a" in out.lower()
+
+
+def test_demo_scene_is_written_and_loads(tmp_path):
+    """The demo shot's files load as a valid scene; closed outward meshes (checked by the loader:
+    positive divergence-theorem volume); the full preset lands in the 20-40k particle range asked
+    for, the small preset is small. Particle counts come from the World's own fill."""
+    from engine.demo import write_demo_scene
+    from engine.geometry import check_mesh
+    from engine.mesh_io import read_mesh
+    from engine.scene import load_scene
+    from engine.world import build_world
+
+    small = load_scene(write_demo_scene(tmp_path / "small", preset="small"))
+    assert 500 < build_world(small).estimate_particles()["total"] < 3000
+    full_path = write_demo_scene(tmp_path / "full")
+    boulder = check_mesh(*read_mesh(Path(full_path).parent / "meshes" / "boulder.obj"))
+    assert boulder.is_closed and boulder.volume > 0
+    full = load_scene(full_path)
+    assert full.bounds.faces["z_max"] == "open" and all(full.bounds.faces[f] == "wall" for f in
+                                                       ("x_min", "x_max", "y_min", "y_max", "z_min"))  # fmt: skip
+    assert 20000 <= build_world(full).estimate_particles()["total"] <= 40000
+    assert (full.frame_end - full.frame_start + 1) / full.fps >= 2.0
+    again = write_demo_scene(tmp_path / "again")
+    assert Path(again).read_bytes() == Path(full_path).read_bytes()
+    assert (Path(again).parent / "meshes" / "boulder.obj").read_bytes() == \
+        (Path(full_path).parent / "meshes" / "boulder.obj").read_bytes(), "the boulder must be deterministic"

@@ -1,0 +1,177 @@
+"""``python -m training.generate``: bake procedural shots with the reference solver for training.
+
+Writes, under ``--out``:
+
+    data_manifest.json          what was generated: kind, seeds, spacing, fps, learned step,
+                                solver settings, and per shot its particles, frames, seconds
+    shot_0000/scene.json        the shot's scene (meshes beside it in shot_0000/meshes/)
+    shot_0000/cache/            its bake in the standard cache layout (engine.bake)
+
+Shots are baked at one frame per learned step (training/scenes.py picks the
+fps), so training reads consecutive frames as consecutive steps.
+
+Resumable: a shot whose cache is complete is skipped; a shot with a
+checkpoint continues from it (``engine.bake`` with ``resume``); ``--resume``
+is accepted for clarity but skipping finished shots is always on. Several
+processes can share the work with ``--shard I/N`` (shot k goes to shard k mod N).
+The data manifest is rewritten (atomically) after every shot.
+
+``--heldout`` writes the held-out shots instead (ring obstacle, staircase,
+moving paddle; never in training) with ``--duration`` seconds each.
+"""
+
+import argparse
+import json
+import os
+import sys
+import time
+from pathlib import Path
+
+from engine.bake import bake
+from engine.cache import open_cache, write_atomic
+from engine.errors import SplashdraftError
+from engine.scene import save_scene
+
+from . import scenes
+
+DATA_FORMAT = "splashdraft-training-data"
+
+
+def shot_plan(heldout, count):
+    """[(name, scene dict)] of the shots to generate."""
+    if heldout:
+        return [(f"heldout_{kind}", lambda kind=kind: scenes.heldout_scene(kind)) for kind in scenes.HELDOUT_KINDS]
+    return [(f"shot_{i:04d}", lambda i=i: scenes.training_scene(i)) for i in range(count)]
+
+
+def _cache_state(cache_dir):
+    """'complete', 'partial' (has a checkpoint) or 'missing'."""
+    try:
+        reader = open_cache(cache_dir)
+    except SplashdraftError:
+        return "missing"
+    if reader.manifest.get("complete"):
+        return "complete"
+    return "partial" if (Path(cache_dir) / "checkpoint.npz").exists() else "missing"
+
+
+def _summary(name, folder, scene_dict):
+    reader = open_cache(folder / "cache")
+    frames = reader.frames
+    counts = [reader.manifest["frames"][str(f)]["particles"] for f in frames]
+    seconds = sum(reader.manifest["frames"][str(f)].get("seconds", 0.0) for f in frames)
+    return {
+        "name": name,
+        "scene": f"{name}/scene.json",
+        "cache": f"{name}/cache",
+        "seed": int(scene_dict["seed"]),
+        "frames": [frames[0], frames[-1]] if frames else [],
+        "particles_first": counts[0] if counts else 0,
+        "particles_max": max(counts) if counts else 0,
+        "complete": bool(reader.manifest.get("complete")),
+        "bake_seconds": round(seconds, 2),
+        "solver": reader.manifest.get("solver", {}),
+    }
+
+
+def _write_manifest(out, kind, shots, seed):
+    fps, step = scenes.frame_rate_for_step()
+    manifest = {
+        "format": DATA_FORMAT,
+        "version": 1,
+        "kind": kind,
+        "generator": "training/scenes.py (procedural; see its docstring)",
+        "family_seed": seed,
+        "particle_spacing": scenes.TRAINING_SPACING,
+        "fps": fps,
+        "step_froude": step,
+        "reference_solver": "sph (DFSPH, engine/sph.py)",
+        "shots": shots,
+    }
+    write_atomic(out / "data_manifest.json", (json.dumps(manifest, indent=1) + "\n").encode())
+
+
+def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=print):
+    """Generate (or finish) the shots; returns the list of shot summaries."""
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    plan = shot_plan(heldout, count)
+    summaries = {}
+    existing = out / "data_manifest.json"
+    if existing.exists():
+        try:
+            summaries = {s["name"]: s for s in json.loads(existing.read_text())["shots"]}
+        except (ValueError, KeyError):
+            summaries = {}
+    index, total = shard
+    for number, (name, make) in enumerate(plan):
+        if number % total != index:
+            continue
+        folder = out / name
+        scene_dict = make()
+        if duration is not None:
+            scene_dict["frame_end"] = scene_dict["frame_start"] + int(round(duration * scene_dict["fps"]))
+        status = _cache_state(folder / "cache")
+        if status == "complete":
+            summaries[name] = _summary(name, folder, scene_dict)
+            log(f"{name}: complete, skipped")
+            continue
+        started = time.monotonic()
+        if status == "partial" and (folder / "scene.json").exists():
+            log(f"{name}: resuming")
+            result = bake(folder / "scene.json", "sph", folder / "cache", resume=True, use_signals=False)
+        else:
+            save_scene(folder / "scene.json", scene_dict)
+            result = bake(folder / "scene.json", "sph", folder / "cache", overwrite=True, use_signals=False)
+        summaries[name] = _summary(name, folder, scene_dict)
+        log(f"{name}: {result.frames_written} frames, {result.particles} particles, {time.monotonic() - started:.1f} s")
+        # Re-read so concurrent shards do not drop each other's entries.
+        if existing.exists():
+            try:
+                for shot in json.loads(existing.read_text())["shots"]:
+                    summaries.setdefault(shot["name"], shot)
+            except (ValueError, KeyError):
+                pass
+        _write_manifest(out, "heldout" if heldout else "train",
+                        [summaries[k] for k in sorted(summaries)], scenes.HELDOUT_SEED if heldout else scenes.TRAIN_SEED)
+    _write_manifest(out, "heldout" if heldout else "train", [summaries[k] for k in sorted(summaries)],
+                    scenes.HELDOUT_SEED if heldout else scenes.TRAIN_SEED)
+    return [summaries[k] for k in sorted(summaries)]
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(
+        prog="python -m training.generate",
+        description="Bake procedural training shots (or the held-out shots) with the reference solver.",
+    )
+    parser.add_argument("--out", default=None, help="Output folder (default data/train, or data/heldout with --heldout).")
+    parser.add_argument("--count", type=int, default=24, help="Number of training shots (default 24).")
+    parser.add_argument("--heldout", action="store_true", help="Generate the held-out shots (ring, stairs, paddle).")
+    parser.add_argument("--resume", action="store_true", help="Continue: finished shots are skipped, partial bakes resumed "
+                        "(always on; accepted for clarity).")
+    parser.add_argument("--shard", default="0/1", help="I/N: bake only shots k with k mod N == I (default 0/1).")
+    parser.add_argument("--duration", type=float, default=None,
+                        help="Override the shot length in seconds (default 2 s training, 10 s held-out).")
+    args = parser.parse_args(argv)
+    try:
+        index, total = (int(x) for x in args.shard.split("/"))
+        if not 0 <= index < total:
+            raise ValueError
+    except ValueError:
+        print(f"error: --shard {args.shard!r} must be I/N with 0 <= I < N, e.g. 0/2", file=sys.stderr)
+        return 64
+    out = args.out or ("data/heldout" if args.heldout else "data/train")
+    started = time.monotonic()
+    try:
+        shots = generate(out, args.count, args.heldout, (index, total), args.duration,
+                         log=lambda m: print(m, file=sys.stderr, flush=True))
+    except SplashdraftError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    print(f"{len(shots)} shots in {out} ({time.monotonic() - started:.0f} s)", file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    os.environ.setdefault("OMP_NUM_THREADS", "1")
+    sys.exit(main())

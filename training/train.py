@@ -1,0 +1,322 @@
+"""``python -m training.train``: fit the learned core on baked shots, checkpoint, export to ONNX.
+
+    python -m training.train --data data/train --out training_runs/NAME [--resume] [--export models/NAME]
+
+The run folder holds ``config.json`` (every setting), ``stats.json`` (the
+normalisation statistics), ``checkpoint.pt`` (model + optimiser + RNG states +
+loss history; written every ``--checkpoint-every`` iterations and at the end,
+atomically), ``losses.json`` and ``loss.png`` (training and validation loss
+curves), and after training ``<name>.onnx`` + ``<name>.json`` (the model
+contract) + ``export_check.json`` (onnxruntime against PyTorch on a real
+sample; must agree to 1e-4 relative).
+
+Reproducible: numpy and torch are seeded from ``--seed``; sample order and
+noise come from one numpy Generator whose state is checkpointed, so a resumed
+run continues the same sequence (bit-exactness across resumes also depends on
+torch's thread scheduling). Checkpoints are our own state dicts, loaded with
+``torch.load(..., weights_only=True)``.
+
+Loss: mean squared error of the normalised non-gravity acceleration over
+particles with a target (Sanchez-Gonzalez et al. 2020), with velocity-walk
+noise injection (training/dataset.py). Adam (Kingma & Ba 2015) with an
+exponential learning-rate decay to ``--lr-final``.
+"""
+
+import argparse
+import io
+import json
+import os
+import shutil
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+from engine.cache import write_atomic
+from engine.errors import SplashdraftError
+from engine.learned import contract as contract_module
+from engine.learned import features
+from engine.learned.pngplot import line_plot_png
+
+from . import dataset
+
+DEFAULTS = {
+    "latent": 32,
+    "rounds": 2,
+    "radius_spacings": 2.0,
+    "density_support_spacings": 2.0,
+    "max_neighbours": 48,
+    "max_boundary_neighbours": 32,
+    "lr": 1e-3,
+    "lr_final": 1e-4,
+    "iterations": 6000,
+    "batch": 2,
+    "noise": 0.02,
+    "seed": 0,
+    "validation_shots": 2,
+    "checkpoint_every": 200,
+    "validate_every": 200,
+    "statistics_samples": 120,
+}
+
+
+def _save_torch(path, payload):
+    import torch
+
+    buffer = io.BytesIO()
+    torch.save(payload, buffer)
+    write_atomic(path, buffer.getvalue())
+
+
+def _split(shots, validation_shots):
+    validation_shots = min(validation_shots, max(len(shots) - 1, 0))
+    if validation_shots == 0:
+        return shots, []
+    return shots[:-validation_shots], shots[-validation_shots:]
+
+
+def _normalised_sample(shot, k, config, stats, rng, noise):
+    graph, target, mask = dataset.make_sample(shot, k, config, rng, noise)
+    inputs = features.normalise(graph, stats)
+    target = ((target - stats["target_mean"]) / stats["target_std"]).astype(np.float32)
+    return inputs, target, mask
+
+
+def compute_statistics(shots, config, rng):
+    pool = [(s, k) for s in shots for k in s.sample_indices()]
+    picks = rng.choice(len(pool), size=min(config["statistics_samples"], len(pool)), replace=False)
+    samples = [dataset.make_sample(pool[i][0], pool[i][1], config) for i in picks]
+    return dataset.feature_statistics(samples)
+
+
+def plot_losses(history, path):
+    series = [("train", [h[0] for h in history["train"]], [h[1] for h in history["train"]])]
+    if history["validation"]:
+        series.append(("validation", [h[0] for h in history["validation"]], [h[1] for h in history["validation"]]))
+    # Smooth the noisy per-iteration training loss for legibility (running mean over 50).
+    xs, ys = np.array(series[0][1], float), np.array(series[0][2], float)
+    if len(ys) > 50:
+        kernel = np.ones(50) / 50
+        ys = np.convolve(ys, kernel, mode="valid")
+        xs = xs[49:]
+    series[0] = ("train (mean of 50)", xs, ys)
+    line_plot_png(series, path, log_y=True, x_label="iteration", y_label="mse")
+
+
+def export(model, run, name, sample_inputs, config, stats, training_info):
+    """Export ONNX + contract into ``run``; check onnxruntime vs PyTorch; return (onnx path, check dict)."""
+    import torch
+
+    from engine.learned.runtime import CoreRunner
+
+    from .model import as_tensors, export_onnx
+
+    onnx_path = Path(run) / f"{name}.onnx"
+    export_onnx(model, onnx_path, sample_inputs)
+    with torch.no_grad():
+        reference = model(*as_tensors(sample_inputs)).numpy()
+    runner = CoreRunner(onnx_path, config["rounds"], tile_particles=0)
+    output = runner.run(sample_inputs)
+    relative = float(np.abs(output - reference).max() / max(np.abs(reference).max(), 1e-12))
+    check = {"particles": int(len(reference)), "max_relative_error": relative, "passed": relative <= 1e-4}
+    write_atomic(Path(run) / "export_check.json", (json.dumps(check, indent=1) + "\n").encode())
+    if not check["passed"]:
+        raise SplashdraftError(
+            f"export check: onnxruntime differs from PyTorch by {relative:.3g} relative (> 1e-4) on "
+            f"{onnx_path}; do not ship this model"
+        )
+    contract = contract_module.make_contract(
+        name, onnx_path, stats, config["radius_spacings"], config["step_froude"], config["rounds"],
+        training=training_info, density_support_spacings=config["density_support_spacings"],
+        max_neighbours=config["max_neighbours"], max_boundary_neighbours=config["max_boundary_neighbours"],
+        architecture={"latent": config["latent"], "rounds": config["rounds"], "kind": "GraphCore (training/model.py)"},
+    )  # fmt: skip
+    contract_module.write_contract(onnx_path.with_suffix(".json"), contract)
+    return onnx_path, check
+
+
+def train(data, out, resume=False, overrides=None, minutes=None, export_to=None, name=None, log=print):
+    """Train (or continue) a run; returns the run summary dict. See the module docstring."""
+    import torch
+
+    from .model import GraphCore, as_tensors
+
+    torch.set_num_threads(2)
+    run = Path(out)
+    run.mkdir(parents=True, exist_ok=True)
+    name = name or run.name
+    config_path, checkpoint_path = run / "config.json", run / "checkpoint.pt"
+    manifest, shots = dataset.load_shots(data)
+    if not shots:
+        raise SplashdraftError(f"{data}: no baked shots with 4+ frames; run python -m training.generate --out {data}")
+    config = dict(DEFAULTS)
+    config.update({k: v for k, v in (overrides or {}).items() if v is not None})
+    config["step_froude"] = float(manifest["step_froude"])
+    config["data"] = str(data)
+    config["shots"] = [s.name for s in shots]
+    if resume and config_path.exists():
+        previous = json.loads(config_path.read_text())
+        for key in ("latent", "rounds", "radius_spacings", "seed", "step_froude", "shots"):
+            if previous.get(key) != config.get(key):
+                raise SplashdraftError(
+                    f"{config_path}: --resume with a different {key} ({previous.get(key)!r} -> {config.get(key)!r}); "
+                    "use the same data and settings, or start a new --out run"
+                )
+        previous["iterations"] = config["iterations"]
+        config = previous
+    write_atomic(config_path, (json.dumps(config, indent=1) + "\n").encode())
+
+    rng = np.random.default_rng(config["seed"])
+    torch.manual_seed(config["seed"])
+    train_shots, validation_shots = _split(shots, config["validation_shots"])
+    stats_path = run / "stats.json"
+    if resume and stats_path.exists():
+        stats = {k: np.asarray(v) for k, v in json.loads(stats_path.read_text()).items()}
+    else:
+        stats = compute_statistics(train_shots, config, rng)
+        write_atomic(stats_path, (json.dumps({k: v.tolist() for k, v in stats.items()}, indent=1) + "\n").encode())
+
+    model = GraphCore(config["latent"], config["rounds"])
+    optimiser = torch.optim.Adam(model.parameters(), lr=config["lr"])
+    history = {"train": [], "validation": []}
+    iteration, seconds_before = 0, 0.0
+    if resume and checkpoint_path.exists():
+        payload = torch.load(checkpoint_path, weights_only=True)
+        model.load_state_dict(payload["model"])
+        optimiser.load_state_dict(payload["optimiser"])
+        iteration = int(payload["iteration"])
+        history = json.loads(payload["history"])
+        rng.bit_generator.state = json.loads(payload["numpy_rng"])
+        torch.set_rng_state(payload["torch_rng"])
+        seconds_before = float(payload["seconds"])
+        log(f"resumed at iteration {iteration}")
+
+    validation = []
+    if validation_shots:
+        vrng = np.random.default_rng(config["seed"] + 1)
+        pool = [(s, k) for s in validation_shots for k in s.sample_indices()]
+        for i in vrng.choice(len(pool), size=min(24, len(pool)), replace=False):
+            validation.append(_normalised_sample(pool[i][0], pool[i][1], config, stats, None, 0.0))
+    pool = [(s, k) for s in train_shots for k in s.sample_indices()]
+
+    def validation_loss():
+        model.eval()
+        total, count = 0.0, 0
+        with torch.no_grad():
+            for inputs, target, mask in validation:
+                out = model(*as_tensors(inputs)).numpy()
+                total += float(((out - target)[mask] ** 2).sum())
+                count += int(mask.sum()) * 3
+        model.train()
+        return total / max(count, 1)
+
+    def save_checkpoint():
+        _save_torch(checkpoint_path, {
+            "model": model.state_dict(), "optimiser": optimiser.state_dict(), "iteration": iteration,
+            "history": json.dumps(history), "numpy_rng": json.dumps(rng.bit_generator.state),
+            "torch_rng": torch.get_rng_state(), "seconds": seconds_before + time.monotonic() - started,
+        })  # fmt: skip
+        write_atomic(run / "losses.json", (json.dumps(history) + "\n").encode())
+        if history["train"]:
+            plot_losses(history, run / "loss.png")
+
+    started = time.monotonic()
+    total_iterations = config["iterations"]
+    decay = (config["lr_final"] / config["lr"]) ** (1.0 / max(total_iterations, 1))
+    model.train()
+    while iteration < total_iterations:
+        if minutes is not None and time.monotonic() - started > 60 * minutes:
+            log(f"time budget of {minutes} min reached at iteration {iteration}")
+            break
+        for group in optimiser.param_groups:
+            group["lr"] = config["lr"] * decay**iteration
+        picks = rng.integers(0, len(pool), config["batch"])
+        samples = [_normalised_sample(pool[i][0], pool[i][1], config, stats, rng, config["noise"]) for i in picks]
+        inputs, target, mask = dataset.batch_inputs(samples)
+        if not mask.any():
+            iteration += 1
+            continue
+        prediction = model(*as_tensors(inputs))
+        selected = torch.from_numpy(np.flatnonzero(mask))
+        loss = ((prediction[selected] - torch.from_numpy(target)[selected]) ** 2).mean()
+        optimiser.zero_grad()
+        loss.backward()
+        torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
+        optimiser.step()
+        iteration += 1
+        history["train"].append((iteration, float(loss.detach())))
+        if validation and iteration % config["validate_every"] == 0:
+            history["validation"].append((iteration, validation_loss()))
+        if iteration % config["checkpoint_every"] == 0:
+            save_checkpoint()
+            recent = np.mean([h[1] for h in history["train"][-config["checkpoint_every"]:]])
+            vloss = history["validation"][-1][1] if history["validation"] else float("nan")
+            log(f"iteration {iteration}: train {recent:.4g}, validation {vloss:.4g}, "
+                f"{time.monotonic() - started + seconds_before:.0f} s")
+    if validation:
+        history["validation"].append((iteration, validation_loss()))
+    save_checkpoint()
+    seconds = seconds_before + time.monotonic() - started
+
+    sample = validation[0][0] if validation else samples[0][0]
+    training_info = {
+        "data": str(data),
+        "data_manifest": {"kind": manifest.get("kind"), "family_seed": manifest.get("family_seed"),
+                          "shots": len(shots), "particle_spacing": manifest.get("particle_spacing"),
+                          "fps": manifest.get("fps")},
+        "train_shots": [s.name for s in train_shots],
+        "validation_shots": [s.name for s in validation_shots],
+        "iterations": iteration,
+        "training_seconds": round(seconds, 1),
+        "final_train_loss_mean_last_200": float(np.mean([h[1] for h in history["train"][-200:]])) if history["train"] else None,
+        "final_validation_loss": history["validation"][-1][1] if history["validation"] else None,
+        "config": {k: config[k] for k in DEFAULTS},
+        "command": "python -m training.train " + " ".join(sys.argv[1:]) if sys.argv else "",
+    }
+    onnx_path, check = export(model, run, name, sample, config, stats, training_info)
+    summary = {"run": str(run), "iterations": iteration, "seconds": seconds, "onnx": str(onnx_path), "export_check": check,
+               "final_validation_loss": training_info["final_validation_loss"]}
+    if export_to:
+        target = Path(export_to)
+        target.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copyfile(onnx_path, target.with_suffix(".onnx"))
+        contract = json.loads(onnx_path.with_suffix(".json").read_text())
+        contract["onnx_file"] = target.with_suffix(".onnx").name
+        contract["name"] = target.stem
+        contract_module.write_contract(target.with_suffix(".json"), contract)
+        summary["exported_to"] = str(target.with_suffix(".onnx"))
+    write_atomic(run / "summary.json", (json.dumps(summary, indent=1) + "\n").encode())
+    return summary
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(prog="python -m training.train",
+                                     description="Train the learned core on baked shots and export it to ONNX.")
+    parser.add_argument("--data", default="data/train", help="Data folder from training.generate (default data/train).")
+    parser.add_argument("--out", required=True, help="Run folder, e.g. training_runs/NAME.")
+    parser.add_argument("--resume", action="store_true", help="Continue the run in --out from its checkpoint.")
+    parser.add_argument("--iterations", type=int, help=f"Total iterations (default {DEFAULTS['iterations']}).")
+    parser.add_argument("--minutes", type=float, help="Stop (and export) after this many minutes of training.")
+    parser.add_argument("--latent", type=int, help=f"Latent width (default {DEFAULTS['latent']}).")
+    parser.add_argument("--rounds", type=int, help=f"Message-passing rounds (default {DEFAULTS['rounds']}).")
+    parser.add_argument("--noise", type=float, help=f"Velocity noise sigma in sqrt(g d) (default {DEFAULTS['noise']}).")
+    parser.add_argument("--lr", type=float, help=f"Initial learning rate (default {DEFAULTS['lr']}).")
+    parser.add_argument("--batch", type=int, help=f"Frames per iteration (default {DEFAULTS['batch']}).")
+    parser.add_argument("--seed", type=int, help=f"Seed (default {DEFAULTS['seed']}).")
+    parser.add_argument("--export", dest="export_to", help="Also copy the model + contract to this path stem, e.g. models/preview-gn1.")
+    args = parser.parse_args(argv)
+    overrides = {k: getattr(args, k) for k in ("iterations", "latent", "rounds", "noise", "lr", "batch", "seed")}
+    try:
+        summary = train(args.data, args.out, args.resume, overrides, args.minutes, args.export_to,
+                        log=lambda m: print(m, file=sys.stderr, flush=True))
+    except SplashdraftError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    print(json.dumps(summary, indent=1))
+    return 0
+
+
+if __name__ == "__main__":
+    os.environ.setdefault("OMP_NUM_THREADS", "2")
+    sys.exit(main())
