@@ -45,6 +45,11 @@ from .state import State, append, select
 
 #: Fraction of the spacing that enforce_bounds keeps particles away from walls and collider surfaces.
 CONTACT_MARGIN = 0.25
+#: Fraction of the spacing that fill particles keep from wall planes and collider surface samples at t = 0.
+#: The one-layer Akinci boundary over-counts density for fluid closer than about one spacing (a lattice
+#: point half a spacing from a wall starts at up to 1.8 rho0 and the first pressure solve blows it apart);
+#: the validated tank and dam-break set-ups keep 1.1 spacings (engine/validate.py WALL_GAP).
+FILL_CLEARANCE = 1.0
 
 
 #: What ``boundary_at`` returns: positions (B, 3) m, velocities (B, 3) m/s, normals (B, 3) unit,
@@ -493,11 +498,17 @@ def _fill(scene, colliders, support_radius):
                 f"(volume {volume:.3g} m^3); enlarge it or reduce particle_spacing"
             )
         keep = np.all((points > lower) & (points < upper), axis=1)
+        clearance = FILL_CLEARANCE * spacing
+        for axis in range(3):
+            if scene.bounds.faces[FACE_NAMES[2 * axis]] == "wall":
+                keep &= points[:, axis] - lower[axis] >= clearance - 1e-9 * spacing
+            if scene.bounds.faces[FACE_NAMES[2 * axis + 1]] == "wall":
+                keep &= upper[axis] - points[:, axis] >= clearance - 1e-9 * spacing
         for c, vertices, tree in collider_surfaces:
             if c.is_closed:
                 keep &= ~inside_closed_mesh(points, vertices, c.triangles)
             if tree is not None:
-                distance, _ = tree.query(points, k=1, distance_upper_bound=0.5 * spacing)
+                distance, _ = tree.query(points, k=1, distance_upper_bound=clearance)
                 keep &= ~np.isfinite(distance)
         if accepted:
             earlier = cKDTree(np.concatenate(accepted))

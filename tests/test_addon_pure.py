@@ -229,12 +229,14 @@ def test_estimate_reports_figures_and_refuses_over_budget(tmp_path):
 
     Oracle: engine.estimate (BudgetError text names particle_spacing) and the
     fill count of a 0.1 x 0.15 x 0.15 m block at 0.025 m spacing: 4 x 6 x 6 = 144
-    lattice sites (cell-centred sampling; common practice), within 50 %.
+    lattice sites (cell-centred sampling; common practice), less the sites within one
+    spacing of the x_min, y_min, y_max and z_min walls (engine.world.FILL_CLEARANCE):
+    3 x 4 x 5 = 60, within 50 %.
     """
     scene = write_block_scene(tmp_path, frame_end=3)
     estimate, message = jobs.run_estimate(jobs.estimate_command(scene_path=scene, **worker_args()))
     assert estimate is not None, message
-    assert 0.5 * 144 <= estimate["particles"] <= 1.5 * 144
+    assert 0.5 * 60 <= estimate["particles"] <= 1.5 * 60
     assert "particles" in jobs.summarize_estimate(estimate)
     refused = write_block_scene(tmp_path / "small_budget", frame_end=3, budget=10)
     estimate, message = jobs.run_estimate(jobs.estimate_command(scene_path=refused, **worker_args()))

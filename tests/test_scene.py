@@ -12,6 +12,8 @@ import copy
 import json
 import os
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 
@@ -293,7 +295,8 @@ def test_save_round_trip_and_inline_arrays(scene_dir, tmp_path_factory):
     program["colliders"][1]["transforms"] = np.tile(np.eye(4), (3, 1, 1))
     inline_scene = scene_from_dict(program, base_dir=scene_dir)
     assert inline_scene.emitters[0].mesh_file is None
-    target = tmp_path_factory.mktemp("generated") / "scene.json"
+    # A dict's relative mesh paths resolve against the folder it is saved into (save_scene docstring).
+    target = Path(scene_dir) / "program.json"
     loaded = save_scene(target, program)
     assert os.path.isfile(target.parent / "meshes" / "water_block.npz")
     assert os.path.isfile(target.parent / "meshes" / "paddle_transforms.npz")
