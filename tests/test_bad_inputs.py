@@ -50,7 +50,7 @@ def scenes(tmp_path_factory):
         "empty": variant("empty", lambda d: d.update(emitters=[])),
         "spacing": variant("spacing", lambda d: d.update(particle_spacing=-0.01)),
         "unknown": variant("unknown", lambda d: d.update(colour="blue")),
-        "budget": variant("budget", lambda d: d.update(budget={"max_particles": 100})),
+        "budget": variant("budget", lambda d: d.update(budget={"max_particles": 50})),
         "folder": folder,
     }
 
@@ -69,7 +69,7 @@ CATALOGUE = [
     ("empty", 2, r"the scene has no emitters; add a fill or stream emitter"),
     ("spacing", 2, r"particle_spacing: must be > 0, got -0.01"),
     ("unknown", 2, r'unknown key "colour"'),
-    ("budget", 3, r"scene 'tiny': about 144 particles exceed the budget of 100; raise particle_spacing"),
+    ("budget", 3, r"scene 'tiny': about 60 particles exceed the budget of 50; raise particle_spacing"),
 ]
 
 
@@ -88,8 +88,8 @@ def test_bad_scene_gives_named_error_and_exit_status(scenes, capsys, tmp_path, n
 
 
 def test_budget_override_on_the_command_line(scenes, capsys, tmp_path):
-    status, _, err = run_cli(["estimate", scenes["good"], "--max-particles", 50], capsys)
-    assert status == 3 and "budget of 50" in err
+    status, _, err = run_cli(["estimate", scenes["good"], "--max-particles", 30], capsys)
+    assert status == 3 and "budget of 30" in err
     status, _, _ = run_cli(["estimate", scenes["budget"], "--max-particles", 1000], capsys)
     assert status == 0
 

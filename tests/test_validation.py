@@ -1,0 +1,67 @@
+"""The reference solver against published experiments and hydrostatics (engine/validate.py).
+
+These are the same runs as ``python -m engine validate CASE``, which applies the issue's
+full tolerances and exits non-zero when one is missed. Two of those targets are NOT met
+yet, and the tests below say so instead of hiding it: they pin what the solver does meet
+and guard the rest against regressions at the level measured on 2026-12-02.
+"""
+
+import pytest
+
+from engine.validate import run_case
+
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="module")
+def hydrostatic():
+    return run_case("hydrostatic")
+
+
+@pytest.fixture(scope="module")
+def dam_break():
+    return run_case("dam-break")
+
+
+def test_hydrostatic_tank_density_and_walls(hydrostatic):
+    """Settled column, depth 24 spacings: density and wall containment.
+
+    Targets (physics-references.md §6c, recommendation): mean |rho - rho0| / rho0 <= 0.1 %,
+    max < 1 %; incompressible graphics solvers reach 0.01-0.1 % (Bender & Koschier 2015,
+    SCA, [R for 0.01 %]). No particle may cross a wall plane.
+    """
+    m = hydrostatic["metrics"]
+    assert m["mean_density_error"] <= 0.001
+    assert m["max_density_error"] < 0.01
+    assert m["outside_walls"] == 0
+    assert m["max_speed_ratio"] < 0.1, "the column must be near rest when measured"
+
+
+def test_hydrostatic_pressure_slope(hydrostatic):
+    """Fitted -dp/dz against rho0 |g| (p = rho0 g d, textbook hydrostatics).
+
+    The issue's target is within 2 %; measured 1.093 (9.3 % high) on 2026-12-02, so
+    ``validate hydrostatic`` reports a failure. This test guards the measured level (within
+    12 %) and the sign, so a regression shows; tightening it to 2 % is open work.
+    """
+    ratio = hydrostatic["metrics"]["slope_ratio"]
+    assert 0.88 <= ratio <= 1.12
+
+
+def test_dam_break_front_against_martin_and_moyce(dam_break):
+    """Surge front Z = x/a against T = n t sqrt(g/a), n^2 = 2 (Martin & Moyce 1952, "An
+    Experimental Study of the Collapse of Liquid Columns on a Rigid Horizontal Plane",
+    Phil. Trans. R. Soc. A 244:312-324; table via a secondary transcription [S]).
+
+    Ritter's shallow-water bound Z <= 1 + 2T (Ritter 1892, [M]; modern treatment
+    Castro-Orgaz & Chanson 2017 [R]) must hold at every sample, and no particle may leave
+    the tank. The issue's RMS target over T in [0.4, 3.3] is 0.15; measured 0.30 on
+    2026-12-02 (the simulated front runs ahead of the experiment by about 0.29 on
+    average: free-slip walls and instant gate removal), so ``validate dam-break`` reports
+    a failure. This test guards the measured level (RMS <= 0.35).
+    """
+    m = dam_break["metrics"]
+    assert m["ritter_max_excess"] <= 1e-9
+    assert m["outside_walls"] == 0
+    assert m["front_rms_error"] <= 0.35
+    assert len(m["front_at_table_T"]) == 15
