@@ -31,6 +31,7 @@ SPEED_FOR_WHITE = 3.0  # m/s: speeds at and above this show the lightest colour 
 
 _readers = {}       # folder -> (manifest mtime_ns, CacheReader)
 _warned = set()     # (folder, kind) already reported
+_reported = []      # the messages printed, oldest first (shown by the panel, read by tests)
 _last_shown = {}    # display object name -> (folder, frame, mtime) last written
 
 
@@ -39,11 +40,18 @@ def warn_once(key, message):
     if key in _warned:
         return
     _warned.add(key)
+    _reported.append(message)
     print(f"Splashdraft warning: {message}")
+
+
+def reported_warnings():
+    """Warnings printed since the last ``clear_warnings`` (list of str)."""
+    return list(_reported)
 
 
 def clear_warnings():
     _warned.clear()
+    _reported.clear()
     _last_shown.clear()
 
 
@@ -302,6 +310,9 @@ def ensure_display_object(scene):
         shot.display_object = obj
     if obj.name not in scene.objects:
         scene.collection.objects.link(obj)
+    # The frame handler rewrites the mesh during renders; with a UI, lock it so the viewport
+    # does not read the mesh meanwhile (bpy.app.handlers docs, "Note on Altering Data").
+    scene.render.use_lock_interface = True
     material = liquid_material()
     if not obj.data.materials:
         obj.data.materials.append(material)

@@ -15,7 +15,6 @@ import os
 import queue
 import signal
 import subprocess
-import sys
 import threading
 import time
 from dataclasses import dataclass, field
@@ -363,6 +362,8 @@ def run_estimate(argv, timeout=300.0, env=None):
             return None, "the engine's estimate was not valid JSON: " + (done.stdout.strip()[-200:] or "no output")
     lines = [line for line in done.stderr.splitlines() if line.strip()]
     message = lines[-1] if lines else f"the estimate failed with status {done.returncode}"
+    if message.startswith("error: "):
+        message = message[len("error: "):]
     for line in reversed(lines):
         event = parse_event(line)
         if event is not None and event.get("event") == "error":

@@ -70,8 +70,10 @@ def estimate_scene(scene, input_dir):
         shot.estimate_text = jobs.summarize_estimate(estimate)
         shot.is_over_budget = False
     else:
-        shot.estimate_text = message
         shot.is_over_budget = "budget" in message.lower()
+        if shot.is_over_budget:
+            message += "; in the Splashdraft tab, raise Particle spacing or the Particle budget"
+        shot.estimate_text = message
     return estimate, message, scene_path
 
 
@@ -108,10 +110,11 @@ class SPLASHDRAFT_OT_estimate(bpy.types.Operator):
 class _BakeUI:
     """What the bake worker's progress does to Blender (``jobs.tick``'s ``ui``)."""
 
-    def __init__(self, context, scene_name, version_name, report):
+    def __init__(self, context, scene_name, shot_label, version_name, report):
         self.window_manager = context.window_manager
         self.workspace = context.workspace
         self.scene_name, self.version_name, self.report = scene_name, version_name, report
+        self.label = f"{shot_label} {version_name}"
         self.has_listed = False
 
     @property
@@ -138,7 +141,7 @@ class _BakeUI:
             scene.splashdraft.bake_fraction = progress.fraction
             scene.splashdraft.bake_message = progress.status_text()
         if self.workspace is not None:
-            self.workspace.status_text_set(progress.status_text(self.scene_name))
+            self.workspace.status_text_set(progress.status_text(self.label))
         self.window_manager.progress_update(int(progress.fraction * 100))
 
     def finished(self, progress):
@@ -150,7 +153,7 @@ class _BakeUI:
             self.workspace.status_text_set(None)
         self.window_manager.progress_end()
         level = {"finished": "INFO", "cancelled": "WARNING"}.get(progress.state, "ERROR")
-        self.report({level}, progress.status_text(self.scene_name))
+        self.report({level}, progress.status_text(self.label))
 
 
 class SPLASHDRAFT_OT_bake(bpy.types.Operator):
@@ -188,7 +191,8 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
         argv = jobs.bake_command(scene_path=scene_path, out_dir=version_dir, solver=scene.splashdraft.solver,
                                  **_worker_args())
         _job = jobs.BakeJob(argv, cwd=str(version_dir))
-        _job_context.update(scene=scene.name, version=version_dir.name, folder=str(version_dir))
+        _job_context.update(scene=scene.name, shot=paths.shot_name(scene), version=version_dir.name,
+                            folder=str(version_dir))
         scene.splashdraft.bake_state, scene.splashdraft.bake_fraction = "starting", 0.0
         scene.splashdraft.bake_message = ""
         display.ensure_display_object(scene)
@@ -214,7 +218,7 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
         while jobs.tick(_job, ui):
             if _job.progress.done != shown:
                 shown = _job.progress.done
-                print(_job.progress.status_text(_job_context["scene"]), flush=True)
+                print(_job.progress.status_text(_job_context["shot"]), flush=True)
             time.sleep(0.1)
         return {"FINISHED"} if _job.progress.state == "finished" else {"CANCELLED"}
 
@@ -231,7 +235,7 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
 
 
 def _ui_for(context, operator):
-    return _BakeUI(context, _job_context["scene"], _job_context["version"], operator.report)
+    return _BakeUI(context, _job_context["scene"], _job_context["shot"], _job_context["version"], operator.report)
 
 
 class SPLASHDRAFT_OT_stop_bake(bpy.types.Operator):

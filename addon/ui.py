@@ -2,7 +2,7 @@
 
 import bpy
 
-from . import ops, paths
+from . import display, ops, paths
 
 TAB = "Splashdraft"
 
@@ -129,6 +129,9 @@ class SPLASHDRAFT_PT_versions(_SidebarPanel, bpy.types.Panel):
         layout.operator("splashdraft.add_liquid_object", icon="OUTLINER_OB_POINTCLOUD")
         layout.prop(shot, "point_size")
         layout.prop(shot, "use_surface")
+        warnings = display.reported_warnings()
+        if warnings:
+            layout.label(text=warnings[-1], icon="ERROR")
 
 
 class SPLASHDRAFT_PT_handoff(_SidebarPanel, bpy.types.Panel):

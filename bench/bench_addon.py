@@ -13,7 +13,6 @@ import argparse
 import json
 import os
 import platform
-import subprocess
 import sys
 import tempfile
 import time

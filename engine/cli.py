@@ -122,8 +122,8 @@ def build_parser():
     demo.add_argument("--out", default="out/demo", help="The output folder. Default: out/demo.")
     demo.add_argument("--frames", metavar="A:B", help="Bake frames A to B only. Default: the whole shot.")
     demo.add_argument("--preset", choices=("full", "small"), default="full",
-                      help="full: spacing 0.02 m, about 25k particles, 60 frames; small: spacing 0.05 m, "
-                      "about 1.6k particles, 12 frames. Default: full.")  # fmt: skip
+                      help="full: spacing 0.02 m, about 24k particles, 60 frames; small: spacing 0.05 m, "
+                      "about 1.2k particles, 12 frames. Default: full.")  # fmt: skip
     demo.add_argument("--spacing", type=float, metavar="S",
                       help="Particle spacing in metres, overriding the preset's.")
     _add_progress(demo)
@@ -251,7 +251,24 @@ def command_estimate(args):
 
 
 def _format_metric(name, value, tolerance):
-    return f"  {name}: {value!r} (tolerance {tolerance!r})" if tolerance is not None else f"  {name}: {value!r}"
+    shown = f"{value:.6g}" if isinstance(value, float) else json.dumps(value)
+    if tolerance is None:
+        return f"  {name}: {shown}"
+    return f"  {name}: {shown} (tolerance {json.dumps(tolerance)})"
+
+
+def _comparison_tables(metrics):
+    """Simulated-against-published tables of the known validation metrics: (title, header, rows)."""
+    tables = []
+    simulated, published = metrics.get("front_at_table_T"), metrics.get("published_Z")
+    if isinstance(simulated, dict) and isinstance(published, dict):
+        rows = [(key, simulated[key], published[key]) for key in published if key in simulated]
+        tables.append(("dam-break front Z = x/a against T", ("T", "simulated Z", "published Z"), rows))
+    profile = metrics.get("profile_z_p_rho0gd")
+    if isinstance(profile, list) and profile:
+        rows = [(f"{z:.4f}", p, reference) for z, p, reference in profile]
+        tables.append(("pressure against height", ("z (m)", "simulated p (Pa)", "rho0 g d (Pa)"), rows))
+    return tables
 
 
 def command_validate(args):
@@ -284,17 +301,27 @@ def command_validate(args):
 
 
 def format_validation(result):
-    """Human text for one ``run_case`` result."""
+    """Human text for one ``run_case`` result: the checked metrics with their tolerances, then
+    simulated against published values with the error of each row."""
     verdict = "within tolerance" if result.get("passed") else "OUTSIDE tolerance"
     lines = [f"case {result.get('case')}: {verdict}"]
+    metrics = result.get("metrics", {}) or {}
     tolerances = result.get("tolerances", {}) or {}
-    for name, value in (result.get("metrics", {}) or {}).items():
-        lines.append(_format_metric(name, value, tolerances.get(name)))
-    for name, value in tolerances.items():
-        if name not in (result.get("metrics") or {}):
-            lines.append(f"  tolerance {name}: {value!r}")
+    tables = _comparison_tables(metrics)
+    in_tables = {"front_at_table_T", "published_Z", "profile_z_p_rho0gd"} if tables else set()
+    for name, value in metrics.items():
+        if name not in in_tables:
+            lines.append(_format_metric(name, value, tolerances.get(name)))
+    for title, header, rows in tables:
+        lines.append(f"  {title}:")
+        lines.append("    " + "".join(f"{h:>18}" for h in header) + f"{'error':>12}")
+        for label, value, reference in rows:
+            error = float(value) - float(reference)
+            lines.append(f"    {label:>18}{float(value):>18.4g}{float(reference):>18.4g}{error:>+12.3g}")
     if result.get("source"):
         lines.append(f"  source: {result['source']}")
+    if result.get("notes"):
+        lines.append(f"  notes: {result['notes']}")
     return "\n".join(lines)
 
 

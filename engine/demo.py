@@ -11,8 +11,8 @@ and climbs the opposite wall.
 
 Presets (particle spacing, frames at 24 fps):
 
-- ``full``: spacing 0.02 m, about 25k particles, frames 1..60 (2.5 s).
-- ``small``: spacing 0.05 m, about 1.6k particles, frames 1..12; for tests
+- ``full``: spacing 0.02 m, about 24k particles, frames 1..60 (2.5 s).
+- ``small``: spacing 0.05 m, about 1.2k particles, frames 1..12; for tests
   and quick checks.
 """
 
@@ -25,7 +25,7 @@ from .mesh_io import box_mesh, ico_sphere_mesh, write_obj
 
 DEMO_NAME = "trough_boulder"
 TROUGH_SIZE = (1.6, 0.6, 0.8)  # metres: length x width x height of the bounds
-WATER_BLOCK = ((0.0, 0.0, 0.0), (0.55, 0.6, 0.6))  # corners, metres (against the x_min wall)
+WATER_BLOCK = ((0.0, 0.0, 0.0), (0.6, 0.6, 0.62))  # corners, metres (against the x_min wall)
 BOULDER_CENTER = (1.05, 0.3, 0.07)
 BOULDER_RADIUS = 0.17
 BOULDER_SEED = 20241

@@ -207,10 +207,18 @@ def _max_displacement(points, reference):
 
 
 def _filter(points, others, rows, cols, radius):
-    """Candidates (rows, cols) reduced to |points_row - others_col| < radius, order kept."""
-    offsets = np.empty((len(rows), 3))
+    """Candidates (rows, cols) reduced to |points_row - others_col| < radius, order kept.
+
+    Offsets are computed per axis on contiguous copies (fast 1-D gathers) and
+    returned as a (P, 3) view of a (3, P) array, so ``offsets[:, c]`` is contiguous.
+    """
+    count = len(rows)
+    offsets = np.empty((3, count))
     for axis in range(3):
-        np.subtract(points[:, axis][rows], others[:, axis][cols], out=offsets[:, axis])
-    dist2 = np.einsum("ij,ij->i", offsets, offsets)
-    keep = dist2 < radius * radius * (1.0 - 1e-12) ** 2
-    return rows[keep], cols[keep], offsets[keep], np.sqrt(dist2[keep])
+        np.subtract(np.ascontiguousarray(points[:, axis])[rows], np.ascontiguousarray(others[:, axis])[cols],
+                    out=offsets[axis])
+    dist2 = offsets[0] * offsets[0]
+    dist2 += offsets[1] * offsets[1]
+    dist2 += offsets[2] * offsets[2]
+    keep = np.flatnonzero(dist2 < radius * radius * (1.0 - 1e-12) ** 2)
+    return rows[keep], cols[keep], offsets[:, keep].T, np.sqrt(dist2[keep])

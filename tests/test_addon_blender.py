@@ -15,11 +15,8 @@ DEVELOPERS.md, Blender's own importers, closed-form volume/bounds of boxes,
 and Blender's extension validator.
 """
 
-import json
-import os
 import subprocess
 import sys
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -100,6 +97,12 @@ def test_shot_exports_bakes_plays_back_renders_swaps_and_exports(tmp_path):
     assert export["motions"] == {"Paddle": "rigid", "Rock": "static"}
     # Keyframed from x = 0.85 to 0.60 over frames 1..4 (linear keys: Bezier eases, ends are exact).
     np.testing.assert_allclose(export["paddle_shift_last"], [-0.25, 0.0, 0.0], atol=1e-6)
+    # The keyed source moves rigidly (+0.1 m in y), direction normalised; the Wave-modified grid deforms:
+    # 4 frames x 81 vertices (a 8 x 8 grid has 9 x 9 vertices).
+    assert export["stream_type"] == "stream" and export["stream_direction"] == [0.0, 0.0, -1.0]
+    assert export["stream_speed"] == pytest.approx(1.5)
+    np.testing.assert_allclose(export["tap_shift_last"], [0.0, 0.1, 0.0], atol=1e-6)
+    assert export["flag_motion"] == "deforming" and export["flag_shape"] == [4, 81, 3]
     # Scene units: 1 BU = 1 cm -> spacing and bounds in metres are 100x smaller.
     assert export["centimetre_spacing"] == pytest.approx(0.0005, rel=1e-6)
     np.testing.assert_allclose(export["centimetre_bounds_max"], [0.01, 0.006, 0.008], atol=1e-8)
@@ -120,10 +123,30 @@ def test_shot_exports_bakes_plays_back_renders_swaps_and_exports(tmp_path):
     assert swap["same_object"] and swap["same_modifiers"] and swap["same_material"], swap
     assert swap["count_v1"] == swap["cache_v1"] and swap["count_v2"] == swap["cache_v2"], swap
 
-    assert result["alembic"]["counts"] == result["alembic"]["expected"], result["alembic"]
-    assert result["usd"]["counts"] == result["usd"]["expected"], result["usd"]
+    for kind in ("alembic", "usd"):
+        # Same points per frame, and frame 3's positions as in the cache (float32 through the exporter; 1e-5 m).
+        assert result[kind]["counts"] == result[kind]["expected"], result[kind]
+        assert result[kind]["max_position_error_frame3"] <= 1e-5, result[kind]
+    refusals = result["refusals"]
+    assert "budget" in refusals["budget"] and "particle_spacing" in refusals["budget"], refusals
+    assert refusals["versions_after_budget"] == ["v001_sph", "v002_sph"], "a refused bake leaves no version"
+    assert 'emitter "Sheet"' in refusals["open_fill"] and "not closed" in refusals["open_fill"], refusals
     corrupt = result["corrupt"]
     assert corrupt["count"] == 0 and corrupt["warned"] == 1, corrupt
+    assert "points_0002.ply" in corrupt["messages"][0] and "corrupt" in corrupt["messages"][0], corrupt
+
+
+def test_panels_draw_only_existing_properties_and_operators():
+    """Every panel of the sidebar tab, drawn for every role, names only properties and operators that exist.
+
+    Oracle: Blender's RNA registry (``bl_rna.properties``, ``bpy.ops``). Panels
+    are drawn with a recording stand-in layout because background mode has no
+    UI to draw into.
+    """
+    result, output = blender_env.run_child(HERE, "child_panels", timeout=300)
+    assert result["missing"] == [], result["missing"]
+    assert result["props_drawn"] >= 20 and result["operators_drawn"] >= 6, result
+    assert result["category"] == "Splashdraft"
 
 
 # --- child side (bpy imported) ------------------------------------------------------------------
@@ -149,6 +172,75 @@ def child_install(zip_path):
     blender_env.uninstall(module)
     out["folder_after_uninstall"] = folder.exists()
     return out
+
+
+class RecordingLayout:
+    """Stand-in for bpy.types.UILayout: records prop/operator calls and checks their names exist."""
+
+    def __init__(self, log):
+        self.log = log
+        self.use_property_split = self.use_property_decorate = False
+
+    def _child(self, *args, **kwargs):
+        return RecordingLayout(self.log)
+
+    row = column = box = split = grid_flow = _child
+
+    def prop(self, data, name, **kwargs):
+        self.log["props_drawn"] += 1
+        if name not in data.bl_rna.properties:
+            self.log["missing"].append(f"{type(data).__name__}.{name}")
+
+    def operator(self, idname, **kwargs):
+        import bpy
+
+        self.log["operators_drawn"] += 1
+        category, _, name = idname.partition(".")
+        try:
+            getattr(getattr(bpy.ops, category), name).get_rna_type()
+        except (AttributeError, KeyError):
+            self.log["missing"].append(f"operator {idname}")
+
+        class Properties:
+            pass
+        return Properties()
+
+    def template_list(self, list_type, list_id, data, name, active_data, active_name, **kwargs):
+        import bpy
+
+        for prop_data, prop in ((data, name), (active_data, active_name)):
+            self.prop(prop_data, prop)
+        if not hasattr(bpy.types, list_type):
+            self.log["missing"].append(f"UIList {list_type}")
+
+    def label(self, **kwargs):
+        pass
+
+    def progress(self, **kwargs):
+        pass
+
+
+def child_panels():
+    import bpy
+
+    blender_env.reset_scene()
+    module = blender_env.enable_from_source()
+    ui = sys.modules[module + ".addon.ui"]
+    bpy.ops.mesh.primitive_cube_add()
+    obj = bpy.context.object
+    log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
+
+    class Context:
+        scene = bpy.context.scene
+        object = obj
+
+    for role in ("NONE", "FILL", "STREAM", "COLLIDER", "BOUNDS"):
+        obj.splashdraft.role = role
+        obj.splashdraft.use_stream_frames = True
+        for panel in ui.classes[1:]:
+            panel.draw(type("Self", (), {"layout": RecordingLayout(log)})(), Context)
+    log["category"] = ui.SPLASHDRAFT_PT_shot.bl_category
+    return log
 
 
 def child_wheels(zip_path):
@@ -290,7 +382,6 @@ def child_shot(tmp):
     tmp = Path(tmp)
     scene = blender_env.reset_scene()  # before enabling: factory settings also reset the add-on list
     module = blender_env.enable_from_source()
-    package = sys.modules[module]
     export_module = sys.modules[module + ".addon.export"]
     display = sys.modules[module + ".addon.display"]
     build_shot(scene, tmp / "cache")
@@ -307,6 +398,35 @@ def child_shot(tmp):
                      "fill_volume": abs(signed_volume(vertices, triangles)),
                      "motions": {c["name"]: c["motion"] for c in data["colliders"]},
                      "paddle_shift_last": matrices[-1][:3, 3].tolist()}
+    # A moving source and a deforming collider (added for this export only).
+    bpy.ops.mesh.primitive_plane_add(size=0.1, location=(0.2, 0.3, 0.7))
+    tap = bpy.context.object
+    tap.name = "Tap"
+    tap.splashdraft.role = "STREAM"
+    tap.splashdraft.stream_speed = 1.5
+    tap.splashdraft.stream_direction = (0.0, 0.0, -2.0)
+    tap.keyframe_insert("location", frame=1)
+    tap.location.y = 0.4
+    tap.keyframe_insert("location", frame=4)
+    bpy.ops.mesh.primitive_grid_add(x_subdivisions=8, y_subdivisions=8, size=0.3, location=(0.5, 0.3, 0.3))
+    sheet = bpy.context.object
+    sheet.name = "Flag"
+    sheet.splashdraft.role = "COLLIDER"
+    wave = sheet.modifiers.new("wave", "WAVE")
+    wave.height, wave.width, wave.speed = 0.05, 0.1, 0.1
+    moving_path, moving = export_module.build_scene(scene, tmp / "export_moving")
+    stream = next(e for e in moving["emitters"] if e["name"] == "Tap")
+    flag = next(c for c in moving["colliders"] if c["name"] == "Flag")
+    with np.load(moving_path.parent / stream["transforms"], allow_pickle=False) as archive:
+        tap_shift = archive["matrices"][-1][:3, 3].tolist()
+    with np.load(moving_path.parent / flag["vertices"], allow_pickle=False) as archive:
+        flag_shape = list(archive["vertices"].shape)
+    out["export"].update(stream_type=stream["type"], stream_direction=stream["direction"],
+                         stream_speed=stream["speed"], tap_shift_last=tap_shift,
+                         flag_motion=flag["motion"], flag_shape=flag_shape)
+    for obj in (tap, sheet):
+        bpy.data.objects.remove(obj)
+
     scene.unit_settings.scale_length = 0.01
     _, centimetres = export_module.build_scene(scene, tmp / "export_cm")
     out["export"]["centimetre_spacing"] = centimetres["particle_spacing"]
@@ -369,9 +489,43 @@ def child_shot(tmp):
         importer(filepath=str(path))
         imported = [o for o in bpy.data.objects if o not in before and o.type == "MESH"]
         counts = [evaluated_count(imported[0], scene, f) for f in range(1, 5)] if imported else []
-        out[kind] = {"counts": counts, "expected": expected}
+        error = None
+        if imported and counts == expected:
+            scene.frame_set(3)
+            evaluated = imported[0].evaluated_get(bpy.context.evaluated_depsgraph_get())
+            mesh = evaluated.to_mesh()
+            got = np.empty(len(mesh.vertices) * 3, np.float32)
+            mesh.attributes["position"].data.foreach_get("vector", got)
+            got = (np.array(evaluated.matrix_world) @ np.c_[got.reshape(-1, 3), np.ones(len(mesh.vertices))].T).T
+            evaluated.to_mesh_clear()
+            records = parse_ply(folder / "points_0003.ply")
+            want = np.stack([records["x"], records["y"], records["z"]], axis=1)
+            error = float(np.abs(got[:, :3] - want).max())
+        out[kind] = {"counts": counts, "expected": expected, "max_position_error_frame3": error}
         for o in imported:
             bpy.data.objects.remove(o)
+
+    # Refusals: over budget (the engine's fix is named) and an open fill mesh (the object is named).
+    refusals = {}
+    shot.max_particles = 10
+    try:
+        bpy.ops.splashdraft.bake()
+        refusals["budget"] = "no error"
+    except RuntimeError as exc:
+        refusals["budget"] = str(exc)
+    shot.max_particles = 400000
+    refusals["versions_after_budget"] = sorted(p.name for p in folder.parent.iterdir())
+    bpy.ops.mesh.primitive_plane_add(size=0.2, location=(0.5, 0.3, 0.6))
+    sheet = bpy.context.object
+    sheet.name = "Sheet"
+    sheet.splashdraft.role = "FILL"
+    try:
+        bpy.ops.splashdraft.estimate()
+        refusals["open_fill"] = "no error"
+    except RuntimeError as exc:
+        refusals["open_fill"] = str(exc)
+    bpy.data.objects.remove(sheet)
+    out["refusals"] = refusals
 
     # A corrupt frame shows as empty and is reported once.
     frame_file = folder / "points_0002.ply"
@@ -379,16 +533,13 @@ def child_shot(tmp):
     data[-8:] = b"\xff" * 8
     frame_file.write_bytes(bytes(data))
     display.clear_warnings()
-    warned = []
-    original_print = display.print if hasattr(display, "print") else print
-    display.print = lambda *args, **kwargs: (warned.append(args), original_print(*args, **kwargs))
     scene.frame_set(1)
     scene.frame_set(2)
     count = len(obj.data.vertices)
     scene.frame_set(1)
     scene.frame_set(2)
-    out["corrupt"] = {"count": count, "warned": len(warned)}
-    del package
+    warnings = display.reported_warnings()
+    out["corrupt"] = {"count": count, "warned": len(warnings), "messages": warnings}
     return out
 
 

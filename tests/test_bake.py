@@ -294,3 +294,20 @@ def test_progress_bar_redraws_in_place_on_a_terminal_and_prints_lines_otherwise(
         assert text.endswith("finished 3 frames in 4.0s; cache in out/x\n")
         assert (text.count("\r") == 2) is is_terminal
         assert text.count("\n") == (3 if is_terminal else 4)  # splitlines() would also split at \r
+
+
+def test_real_sph_resume_is_bit_identical(tmp_path):
+    """DFSPH (engine.sph) on a tiny scene: a bake stopped after frame 3 and resumed from its checkpoint
+    writes frames whose sha256 equal an uninterrupted bake's, so no warm-start data (kappa, kappa_v,
+    emitter counters) lives outside State (the Solver protocol in DEVELOPERS.md)."""
+    scene = write_tiny_scene(tmp_path, frame_end=7, block=((0.0, 0.0, 0.0), (0.15, 0.15, 0.2)))
+    full = bake(scene, "sph", tmp_path / "full", use_signals=False)
+    assert full.frames_written == 7
+    calls = []
+    stopped = bake(scene, "sph", tmp_path / "split", use_signals=False,
+                   should_stop=lambda: len(calls) >= 2 or calls.append(1))  # fmt: skip
+    assert stopped.is_cancelled and stopped.last_written == 3
+    bake(scene, "sph", tmp_path / "split", resume=True, use_signals=False)
+    assert checksums(tmp_path / "split") == checksums(tmp_path / "full")
+    moved = open_cache(tmp_path / "full").read_frame(7)["positions"]
+    assert np.abs(moved - open_cache(tmp_path / "full").read_frame(1)["positions"]).max() > 0.01

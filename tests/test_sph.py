@@ -98,3 +98,195 @@ def test_substeps_are_deterministic_and_reduce_compression():
         assert np.array_equal(getattr(first, name), getattr(second, name)), name
     assert first.density_error <= params.density_tolerance or first.pressure_iterations == params.max_iterations
     assert first.pressure_iterations >= 2
+
+
+# --- Further checks: XSPH, DFSPH factor, moving boundary, the Solver protocol. ---------
+
+import dataclasses  # noqa: E402
+
+from engine import sph  # noqa: E402
+from engine.errors import SceneError, SolverError  # noqa: E402
+from engine.state import state_from_arrays, state_to_arrays  # noqa: E402
+from engine.validate import WALL_GAP, BoxWorld, case_scene, lattice  # noqa: E402
+
+
+def _cloud_on_moving_floor(seed=0, n=70, spacing=0.02):
+    rng = np.random.default_rng(seed)
+    positions = rng.uniform(0, 4 * spacing, size=(n, 3))
+    velocities = rng.normal(0, 0.3, size=(n, 3))
+    floor = lattice((6, 6, 1), spacing, (-spacing, -spacing, -0.5 * spacing))
+    normals = np.tile([0.0, 0.0, 1.0], (len(floor), 1))
+    boundary = make_boundary(floor, normals, 2 * spacing, velocities=rng.normal(0, 0.2, floor.shape))
+    return positions, velocities, boundary, make_params(spacing)
+
+
+def _operators(positions, boundary, params):
+    return PairOperators(len(positions), *_find_pairs(positions, boundary, params, None), boundary, params)
+
+
+def test_density_rate_uses_boundary_velocity():
+    """D rho/Dt includes sum_b Psi_b (v_i - v_b).grad W_ib (Akinci 2012 [M]): moving colliders
+    push fluid. Loop oracle with random boundary velocities, 1e-12 of the largest entry."""
+    x, v, boundary, params = _cloud_on_moving_floor()
+    ops = _operators(x, boundary, params)
+    h, rho0, m = params.support_radius, params.rest_density, params.particle_mass
+    expected = np.zeros(len(x))
+    for i in range(len(x)):
+        for j in range(len(x)):
+            r = np.linalg.norm(x[i] - x[j])
+            if i != j and r < h:
+                expected[i] += m * (v[i] - v[j]) @ kernel_gradient((x[i] - x[j])[None], h)[0]
+        for b in range(boundary.count):
+            d = x[i] - boundary.positions[b]
+            if np.linalg.norm(d) < h:
+                g = rho0 * boundary.volumes[b] * kernel_gradient(d[None], h)[0]
+                expected[i] += (v[i] - boundary.velocities[b]) @ g
+    assert np.abs(ops.density_rate(v) - expected).max() <= 1e-12 * np.abs(expected).max()
+
+
+def test_xsph_matches_per_particle_loop():
+    """XSPH v_i + eps sum_j m / ((rho_i + rho_j)/2) (v_j - v_i) W_ij (Monaghan 1989, J. Comput.
+    Phys. 82:1-15 [R citation; form M]); loop oracle, 1e-12 of the velocity scale."""
+    x, v, boundary, params = _cloud_on_moving_floor(seed=1)
+    ops = _operators(x, boundary, params)
+    rho, eps, m, h = ops.density, 0.05, params.particle_mass, params.support_radius
+    expected = v.copy()
+    for i in range(len(x)):
+        for j in range(len(x)):
+            r = np.linalg.norm(x[i] - x[j])
+            if i != j and r < h:
+                expected[i] += eps * m / (0.5 * (rho[i] + rho[j])) * (v[j] - v[i]) * kernel(r, h)
+    np.testing.assert_allclose(ops.xsph(v, eps, m), expected, rtol=0, atol=1e-12 * np.abs(v).max())
+
+
+def test_dfsph_factor_matches_definition():
+    """alpha_i = rho_i / (|sum_j m grad W_ij + sum_b Psi_b grad W_ib|^2 + sum_j |m grad W_ij|^2)
+    (Bender & Koschier 2015 [M]); 1e-12 relative."""
+    x, _, boundary, params = _cloud_on_moving_floor(seed=2)
+    ops = _operators(x, boundary, params)
+    m, h = params.particle_mass, params.support_radius
+    for i in range(0, len(x), 7):
+        d = x[i] - x
+        r = np.linalg.norm(d, axis=1)
+        g = m * kernel_gradient(d[(r > 0) & (r < h)], h)
+        db = x[i] - boundary.positions
+        near = np.linalg.norm(db, axis=1) < h
+        gb = (params.rest_density * boundary.volumes[near])[:, None] * kernel_gradient(db[near], h)
+        total = g.sum(0) + gb.sum(0)
+        assert ops.alpha[i] == pytest.approx(ops.density[i] / (total @ total + (g * g).sum()), rel=1e-12)
+
+
+def _small_tank(columns=5, layers=8, spacing=0.02):
+    gap = WALL_GAP * spacing
+    positions = lattice((columns, columns, layers), spacing, (gap, gap, gap))
+    width = 2 * gap + (columns - 1) * spacing
+    faces = {"x_min": "wall", "x_max": "wall", "y_min": "wall", "y_max": "wall", "z_min": "wall", "z_max": "open"}
+    points, normals = sample_box_walls((0, 0, 0), (width, width, gap + (layers + 4) * spacing), spacing, faces)
+    boundary = make_boundary(points, normals, 2 * spacing)
+    velocities = np.random.default_rng(7).normal(0, 0.05, positions.shape)
+    return BoxWorld(case_scene(spacing), positions, velocities, boundary)
+
+
+def test_wall_gap_gives_rest_density():
+    """A lattice WALL_GAP = 1.1 spacings from a one-layer Akinci wall has rho within 1 % of rho0
+    in its first layer (the boundary volumes V_b = 1/sum W stand in for the missing fluid;
+    Akinci et al. 2012 [M]). 1 %: the start should not need a pressure kick."""
+    world = _small_tank()
+    params = sph.params_from_scene(world.scene)
+    x = world.initial_state().positions
+    rho = sph.sph_density(x, world.boundary_at(0.0), params)
+    first = x[:, 2] < 1.5 * params.particle_spacing
+    middle = np.all(np.abs(x[:, :2] - x[:, :2].mean(0)) < 0.5 * params.particle_spacing, axis=1)
+    assert np.abs(rho[first & middle] / params.rest_density - 1).max() < 0.01
+
+
+def test_advance_lands_on_end_time_and_repeats_bit_for_bit():
+    """Substeps land exactly on t_end; two runs give identical arrays (fixed summation order)."""
+    world = _small_tank()
+    runs = []
+    for _ in range(2):
+        solver = sph.SphSolver()
+        state, stats = solver.advance(solver.start(world), world, 0.01)
+        assert state.time == 0.01 and stats.substeps >= 3
+        state, _ = solver.advance(state, world, 1 / 48)
+        assert state.time == 1 / 48
+        runs.append(state)
+    np.testing.assert_array_equal(runs[0].positions, runs[1].positions)
+    for name in (sph.KAPPA, sph.KAPPA_V, sph.PRESSURE):
+        np.testing.assert_array_equal(runs[0].particle_arrays[name], runs[1].particle_arrays[name])
+
+
+def test_resume_from_checkpoint_is_bit_identical(tmp_path):
+    """Saving the State at a frame (npz, no pickle) and resuming with a fresh solver gives the
+    same bits as an uninterrupted run: the warm-start kappa lives in the State."""
+    world = _small_tank()
+    solver = sph.SphSolver()
+    straight, _ = solver.advance(solver.start(world), world, 0.02)
+    straight, _ = solver.advance(straight, world, 0.04)
+    first = sph.SphSolver()
+    half, _ = first.advance(first.start(world), world, 0.02)
+    path = tmp_path / "checkpoint.npz"
+    np.savez(path, **state_to_arrays(half))
+    with np.load(path, allow_pickle=False) as data:
+        loaded = state_from_arrays(data)
+    resumed, _ = sph.SphSolver().advance(loaded, world, 0.04)
+    np.testing.assert_array_equal(resumed.positions, straight.positions)
+    np.testing.assert_array_equal(resumed.velocities, straight.velocities)
+    np.testing.assert_array_equal(resumed.particle_arrays[sph.KAPPA], straight.particle_arrays[sph.KAPPA])
+
+
+def test_frame_attributes_shapes_and_values():
+    world = _small_tank()
+    solver = sph.SphSolver()
+    state, _ = solver.advance(solver.start(world), world, 0.02)
+    attributes = solver.frame_attributes(state, world)
+    assert attributes["density"].shape == (state.count,) and attributes["pressure"].shape == (state.count,)
+    assert np.all(attributes["pressure"] >= 0) and attributes["pressure"].max() > 0
+    assert 900 < np.median(attributes["density"]) < 1100
+
+
+def test_non_finite_velocity_raises_solver_error():
+    world = _small_tank()
+    solver = sph.SphSolver()
+    state = solver.start(world)
+    velocities = state.velocities.copy()
+    velocities[3] = np.nan
+    with pytest.raises(SolverError, match=r"particle id 3 has a non-finite"):
+        solver.advance(dataclasses.replace(state, velocities=velocities), world, 0.01)
+
+
+def test_runaway_velocity_raises_solver_error():
+    world = _small_tank()
+    solver = sph.SphSolver()
+    state = solver.start(world)
+    velocities = state.velocities.copy()
+    velocities[5] = [2000.0, 0, 0]
+    with pytest.raises(SolverError, match=r"particle id 5 moves at 2000 m/s.*runaway velocity"):
+        solver.advance(dataclasses.replace(state, velocities=velocities), world, 0.01)
+
+
+def test_backwards_advance_is_refused():
+    world = _small_tank()
+    solver = sph.SphSolver()
+    state = dataclasses.replace(solver.start(world), time=0.5)
+    with pytest.raises(SolverError, match="back in time"):
+        solver.advance(state, world, 0.25)
+
+
+@pytest.mark.parametrize("kwargs, message", [
+    ({"particle_spacing": 0.0}, r"particle_spacing: must be a finite number > 0"),
+    ({"viscosity": 2.0}, r"fluid.viscosity: XSPH coefficient must lie in \[0, 1\]"),
+    ({"cfl_factor": 3.0}, r"solver.cfl_factor: must be <= 1"),
+    ({"min_time_step": 0.1, "max_time_step": 0.01}, r"solver.min_time_step .* exceeds"),
+    ({"max_iterations": 1}, r"solver.max_iterations: must be an integer >= 2"),
+])
+def test_bad_parameters_raise_scene_error(kwargs, message):
+    arguments = {"particle_spacing": 0.02, **kwargs}
+    with pytest.raises(SceneError, match=message):
+        make_params(arguments.pop("particle_spacing"), **arguments)
+
+
+def test_substep_length_never_leaves_a_sliver():
+    assert sph.substep_length(0.004, 0.003) == 0.003
+    assert sph.substep_length(0.004, 0.006) == 0.003
+    assert sph.substep_length(0.004, 0.02) == 0.004

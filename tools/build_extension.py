@@ -188,7 +188,7 @@ def build(platforms, use_wheels=True, out_dir=ROOT / "dist", cache_dir=ROOT / "w
     if use_wheels:
         for platform in platforms:
             wheels += download_wheels(platform, cache_dir)
-        check_numpy_pins([w for w in wheels if w.name.startswith("scipy-")])
+        check_numpy_pins(wheels)
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     manifest = tomllib.loads((ROOT / "blender_manifest.toml").read_text(encoding="utf-8"))

@@ -58,8 +58,8 @@ class Shot:
         return self.world.boundary_at(self.times[k])
 
     def sample_indices(self):
-        """Frame positions k usable as 'now' (k-2 and k+1 exist)."""
-        return list(range(2, len(self.frames) - 1))
+        """Frame positions k usable as 'now' (k-2 and k+1 exist, and frame k has particles)."""
+        return [k for k in range(2, len(self.frames) - 1) if len(self.ids[k])]
 
     def _lookup(self, k, ids):
         """Index into frame k of each id (or -1)."""
@@ -79,11 +79,17 @@ class Shot:
         dt = self.dt
         i1, i2, i_next = self._lookup(k - 1, ids), self._lookup(k - 2, ids), self._lookup(k + 1, ids)
         has1, has2, has_next = i1 >= 0, i2 >= 0, i_next >= 0
-        x1 = np.where(has1[:, None], self.positions[k - 1][np.maximum(i1, 0)], x)
+
+        def gather(j, where, found, fallback):
+            if not found.any():
+                return fallback
+            return np.where(found[:, None], self.positions[j][np.maximum(where, 0)], fallback)
+
+        x1 = gather(k - 1, i1, has1, x)
         v = np.where(has1[:, None], (x - x1) / dt, v_cached)
-        x2 = np.where(has2[:, None], self.positions[k - 2][np.maximum(i2, 0)], x1)
+        x2 = gather(k - 2, i2, has2, x1)
         v_prev = np.where((has1 & has2)[:, None], (x1 - x2) / dt, v)
-        x_next = np.where(has_next[:, None], self.positions[k + 1][np.maximum(i_next, 0)], x)
+        x_next = gather(k + 1, i_next, has_next, x)
         v_next = (x_next - x) / dt
         return {"positions": x, "velocity": v, "previous_velocity": v_prev, "next_velocity": v_next,
                 "has_target": has1 & has_next}

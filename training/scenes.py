@@ -50,7 +50,10 @@ def _base(name, seed, size_m, duration_s, spacing):
         "fps": fps, "frame_start": 1, "frame_end": 1 + int(round(duration_s * fps)),
         "particle_spacing": spacing, "seed": int(seed), "gravity": [0.0, 0.0, -GRAVITY],
         "fluid": {"rest_density": 1000.0, "viscosity": 0.02},
-        "bounds": {"min": [0.0, 0.0, 0.0], "max": [float(v) for v in size_m],
+        # Walls sit half a spacing outside [0, size]: fill lattices are cell centres (k + 1/2) d, so
+        # liquid placed from 0 starts one spacing from the wall particles (at half a spacing the
+        # reference solver starts 65 % over-dense in corners and blows up).
+        "bounds": {"min": [-0.5 * spacing] * 3, "max": [float(v) - 0.5 * spacing for v in size_m],
                    "faces": {"x_min": "wall", "x_max": "wall", "y_min": "wall", "y_max": "wall",
                              "z_min": "wall", "z_max": "open"}},
         "emitters": [], "colliders": [],
@@ -77,6 +80,7 @@ def training_scene(index, seed=TRAIN_SEED, spacing=TRAINING_SPACING, duration_s=
                                    rng.uniform(half[1] + 1, size[1] - half[1] - 1),
                                    half[2] + (0 if rng.random() < 0.6 else rng.uniform(0, 6))])
                 lo, hi = center - half, center + half
+                lo[2] = -0.5 if lo[2] < 0.01 else lo[2]  # rest on the floor (walls at -d/2)
             elif kind == "sphere":
                 r = rng.uniform(2.5, 5)
                 center = np.array([rng.uniform(r + 1, size[0] - r - 1), rng.uniform(r + 1, size[1] - r - 1),
@@ -96,13 +100,13 @@ def training_scene(index, seed=TRAIN_SEED, spacing=TRAINING_SPACING, duration_s=
         elif kind == "sphere":
             mesh = mesh_io.ico_sphere_mesh(center * d, r * d, subdivisions=3)
         else:
-            mesh = mesh_io.cylinder_mesh(center * d, r * d, h * d, segments=24)
+            mesh = mesh_io.cylinder_mesh((center - [0, 0, 0.25]) * d, r * d, (h + 0.5) * d, segments=24)
         scene["colliders"].append({"name": f"obstacle_{k}", "mesh": _mesh(mesh), "motion": "static"})
     budget = max_particles
     sources = int(rng.integers(1, 4))
     if rng.random() < 0.35:  # a shallow pool at rest that the rest falls into
         depth = rng.uniform(2.5, 5)
-        pool = (np.array([0.5, 0.5, 0.5]), np.array([size[0] - 0.5, size[1] - 0.5, depth]))
+        pool = (np.array([0.0, 0.0, 0.0]), np.array([size[0] - 1.0, size[1] - 1.0, depth]))
         count = np.prod(pool[1] - pool[0])
         if count < 0.6 * budget:
             scene["emitters"].append({"name": "pool", "type": "fill", "mesh": _mesh(mesh_io.box_mesh(pool[0] * d, pool[1] * d))})
@@ -138,8 +142,8 @@ def training_scene(index, seed=TRAIN_SEED, spacing=TRAINING_SPACING, duration_s=
                                rng.uniform(half[1] + 0.8, size[1] - half[1] - 0.8),
                                rng.uniform(half[2] + 0.8, max(half[2] + 0.9, size[2] - half[2] - 1.0))])
             if kind == "column":
-                center[0] = half[0] + 0.6 if rng.random() < 0.5 else size[0] - half[0] - 0.6
-                center[2] = half[2] + 0.6
+                center[0] = half[0] if rng.random() < 0.5 else size[0] - 1.0 - half[0]
+                center[2] = half[2]
             lo, hi = center - half, center + half
             if not _overlaps(lo, hi, occupied, 0.6):
                 break
@@ -180,16 +184,16 @@ def heldout_scene(kind, seed=HELDOUT_SEED, spacing=TRAINING_SPACING, duration_s=
         size = np.array([34.0, 14.0, 28.0])
         scene = _base("heldout_stairs", seed, size * d, duration_s, spacing)
         for step in range(4):
-            lo = np.array([12.0 + 5.0 * step, 0.0, 0.0]) * d
-            hi = np.array([34.0, 14.0, 12.0 - 3.0 * step]) * d
+            lo = np.array([12.0 + 5.0 * step, -0.5, -0.5]) * d
+            hi = np.array([33.5, 13.5, 12.0 - 3.0 * step]) * d
             scene["colliders"].append({"name": f"step_{step}", "mesh": _mesh(mesh_io.box_mesh(lo, hi)), "motion": "static"})
-        block = mesh_io.box_mesh(np.array([0.5, 0.5, 0.5]) * d, np.array([10.0, 13.5, 20.0]) * d)
+        block = mesh_io.box_mesh(np.array([0.0, 0.0, 0.0]) * d, np.array([10.0, 13.0, 20.0]) * d)
         scene["emitters"].append({"name": "column", "type": "fill", "mesh": _mesh(block)})
         return scene
     if kind == "paddle":
         size = np.array([36.0, 16.0, 24.0])
         scene = _base("heldout_paddle", seed, size * d, duration_s, spacing)
-        pool = mesh_io.box_mesh(np.array([0.5, 0.5, 0.5]) * d, np.array([35.5, 15.5, 7.0]) * d)
+        pool = mesh_io.box_mesh(np.array([0.0, 0.0, 0.0]) * d, np.array([35.0, 15.0, 7.0]) * d)
         scene["emitters"].append({"name": "pool", "type": "fill", "mesh": _mesh(pool)})
         paddle = mesh_io.box_mesh(np.array([-1.0, -7.0, -6.0]) * d, np.array([1.0, 7.0, 6.0]) * d)
         frames = scene["frame_end"] - scene["frame_start"] + 1

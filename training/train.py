@@ -304,9 +304,12 @@ def main(argv=None):
     parser.add_argument("--lr", type=float, help=f"Initial learning rate (default {DEFAULTS['lr']}).")
     parser.add_argument("--batch", type=int, help=f"Frames per iteration (default {DEFAULTS['batch']}).")
     parser.add_argument("--seed", type=int, help=f"Seed (default {DEFAULTS['seed']}).")
+    parser.add_argument("--checkpoint-every", type=int, help=f"Iterations between checkpoints (default {DEFAULTS['checkpoint_every']}).")
     parser.add_argument("--export", dest="export_to", help="Also copy the model + contract to this path stem, e.g. models/preview-gn1.")
     args = parser.parse_args(argv)
     overrides = {k: getattr(args, k) for k in ("iterations", "latent", "rounds", "noise", "lr", "batch", "seed")}
+    overrides["checkpoint_every"] = args.checkpoint_every
+    overrides["validate_every"] = args.checkpoint_every
     try:
         summary = train(args.data, args.out, args.resume, overrides, args.minutes, args.export_to,
                         log=lambda m: print(m, file=sys.stderr, flush=True))
