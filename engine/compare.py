@@ -124,18 +124,15 @@ def kinetic_energy(velocities, particle_spacing, rest_density):
 
 
 def _collider_meshes(world, time):
-    """List of (vertices, triangles) of the world's colliders at ``time``."""
-    meshes = world.collider_triangles_at(time)
-    if isinstance(meshes, dict):
-        meshes = list(meshes.values())
+    """List of (vertices, triangles) of the world's colliders at ``time``.
+
+    ``World.collider_triangles_at`` gives (name, (T, 3, 3) corners); the corners become a
+    triangle soup with 3T vertices, which the winding-number inside test accepts.
+    """
     out = []
-    for item in meshes:
-        if isinstance(item, dict):
-            out.append((item["vertices"], item["triangles"]))
-        elif hasattr(item, "vertices"):
-            out.append((item.vertices, item.triangles))
-        else:
-            out.append((item[-2], item[-1]) if len(item) > 2 else (item[0], item[1]))
+    for _name, corners in world.collider_triangles_at(time):
+        corners = np.asarray(corners, np.float64).reshape(-1, 3, 3)
+        out.append((corners.reshape(-1, 3), np.arange(3 * len(corners), dtype=np.int64).reshape(-1, 3)))
     return out
 
 

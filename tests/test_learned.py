@@ -165,8 +165,11 @@ def test_output_transform_round_trips_and_zero_means_free_fall():
 
 
 def copy_model(tmp_path):
-    for suffix in (".onnx", ".json"):
-        shutil.copyfile(SHIPPED.with_suffix(suffix), tmp_path / f"m{suffix}")
+    """Copy the shipped pair as m.onnx / m.json (the contract's onnx_file renamed to match)."""
+    shutil.copyfile(SHIPPED.with_suffix(".onnx"), tmp_path / "m.onnx")
+    contract = json.loads(SHIPPED.with_suffix(".json").read_text())
+    contract["onnx_file"] = "m.onnx"
+    (tmp_path / "m.json").write_text(json.dumps(contract))
     return tmp_path / "m.onnx"
 
 
