@@ -39,13 +39,13 @@ def tank_scene(particles, spacing=0.025, fps=24, frame_end=13, obstacle=True):
     scene = {
         "format": "splashdraft-scene", "version": 1, "name": f"bench_{particles}", "fps": fps,
         "frame_start": 1, "frame_end": frame_end, "particle_spacing": d,
-        "bounds": {"min": [0, 0, 0], "max": [(2.2 * lx + 2) * d, (ly + 2) * d, (lz + 6) * d]},
+        "bounds": {"min": [-0.5 * d] * 3, "max": [(2.2 * lx + 0.5) * d, (ly + 0.5) * d, (lz + 6) * d]},
         "emitters": [{"name": "block", "type": "fill",
-                      "mesh": mesh(mesh_io.box_mesh(np.array([1.0, 1.0, 1.0]) * d, np.array([lx + 1, ly + 1, lz + 1]) * d))}],
+                      "mesh": mesh(mesh_io.box_mesh(np.zeros(3), np.array([lx, ly, lz]) * d))}],
         "colliders": [],
     }  # fmt: skip
     if obstacle:
-        lo = np.array([1.5 * lx, 0.3 * ly, 0.0]) * d
+        lo = np.array([1.5 * lx, 0.3 * ly, -0.5]) * d
         hi = np.array([1.8 * lx, 0.7 * ly + 1, 0.25 * lz]) * d
         scene["colliders"].append({"name": "box", "mesh": mesh(mesh_io.box_mesh(lo, hi))})
     return scene

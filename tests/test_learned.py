@@ -245,10 +245,10 @@ def make_small_scene(folder):
     scene = {
         "format": "splashdraft-scene", "version": 1, "name": "learned_rollout_test", "fps": 24,
         "frame_start": 1, "frame_end": 13, "particle_spacing": d,
-        "bounds": {"min": [0, 0, 0], "max": [16 * d, 10 * d, 20 * d]},
+        "bounds": {"min": [-0.5 * d] * 3, "max": [15.5 * d, 9.5 * d, 19.5 * d]},
         "emitters": [{"name": "block", "type": "fill",
-                      "mesh": mesh(mesh_io.box_mesh(np.array([1.0, 1.0, 4.0]) * d, np.array([8.0, 9.0, 13.0]) * d))}],
-        "colliders": [{"name": "box", "mesh": mesh(mesh_io.box_mesh(np.array([10.0, 2.0, 0.0]) * d,
+                      "mesh": mesh(mesh_io.box_mesh(np.array([0.0, 0.0, 3.0]) * d, np.array([7.0, 9.0, 12.0]) * d))}],
+        "colliders": [{"name": "box", "mesh": mesh(mesh_io.box_mesh(np.array([10.0, 2.0, -0.5]) * d,
                                                                      np.array([14.0, 8.0, 4.0]) * d))}],
     }  # fmt: skip
     return save_scene(folder / "scene.json", scene)
