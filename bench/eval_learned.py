@@ -88,9 +88,9 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
     row = {"shot": name, "learned_wall_seconds": round(learned_seconds, 1), "error": error}
     if result is not None:
         row.update(stability(learned_dir, seconds))
-    ref = open_cache(reference_dir)
-    frames = [f for f in ref.frames if ref.manifest["frames"][str(f)]["time"] <= fidelity_seconds + 1e-9]
     try:
+        ref = open_cache(reference_dir)
+        frames = [f for f in ref.frames if ref.manifest["frames"][str(f)]["time"] <= fidelity_seconds + 1e-9]
         learned_frames = set(open_cache(learned_dir).frames)
         frames = [f for f in frames if f in learned_frames]
         fidelity = compare_caches(reference_dir, learned_dir, frames=frames, scene=scene_path)
@@ -147,8 +147,11 @@ def main(argv=None):
             reader = open_cache(reference_dir)
         except SplashdraftError:
             pass
-        if reader is None or not reader.manifest.get("complete"):
-            bake(scene_path, "sph", reference_dir, frames=(scene.frame_start, last), overwrite=True, use_signals=False)
+        try:
+            if reader is None or not reader.manifest.get("complete"):
+                bake(scene_path, "sph", reference_dir, frames=(scene.frame_start, last), overwrite=True, use_signals=False)
+        except SplashdraftError as exc:
+            log(f"demo reference bake failed: {exc}")
         rows.append(evaluate_shot(f"demo_{args.demo_preset}", scene_path, reference_dir, out, args.model,
                                   args.seconds, args.fidelity_seconds, log))
     head = f"{'shot':<18} {'CD mean [d]':>11} {'CD max [d]':>10} {'rho 3%':>7} {'inside':>6} {'10 s ok':>7} {'KE end/1s':>9} {'n0->n':>13}"
