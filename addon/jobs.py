@@ -19,6 +19,8 @@ import threading
 import time
 from dataclasses import dataclass, field
 
+from ..engine.estimate import format_bytes
+
 #: Seconds a cancelled worker gets to finish its current frame before a second cancel kills it.
 CANCEL_GRACE_SECONDS = 120.0
 
@@ -372,21 +374,13 @@ def run_estimate(argv, timeout=300.0, env=None):
     return None, message
 
 
-def _format_bytes(count):
-    count = float(count)
-    for unit in ("B", "kB", "MB", "GB"):
-        if count < 1000 or unit == "GB":
-            return f"{count:.0f} {unit}" if unit == "B" else f"{count:.1f} {unit}"
-        count /= 1000.0
-
-
 def summarize_estimate(estimate):
     """One line for the panel: particles, memory, disk and time of an estimate dict."""
     parts = [f"{int(estimate.get('particles', 0)):,} particles"]
     if "memory_bytes" in estimate:
-        parts.append(f"memory ~{_format_bytes(estimate['memory_bytes'])}")
+        parts.append(f"memory ~{format_bytes(estimate['memory_bytes'])}")
     if "disk_bytes" in estimate:
-        parts.append(f"disk ~{_format_bytes(estimate['disk_bytes'])}")
+        parts.append(f"disk ~{format_bytes(estimate['disk_bytes'])}")
     if "seconds" in estimate:
         parts.append(f"time ~{format_seconds(float(estimate['seconds']))}")
     return ", ".join(parts)
