@@ -4,6 +4,7 @@ Usage (the bpy module is in the venv, so this runs with the venv's Python):
 
     .venv/bin/python tools/blender_demo.py                  # small preset, out/blender_demo/
     .venv/bin/python tools/blender_demo.py --preset full    # 25k particles, 60 frames (long)
+    .venv/bin/python tools/blender_demo.py --solver learned # the learned preview instead
 
 Steps: enable the add-on from this working tree in an isolated Blender user
 folder; build the demo shot of ``engine.demo`` (trough = shot bounds with an
@@ -36,6 +37,8 @@ def parse_args(argv=None):
     parser.add_argument("--size", type=int, nargs=2, default=(320, 180), metavar=("W", "H"),
                         help="Size of one tile in pixels. Default: 320 180.")
     parser.add_argument("--samples", type=int, default=16, help="Cycles samples per tile. Default: 16.")
+    parser.add_argument("--solver", choices=("sph", "learned"), default="sph",
+                        help="sph: the reference solver; learned: the shipped learned preview. Default: sph.")
     return parser.parse_args(argv)
 
 
@@ -175,6 +178,7 @@ def main(argv=None):
 
     scene = bpy.context.scene
     build_demo_shot(scene, demo, mesh_io, spacing, frame_end, out / "cache")
+    scene.splashdraft.solver = args.solver
     bpy.ops.splashdraft.estimate()
     print(f"blender_demo: estimate: {scene.splashdraft.estimate_text}", flush=True)
     bake_start = time.perf_counter()
