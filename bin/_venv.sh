@@ -1,16 +1,18 @@
-# Shared by bin/demo and bin/test: make .venv at the repository root if missing and install a requirements file.
-# Usage: source bin/_venv.sh; ensure_venv requirements-test.txt
+# Shared by bin/demo and bin/test: make a virtual environment at the repository root if missing
+# and install a requirements file into it.
+# Usage: source bin/_venv.sh; ensure_venv requirements-test.txt [VENV_DIR (default .venv)]
 set -euo pipefail
 ROOT="$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)"
 PY="$ROOT/.venv/bin/python"
 ensure_venv() {
-    if [ ! -x "$PY" ]; then
-        echo "creating virtual environment at $ROOT/.venv" >&2
-        python3 -m venv "$ROOT/.venv"
+    local venv="$ROOT/${2:-.venv}"
+    if [ ! -x "$venv/bin/python" ]; then
+        echo "creating virtual environment at $venv" >&2
+        python3 -m venv "$venv"
     fi
-    local stamp="$ROOT/.venv/.installed-$(basename "$1")"
+    local stamp="$venv/.installed-$(basename "$1")"
     if [ ! -f "$stamp" ] || [ "$ROOT/$1" -nt "$stamp" ]; then
-        "$PY" -m pip install --quiet --disable-pip-version-check -r "$ROOT/$1"
+        "$venv/bin/python" -m pip install --quiet --disable-pip-version-check -r "$ROOT/$1"
         touch "$stamp"
     fi
 }
