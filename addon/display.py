@@ -9,8 +9,19 @@ Rendering: a Geometry Nodes modifier turns the vertices into spheres
 (Mesh to Points, radius = point size x spacing) and sets a material coloured by
 speed; an optional second modifier meshes a surface (points -> volume -> mesh).
 
+Two ways to play back (the shot's ``playback`` setting):
+
+- ``REFILL`` (any Blender): a persistent frame-change handler rewrites the
+  mesh. Renders run it too, so the add-on must be installed where you render.
+- ``NODES`` (Blender 5.0 and newer, which have the PLY file-import node): a
+  first Geometry Nodes modifier reads the current frame's PLY file itself
+  (frame number -> file name -> Import PLY -> unit scale -> ``velocity``,
+  ``speed``, ``id`` attributes), so no Python runs while rendering and the
+  .blend renders without the add-on; the base mesh stays empty.
+
 The frame handler never raises into Blender: a missing or corrupt frame shows
-as empty and is reported once per version.
+as empty and is reported once per version. In ``NODES`` mode a missing file
+shows as empty with the importer's warning on the modifier.
 """
 
 from pathlib import Path
@@ -24,6 +35,8 @@ from ..engine.errors import CacheError
 POINTS_GROUP = "Splashdraft points"
 SURFACE_GROUP = "Splashdraft surface"
 PASS_GROUP = "Splashdraft pass-through"
+READER_GROUP = "Splashdraft file reader"
+READER_MODIFIER = "Splashdraft file reader"
 POINTS_MODIFIER = "Splashdraft spheres"
 SURFACE_MODIFIER = "Splashdraft surface"
 MATERIAL_NAME = "Splashdraft liquid"
@@ -138,14 +151,25 @@ def frame_arrays(folder, frame):
         return empty_frame()
 
 
+def reads_in_nodes(scene):
+    """True when the shot plays back through the file-reader node tree (NODES mode, Blender 5.0+)."""
+    return scene.splashdraft.playback == "NODES" and reader_nodes_available()
+
+
+def reader_nodes_available():
+    """The PLY file-import and string-format nodes exist (Blender 5.0 and newer)."""
+    return hasattr(bpy.types, "GeometryNodeImportPLY") and hasattr(bpy.types, "FunctionNodeFormatString")
+
+
 def show_frame(scene, frame=None, force=False):
     """Fill the scene's liquid object with ``frame`` (default: the current frame) of the shown version.
 
-    Returns the number of points shown, or None when there is nothing to show into.
+    Returns the number of points shown, or None when there is nothing to show into
+    (no liquid object, or NODES playback, where the modifier reads the file itself).
     """
     shot = scene.splashdraft
     obj = shot.display_object
-    if obj is None or obj.type != "MESH":
+    if obj is None or obj.type != "MESH" or reads_in_nodes(scene):
         return None
     frame = scene.frame_current if frame is None else int(frame)
     version = current_version(scene)
@@ -290,6 +314,95 @@ def pass_through_group():
     return group
 
 
+def reader_group():
+    """Scene frame -> file name -> Import PLY -> metres to scene units -> velocity/speed/id attributes.
+
+    Inputs: ``Path Pattern`` (a Python-style format string with ``{frame}``, e.g.
+    ``/cache/v001_sph/points_{frame:0>4}.ply``) and ``Scale`` (Blender units per metre).
+    The PLY's own properties (vx, vy, vz, id, density, pressure) arrive as float point
+    attributes; density and pressure keep their names.
+    """
+    group, is_new = _new_group(READER_GROUP)
+    if not is_new:
+        return group
+    group.interface.new_socket("Path Pattern", in_out="INPUT", socket_type="NodeSocketString")
+    _input_socket(group, "Scale", "NodeSocketFloat", 1.0, minimum=1e-9)
+    nodes, links = group.nodes, group.links
+    source, sink = nodes.new("NodeGroupInput"), nodes.new("NodeGroupOutput")
+    time = nodes.new("GeometryNodeInputSceneTime")
+    name = nodes.new("FunctionNodeFormatString")
+    name.format_items.new("INT", "frame")
+    links.new(source.outputs["Path Pattern"], name.inputs["Format"])
+    links.new(time.outputs["Frame"], name.inputs["frame"])
+    load = nodes.new("GeometryNodeImportPLY")
+    links.new(name.outputs["String"], load.inputs["Path"])
+    scale_vector = nodes.new("ShaderNodeCombineXYZ")
+    for axis in "XYZ":
+        links.new(source.outputs["Scale"], scale_vector.inputs[axis])
+    transform = nodes.new("GeometryNodeTransform")
+    links.new(load.outputs["Mesh"], transform.inputs["Geometry"])
+    links.new(scale_vector.outputs["Vector"], transform.inputs["Scale"])
+    velocity_ms = nodes.new("ShaderNodeCombineXYZ")
+    for axis, prop in zip("XYZ", ("vx", "vy", "vz")):
+        read = nodes.new("GeometryNodeInputNamedAttribute")
+        read.data_type = "FLOAT"
+        read.inputs["Name"].default_value = prop
+        links.new(read.outputs["Attribute"], velocity_ms.inputs[axis])
+    velocity = nodes.new("ShaderNodeVectorMath")
+    velocity.operation = "SCALE"
+    links.new(velocity_ms.outputs["Vector"], velocity.inputs[0])
+    links.new(source.outputs["Scale"], velocity.inputs["Scale"])
+    speed = nodes.new("ShaderNodeVectorMath")
+    speed.operation = "LENGTH"
+    links.new(velocity_ms.outputs["Vector"], speed.inputs[0])
+    read_id = nodes.new("GeometryNodeInputNamedAttribute")
+    read_id.data_type = "FLOAT"
+    read_id.inputs["Name"].default_value = "id"
+    geometry = transform.outputs["Geometry"]
+    for attribute, kind, value in (("velocity", "FLOAT_VECTOR", velocity.outputs["Vector"]),
+                                   ("speed", "FLOAT", speed.outputs["Value"]),
+                                   ("id", "INT", read_id.outputs["Attribute"])):
+        store = nodes.new("GeometryNodeStoreNamedAttribute")
+        store.data_type = kind
+        store.domain = "POINT"
+        store.inputs["Name"].default_value = attribute
+        links.new(geometry, store.inputs["Geometry"])
+        links.new(value, store.inputs["Value"])
+        geometry = store.outputs["Geometry"]
+    links.new(geometry, sink.inputs["Geometry"])
+    return group
+
+
+def path_pattern(folder):
+    """The reader's format string for the frames of ``folder`` (braces in the path escaped)."""
+    from ..engine.cache import frame_file_name
+
+    stem = frame_file_name(0).split("_")[0]  # "points"
+    escaped = str(Path(bpy.path.abspath(folder)).resolve()).replace("{", "{{").replace("}", "}}")
+    return f"{escaped}/{stem}_{{frame:0>4}}.ply"
+
+
+def _apply_reader(scene, obj):
+    """Add, update or remove the file-reader modifier to match the shot's playback mode."""
+    modifier = obj.modifiers.get(READER_MODIFIER)
+    if not reads_in_nodes(scene):
+        if modifier is not None:
+            obj.modifiers.remove(modifier)
+            _last_shown.pop(obj.name, None)
+        return
+    if modifier is None:
+        modifier = obj.modifiers.new(READER_MODIFIER, "NODES")
+        modifier.node_group = reader_group()
+        obj.modifiers.move(len(obj.modifiers) - 1, 0)
+    if len(obj.data.vertices):
+        obj.data.clear_geometry()
+    _last_shown.pop(obj.name, None)
+    version = current_version(scene)
+    group = modifier.node_group
+    modifier[_socket_id(group, "Path Pattern")] = path_pattern(version.folder) if version is not None else ""
+    modifier[_socket_id(group, "Scale")] = 1.0 / (float(scene.unit_settings.scale_length) or 1.0)
+
+
 def _socket_id(group, name):
     return group.interface.items_tree[name].identifier
 
@@ -341,6 +454,7 @@ def apply_display_settings(scene):
             spacing = float(reader.manifest.get("particle_spacing", spacing * scale)) / scale
         except CacheError:
             pass
+    _apply_reader(scene, obj)
     points = obj.modifiers.get(POINTS_MODIFIER)
     if points is not None and points.node_group is not None:
         points[_socket_id(points.node_group, "Radius")] = spacing * shot.point_size

@@ -136,6 +136,27 @@ def test_shot_exports_bakes_plays_back_renders_swaps_and_exports(tmp_path):
     assert "points_0002.ply" in corrupt["messages"][0] and "corrupt" in corrupt["messages"][0], corrupt
 
 
+def test_nodes_playback_reads_the_cache_without_python(tmp_path):
+    """Blender 5.0+: the file-reader modifier alone (all frame handlers removed) shows every frame
+    as the PLY holds it, scaled to scene units, and renders; outside the bake it shows nothing;
+    switching back to REFILL removes the modifier and refills the mesh."""
+    result, output = blender_env.run_child(HERE, "child_nodes_playback", tmp_path, timeout=600)
+    if not result["available"]:
+        pytest.skip(f"Blender {result['version']} has no PLY import node (5.0 and newer)")
+    assert result["operator"] == ["FINISHED"], output[-4000:]
+    assert result["modifiers_nodes"][0] == "Splashdraft file reader"
+    for frame in result["frames"]:
+        assert frame["base_vertices"] == 0, frame
+        if frame["frame"] == 6:
+            assert frame["count"] == 0 and "cache_count" not in frame, frame
+            continue
+        assert frame["count"] == frame["cache_count"] > 0, frame
+        assert frame["position_error_bu"] <= 1e-5 and frame["velocity_error_bu"] <= 1e-5, frame
+        assert frame["speed_error_ms"] <= 1e-5 and frame["ids_equal"], frame
+    assert result["render"]["std"] > 0.02 and result["render"]["liquid_fraction"] > 0.01, result["render"]
+    assert "Splashdraft file reader" not in result["back"]["modifiers"] and result["back"]["vertices"] > 0, result
+
+
 def test_panels_draw_only_existing_properties_and_operators():
     """Every panel of the sidebar tab, drawn for every role, names only properties and operators that exist.
 
@@ -541,6 +562,68 @@ def child_shot(tmp):
     warnings = display.reported_warnings()
     out["corrupt"] = {"count": count, "warned": len(warnings), "messages": warnings}
     return out
+
+
+def child_nodes_playback(tmp):
+    """NODES playback with every frame handler removed: the modifier alone must show each frame."""
+    import bpy
+
+    tmp = Path(tmp)
+    scene = blender_env.reset_scene()
+    module = blender_env.enable_from_source()
+    display = sys.modules[module + ".addon.display"]
+    if not display.reader_nodes_available():
+        return {"available": False, "version": bpy.app.version_string}
+    build_shot(scene, tmp / "cache")
+    result = bpy.ops.splashdraft.bake()
+    shot = scene.splashdraft
+    obj = shot.display_object
+    folder = Path(shot.versions[0].folder)
+    scene.unit_settings.scale_length = 0.5  # 1 BU = 0.5 m: positions and velocities in BU are twice the metres
+    shot.playback = "NODES"
+    modifiers = [m.name for m in obj.modifiers]
+    bpy.app.handlers.frame_change_pre.clear()
+    bpy.app.handlers.frame_change_post.clear()
+    spheres = obj.modifiers[display.POINTS_MODIFIER]
+    spheres.show_viewport = False  # read the reader's mesh before it becomes points
+    frames = []
+    for frame in (1, 2, 3, 4, 6):
+        scene.frame_set(frame)
+        evaluated = obj.evaluated_get(bpy.context.evaluated_depsgraph_get())
+        mesh = evaluated.to_mesh()
+        n = len(mesh.vertices)
+        got = {"frame": frame, "count": n, "base_vertices": len(obj.data.vertices)}
+        path = folder / f"points_{frame:04d}.ply"
+        if path.exists():
+            records = parse_ply(path)
+            got["cache_count"] = int(len(records))
+            if n == len(records):
+                positions = np.empty(n * 3, np.float32)
+                mesh.attributes["position"].data.foreach_get("vector", positions)
+                velocity = np.empty(n * 3, np.float32)
+                mesh.attributes["velocity"].data.foreach_get("vector", velocity)
+                speed = np.empty(n, np.float32)
+                mesh.attributes["speed"].data.foreach_get("value", speed)
+                ids = np.empty(n, np.int32)
+                mesh.attributes["id"].data.foreach_get("value", ids)
+                want = np.stack([records["x"], records["y"], records["z"]], axis=1)
+                want_v = np.stack([records["vx"], records["vy"], records["vz"]], axis=1)
+                got["position_error_bu"] = float(np.abs(positions.reshape(-1, 3) - 2.0 * want).max())
+                got["velocity_error_bu"] = float(np.abs(velocity.reshape(-1, 3) - 2.0 * want_v).max())
+                got["speed_error_ms"] = float(np.abs(speed - np.linalg.norm(want_v, axis=1)).max())
+                got["ids_equal"] = bool(np.array_equal(ids, records["id"]))
+        evaluated.to_mesh_clear()
+        frames.append(got)
+    spheres.show_viewport = True
+    scene.unit_settings.scale_length = 1.0
+    display.refresh(scene)
+    scene.frame_set(3)
+    render = render_png(scene, tmp / "nodes_frame3.png")
+    shot.playback = "REFILL"
+    scene.frame_set(2)
+    back = {"modifiers": [m.name for m in obj.modifiers], "vertices": len(obj.data.vertices)}
+    return {"available": True, "operator": sorted(result), "frames": frames, "render": render,
+            "modifiers_nodes": modifiers, "back": back}
 
 
 if __name__ == "__main__":
