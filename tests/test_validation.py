@@ -67,9 +67,15 @@ def test_dam_break_front_against_martin_and_moyce(dam_break):
     2026-12-02 (the simulated front runs ahead of the experiment by about 0.29 on
     average: free-slip walls and instant gate removal), so ``validate dam-break`` reports
     a failure. This test guards the measured level (RMS <= 0.35).
+
+    The shape, though, matches: delayed by dT = 0.25 (13.5 ms, about what lifting a gate
+    takes; physics-references §6a: "Results at T < 1 depend on how fast the gate is
+    removed"), the simulated curve is within RMS 0.034 of the table (2026-12-02). That
+    delay is a fitted diagnostic, not the target; guarded here at RMS <= 0.08, dT <= 0.35.
     """
     m = dam_break["metrics"]
     assert m["ritter_max_excess"] <= 1e-9
     assert m["outside_walls"] == 0
     assert m["front_rms_error"] <= 0.35
     assert len(m["front_at_table_T"]) == 15
+    assert m["diagnostic_rms_at_best_delay"] <= 0.08 and m["diagnostic_best_delay_T"] <= 0.35
