@@ -76,7 +76,9 @@ bincounts over pairs sorted by index), so the same input gives the same bits.
 
 import dataclasses
 import math
+import os
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -90,6 +92,23 @@ from .neighbours import SkinPairs
 KAPPA = "sph_kappa"
 KAPPA_V = "sph_kappa_v"
 PRESSURE = "sph_pressure"
+
+#: Threads for the solver's sparse products (scipy's sparse kernels release the GIL). Each
+#: product is computed whole by one thread and the results are summed in a fixed order, so
+#: the bits do not depend on the thread count. SPLASHDRAFT_THREADS overrides the default.
+SOLVER_THREADS = max(1, int(os.environ.get("SPLASHDRAFT_THREADS", min(4, os.cpu_count() or 1))))
+_pool = None
+
+
+def _products(pairs):
+    """[matrix @ vector for (matrix, vector) in pairs], on the solver's thread pool when it has one."""
+    global _pool
+    if SOLVER_THREADS <= 1 or len(pairs) < 2 or pairs[0][0].nnz < 20000:
+        return [matrix @ vector for matrix, vector in pairs]
+    if _pool is None:
+        _pool = ThreadPoolExecutor(max_workers=SOLVER_THREADS, thread_name_prefix="splashdraft-sph")
+    futures = [_pool.submit(matrix.__matmul__, vector) for matrix, vector in pairs]
+    return [future.result() for future in futures]
 
 
 @dataclass(frozen=True)
@@ -335,18 +354,20 @@ class PairOperators:
     def density_rate(self, velocities):
         """(D rho / Dt)_i = sum_j m (v_i - v_j).grad W_ij + sum_b Psi_b (v_i - v_b).grad W_ib, kg/(m^3 s)."""
         rate = np.einsum("ij,ij->i", velocities, self._rate_sum) - self.boundary_rate
+        columns = [np.ascontiguousarray(velocities[:, c]) for c in range(3)]
+        products = _products([(m, columns[c]) for c in range(3) for m in (self._upper[c], self._lower[c])])
         for c in range(3):
-            column = velocities[:, c]
-            rate -= self._upper[c] @ column
-            rate += self._lower[c] @ column
+            rate -= products[2 * c]
+            rate += products[2 * c + 1]
         return rate
 
     def pressure_term(self, k):
         """(N, 3) sum_j m (k_i + k_j) grad W_ij + k_i sum_b Psi_b grad W_ib, with k = kappa / rho."""
         out = self._accel_sum * k[:, None]
+        products = _products([(m, k) for c in range(3) for m in (self._upper[c], self._lower[c])])
         for c in range(3):
-            out[:, c] += self._upper[c] @ k
-            out[:, c] -= self._lower[c] @ k
+            out[:, c] += products[2 * c]
+            out[:, c] -= products[2 * c + 1]
         return out
 
     def xsph(self, velocities, epsilon, mass):
