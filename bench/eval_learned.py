@@ -1,6 +1,6 @@
 """Evaluate the shipped learned preview on the held-out shots and the demo shot (not a timed test).
 
-    python bench/eval_learned.py [--heldout data/heldout] [--model models/preview-gn1.onnx]
+    python bench/eval_learned.py [--heldout data/heldout] [--model models/preview-gn2.onnx]
                                  [--seconds 10] [--fidelity-seconds 2] [--demo-preset small|full|none]
 
 For each held-out shot (``python -m training.generate --heldout --duration 2``
@@ -63,7 +63,6 @@ def stability(cache_dir, seconds_total):
 
 def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity_seconds, log):
     from engine.learned import LearnedSolver
-    from engine import bake as bake_module
 
     scene = load_scene(scene_path)
     last = scene.frame_start + int(round(seconds * scene.fps))
@@ -73,17 +72,13 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
         import dataclasses
 
         scene = dataclasses.replace(scene, frame_end=last)
-    original = bake_module.make_solver
-    if model:
-        bake_module.make_solver = lambda solver_name, s: LearnedSolver(s, model=model) if solver_name == "learned" else original(solver_name, s)
+    solver = LearnedSolver(model=model) if model else None
     started = time.monotonic()
     try:
-        result = bake(scene, "learned", learned_dir, overwrite=True, use_signals=False)
+        result = bake(scene, "learned", learned_dir, overwrite=True, use_signals=False, solver=solver)
         error = None
     except SplashdraftError as exc:
         result, error = None, str(exc)
-    finally:
-        bake_module.make_solver = original
     learned_seconds = time.monotonic() - started
     row = {"shot": name, "learned_wall_seconds": round(learned_seconds, 1), "error": error}
     if result is not None:

@@ -43,7 +43,7 @@ from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
 PREVIOUS_VELOCITY = "learned_previous_velocity"
 
 #: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
-DEFAULT_MODEL_NAME = "preview-gn1"
+DEFAULT_MODEL_NAME = "preview-gn2"
 MODELS_DIR = Path(__file__).resolve().parents[2] / "models"
 
 
@@ -69,7 +69,7 @@ class LearnedSolver:
     Args:
         scene: accepted for the bake loop's uniform construction; unused.
         model: path of the .onnx model (its .json contract beside it); default
-            ``models/preview-gn1.onnx``.
+            ``models/preview-gn2.onnx``.
         threads: onnxruntime intra-op threads (2 measured best here).
         tile_particles: run the core in tiles of this many receivers above it.
 
@@ -86,8 +86,8 @@ class LearnedSolver:
             if not contract_beside.exists():
                 raise ModelError(
                     f"model file {self.model_path}: not found; the learned preview needs the shipped model "
-                    "(models/preview-gn1.onnx and .json) -- restore it from the repository, pass another model, "
-                    "or retrain with `python -m training.train` (see models/preview-gn1.md)"
+                    "(models/preview-gn2.onnx and .json) -- restore it from the repository, pass another model, "
+                    "or retrain with `python -m training.train` (see models/preview-gn2.md)"
                 )
         self.contract, self.onnx_path = load_contract(self.model_path)
         self.stats = self.contract["normalisation"]
