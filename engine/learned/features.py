@@ -258,20 +258,27 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
         mask = mask * (distances < radius)
         bmask = bmask * (bdist < radius)
 
-    offsets = x[index] - x[:, None, :]  # (N, K, 3)
+    # The (N, K, .) arrays are built in float32 (memory and time); positions are first taken
+    # relative to their centre so float32 keeps offsets to ~1e-6 d even in large scenes.
+    centre = x.mean(axis=0) if n else np.zeros(3)
+    x32 = (x - centre).astype(np.float32)
+    v32 = v.astype(np.float32)
+    inverse_radius = np.float32(1.0 / radius)
     edge = np.empty(index.shape + (EDGE_FEATURES,), np.float32)
-    edge[..., 0:3] = offsets / radius
+    np.subtract(x32[index], x32[:, None, :], out=edge[..., 0:3])
+    edge[..., 0:3] *= inverse_radius
     edge[..., 3] = np.where(mask > 0, distances, 0.0) / radius
-    edge[..., 4:7] = v[index] - v[:, None, :]
+    np.subtract(v32[index], v32[:, None, :], out=edge[..., 4:7])
     edge *= mask[..., None]
 
     bfeat = np.zeros(bindex.shape + (BOUNDARY_FEATURES,), np.float32)
     if len(bx):
-        boffsets = bx[bindex] - x[:, None, :]
-        bfeat[..., 0:3] = boffsets / radius
+        bx32 = (bx - centre).astype(np.float32)
+        np.subtract(bx32[bindex], x32[:, None, :], out=bfeat[..., 0:3])
+        bfeat[..., 0:3] *= inverse_radius
         bfeat[..., 3] = np.where(bmask > 0, bdist, 0.0) / radius
-        bfeat[..., 4:7] = bn[bindex]
-        bfeat[..., 7:10] = bv[bindex] - v[:, None, :]
+        bfeat[..., 4:7] = bn.astype(np.float32)[bindex]
+        np.subtract(bv.astype(np.float32)[bindex], v32[:, None, :], out=bfeat[..., 7:10])
         bfeat[..., 10] = bvol_pairs
         bfeat *= bmask[..., None]
 
@@ -284,7 +291,7 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
                  density_ratio=rho, truncated_rows=truncated)
 
 
-def normalise(graph, stats):
+def normalise(graph, stats, in_place=False):
     """Core inputs normalised with the contract's statistics: (value - mean) / std per feature column.
 
     Padding entries stay exactly zero (the mask multiplies them out), so the
@@ -294,12 +301,19 @@ def normalise(graph, stats):
         graph: Graph from ``build_graph``.
         stats: dict with ``node_mean``/``node_std`` (7,), ``edge_mean``/``edge_std`` (7,),
             ``boundary_mean``/``boundary_std`` (11,).
+        in_place: normalise the graph's float32 feature arrays in place (no copies; the
+            stepper uses this, the graph's features are not needed afterwards).
 
     Returns:
         dict of float32 / int64 arrays keyed by ONNX input name.
     """
     def scaled(values, mean, std, mask=None):
-        out = (values - np.asarray(mean, np.float32)) / np.asarray(std, np.float32)
+        if in_place and values.dtype == np.float32:
+            out = values
+            out -= np.asarray(mean, np.float32)
+        else:
+            out = values - np.asarray(mean, np.float32)
+        out /= np.asarray(std, np.float32)
         if mask is not None:
             out *= mask[..., None]
         return out.astype(np.float32, copy=False)

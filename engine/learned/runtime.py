@@ -22,8 +22,12 @@ import numpy as np
 from ..errors import ModelError
 from .contract import INPUT_SPECS, OUTPUT_SPECS, RETRAIN_HINT
 
-#: Receivers per tile; above this many particles the core runs in tiles.
-DEFAULT_TILE_PARTICLES = 25000
+#: Up to this many particles the core runs on the whole graph (fastest: no halo work).
+UNTILED_MAX_PARTICLES = 25000
+#: Receivers per tile above that. Smaller tiles cost more halo work but bound memory: at 100k
+#: particles, 12,500-receiver tiles peaked at 1.6 GB against 2.2 GB with 25,000 at the same
+#: speed (bench/bench_learned.py, 2026-12-02).
+DEFAULT_TILE_PARTICLES = 12500
 
 
 def make_session(onnx_path, threads=2):
@@ -108,12 +112,15 @@ class CoreRunner:
         rounds: message-passing rounds of the model (from the contract).
         threads: onnxruntime intra-op threads.
         tile_particles: receivers per tile; 0 disables tiling.
+        untiled_max: graphs up to this many particles run whole.
     """
 
-    def __init__(self, onnx_path, rounds, threads=2, tile_particles=DEFAULT_TILE_PARTICLES):
+    def __init__(self, onnx_path, rounds, threads=2, tile_particles=DEFAULT_TILE_PARTICLES,
+                 untiled_max=UNTILED_MAX_PARTICLES):
         self.onnx_path = onnx_path
         self.rounds = int(rounds)
         self.tile_particles = int(tile_particles)
+        self.untiled_max = max(int(untiled_max), self.tile_particles)
         self.session = make_session(onnx_path, threads)
 
     def warm_up(self, particles=2000, neighbours=30, boundary_neighbours=8, seed=0):
@@ -143,7 +150,7 @@ class CoreRunner:
         n = len(inputs["node_features"])
         if n == 0:
             return np.zeros((0, 3), np.float32)
-        if self.tile_particles <= 0 or n <= self.tile_particles:
+        if self.tile_particles <= 0 or n <= self.untiled_max:
             return self._run(inputs)
         order = morton_order(positions, cell) if positions is not None else np.arange(n)
         out = np.empty((n, 3), np.float32)

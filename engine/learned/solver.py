@@ -139,7 +139,7 @@ class LearnedSolver:
             state.positions, state.velocities, previous, boundary, units, c["radius_spacings"],
             c["density_support_spacings"], c["max_neighbours"], c["max_boundary_neighbours"], boundary_tree=tree,
         )  # fmt: skip
-        inputs = features.normalise(graph, self.stats)
+        inputs = features.normalise(graph, self.stats, in_place=True)
         output = self.runner.run(inputs, state.positions / units.spacing, 4.0)
         return features.acceleration_from_output(output, self.stats, units), graph
 
