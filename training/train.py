@@ -300,6 +300,12 @@ def main(argv=None):
     parser.add_argument("--minutes", type=float, help="Stop (and export) after this many minutes of training.")
     parser.add_argument("--latent", type=int, help=f"Latent width (default {DEFAULTS['latent']}).")
     parser.add_argument("--rounds", type=int, help=f"Message-passing rounds (default {DEFAULTS['rounds']}).")
+    parser.add_argument("--radius", dest="radius_spacings", type=float,
+                        help=f"Connectivity radius in spacings (default {DEFAULTS['radius_spacings']}).")
+    parser.add_argument("--density-support", dest="density_support_spacings", type=float,
+                        help=f"Support of the density feature in spacings (default {DEFAULTS['density_support_spacings']}).")
+    parser.add_argument("--max-neighbours", dest="max_neighbours", type=int,
+                        help=f"Fluid neighbours kept per particle (default {DEFAULTS['max_neighbours']}).")
     parser.add_argument("--noise", type=float, help=f"Velocity noise sigma in sqrt(g d) (default {DEFAULTS['noise']}).")
     parser.add_argument("--lr", type=float, help=f"Initial learning rate (default {DEFAULTS['lr']}).")
     parser.add_argument("--batch", type=int, help=f"Frames per iteration (default {DEFAULTS['batch']}).")
@@ -307,7 +313,8 @@ def main(argv=None):
     parser.add_argument("--checkpoint-every", type=int, help=f"Iterations between checkpoints (default {DEFAULTS['checkpoint_every']}).")
     parser.add_argument("--export", dest="export_to", help="Also copy the model + contract to this path stem, e.g. models/preview-gn2.")
     args = parser.parse_args(argv)
-    overrides = {k: getattr(args, k) for k in ("iterations", "latent", "rounds", "noise", "lr", "batch", "seed")}
+    overrides = {k: getattr(args, k) for k in ("iterations", "latent", "rounds", "noise", "lr", "batch", "seed",
+                                               "radius_spacings", "density_support_spacings", "max_neighbours")}
     overrides["checkpoint_every"] = args.checkpoint_every
     overrides["validate_every"] = args.checkpoint_every
     try:
