@@ -9,7 +9,8 @@ Rendering: a Geometry Nodes modifier turns the vertices into spheres
 (Mesh to Points, radius = point size x spacing) and sets a material coloured by
 speed; an optional second modifier meshes a surface (points -> volume -> mesh).
 
-Two ways to play back (the shot's ``playback`` setting):
+Two ways to play back (the shot's ``playback`` setting; ``AUTO``, the default, picks
+``NODES`` where Blender has the file-import nodes and ``REFILL`` elsewhere):
 
 - ``REFILL`` (any Blender): a persistent frame-change handler rewrites the
   mesh. Renders run it too, so the add-on must be installed where you render.
@@ -152,8 +153,8 @@ def frame_arrays(folder, frame):
 
 
 def reads_in_nodes(scene):
-    """True when the shot plays back through the file-reader node tree (NODES mode, Blender 5.0+)."""
-    return scene.splashdraft.playback == "NODES" and reader_nodes_available()
+    """True when the shot plays back through the file-reader node tree (NODES, or AUTO on Blender 5.0+)."""
+    return scene.splashdraft.playback in ("NODES", "AUTO") and reader_nodes_available()
 
 
 def reader_nodes_available():

@@ -345,7 +345,8 @@ def export_liquid(scene, filepath, file_format):
     pass_through.node_group = display.pass_through_group()
     try:
         for modifier in obj.modifiers:
-            if modifier is not pass_through:
+            # The file reader (NODES playback) makes the points: it stays on.
+            if modifier is not pass_through and modifier.name != display.READER_MODIFIER:
                 modifier.show_viewport = modifier.show_render = False
         for other in selection:
             other.select_set(False)

@@ -128,13 +128,16 @@ class SPLASHDRAFT_PG_shot(bpy.types.PropertyGroup):
         default=0.5, min=0.05, max=2.0, update=_redraw_display)
     playback: EnumProperty(
         name="Playback", description="How the liquid object gets each frame of the bake",
-        items=(("REFILL", "Add-on refills the mesh",
+        items=(("AUTO", "Automatic",
+                "Nodes read the files where Blender has the file-import nodes (5.0 and newer), "
+                "otherwise the add-on refills the mesh"),
+               ("REFILL", "Add-on refills the mesh",
                 "The add-on rewrites the points mesh on every frame change; works in every Blender version, "
                 "and renders need the add-on installed"),
                ("NODES", "Nodes read the files",
                 "A Geometry Nodes modifier reads each frame's file itself (Blender 5.0 and newer); "
                 "renders run no Python and need no add-on, only the cache folder at the same path")),
-        default="REFILL", update=_redraw_display)
+        default="AUTO", update=_redraw_display)
     use_surface: BoolProperty(
         name="Surface preview", description="Show a meshed liquid surface built from the points instead of spheres",
         default=False, update=_redraw_display)

@@ -129,8 +129,7 @@ class SPLASHDRAFT_PT_versions(_SidebarPanel, bpy.types.Panel):
         layout.operator("splashdraft.add_liquid_object", icon="OUTLINER_OB_POINTCLOUD")
         layout.prop(shot, "point_size")
         layout.prop(shot, "use_surface")
-        if display.reader_nodes_available():
-            layout.prop(shot, "playback")
+        layout.prop(shot, "playback")
         warnings = display.reported_warnings()
         if warnings:
             layout.label(text=warnings[-1], icon="ERROR")

@@ -39,11 +39,13 @@ def child_swap(points, repeats):
     scene = bpy.context.scene
     folder = Path(tempfile.mkdtemp(prefix="splashdraft_bench_")) / "bench" / "v001_sph"
     header = {"scene_name": "bench", "scene_hash": "bench", "solver": {"name": "sph", "settings": {}}, "fps": 24,
-              "frame_start": 1, "frame_end": 3, "particle_spacing": 0.01, "rest_density": 1000.0}
+              "frame_start": 1, "frame_end": 3 + repeats, "particle_spacing": 0.01, "rest_density": 1000.0}
     writer = cache.CacheWriter(folder, header)
     rng = np.random.default_rng(0)
     frames = {}
-    for frame in (1, 2, 3):
+    # Frames 1-3 for the refill timings; 4 onwards are each shown once by the NODES timing, so the
+    # import node cannot answer from its cache of an earlier visit.
+    for frame in range(1, 4 + repeats):
         arrays = {"positions": rng.random((points, 3)), "velocities": rng.normal(size=(points, 3)),
                   "ids": np.arange(points), "density": np.full(points, 1000.0), "pressure": rng.random(points)}
         writer.write_frame(frame, arrays, time=frame / 24, substeps=4, seconds=0.0)
@@ -52,6 +54,7 @@ def child_swap(points, repeats):
         frames[frame] = reader.read_frame(frame)
     scene.splashdraft.cache_dir = str(folder.parents[1])
     scene.splashdraft.shot_name = "bench"
+    scene.splashdraft.playback = "REFILL"
     bpy.ops.splashdraft.add_liquid_object()
     obj = scene.splashdraft.display_object
     mesh = obj.data
@@ -68,9 +71,25 @@ def child_swap(points, repeats):
     read_write = best(lambda i: display.show_frame(scene, 1 + i % 3, force=True))
     read_only = best(lambda i: reader.read_frame(1 + i % 3))
     frame_set = best(lambda i: scene.frame_set(1 + i % 3))
-    return {"points": points, "repeats": repeats,
+    shown = len(obj.data.vertices)
+    nodes = None
+    if display.reader_nodes_available():
+        scene.splashdraft.playback = "NODES"
+        display.refresh(scene)
+        obj.modifiers[display.POINTS_MODIFIER].show_viewport = False  # count the reader's mesh
+
+        def show_in_nodes(i):
+            scene.frame_set(4 + i)
+            evaluated = obj.evaluated_get(bpy.context.evaluated_depsgraph_get())
+            count = len(evaluated.to_mesh().vertices)
+            evaluated.to_mesh_clear()
+            if count != points:
+                raise RuntimeError(f"NODES playback showed {count} points, expected {points}")
+
+        nodes = best(show_in_nodes)
+    return {"points": points, "repeats": repeats, "nodes_frame_set_ms": nodes,
             "write_points_ms": write, "read_and_show_ms": read_write, "read_frame_ms": read_only,
-            "frame_set_with_spheres_ms": frame_set, "shown": len(obj.data.vertices),
+            "frame_set_with_spheres_ms": frame_set, "shown": shown,
             "blender": bpy.app.version_string}
 
 
@@ -110,6 +129,8 @@ def main(argv=None):
         ("  of which read_frame", swap["read_frame_ms"], "ms", None),
         ("scene.frame_set incl. handler + sphere modifier", swap["frame_set_with_spheres_ms"], "ms", None),
     ]
+    if swap["nodes_frame_set_ms"] is not None:
+        rows.append(("NODES playback: frame_set + Import PLY (new frame)", swap["nodes_frame_set_ms"], "ms", TARGETS["swap_ms"]))
     print(f"Splashdraft add-on benchmark, Blender {swap['blender']}, {args.points:,} points, "
           f"best/median of {args.repeats}")
     print(f"{'step':52s} {'best':>9s} {'median':>9s}  target")

@@ -137,14 +137,17 @@ def test_shot_exports_bakes_plays_back_renders_swaps_and_exports(tmp_path):
 
 
 def test_nodes_playback_reads_the_cache_without_python(tmp_path):
-    """Blender 5.0+: the file-reader modifier alone (all frame handlers removed) shows every frame
-    as the PLY holds it, scaled to scene units, and renders; outside the bake it shows nothing;
-    switching back to REFILL removes the modifier and refills the mesh."""
+    """Blender 5.0+: AUTO playback picks the file reader; the modifier alone (all frame handlers
+    removed) shows every frame as the PLY holds it, scaled to scene units, renders and exports to
+    Alembic with the cache's counts; outside the bake it shows nothing; switching to REFILL removes
+    the modifier and refills the mesh."""
     result, output = blender_env.run_child(HERE, "child_nodes_playback", tmp_path, timeout=600)
     if not result["available"]:
         pytest.skip(f"Blender {result['version']} has no PLY import node (5.0 and newer)")
     assert result["operator"] == ["FINISHED"], output[-4000:]
+    assert result["auto"] == {"setting": "AUTO", "reads_in_nodes": True}, result["auto"]
     assert result["modifiers_nodes"][0] == "Splashdraft file reader"
+    assert result["alembic"]["counts"] == result["alembic"]["expected"], result["alembic"]
     for frame in result["frames"]:
         assert frame["base_vertices"] == 0, frame
         if frame["frame"] == 6:
@@ -406,6 +409,7 @@ def child_shot(tmp):
     export_module = sys.modules[module + ".addon.export"]
     display = sys.modules[module + ".addon.display"]
     build_shot(scene, tmp / "cache")
+    scene.splashdraft.playback = "REFILL"  # this child checks the mesh the add-on writes; NODES has its own
     out = {}
 
     # Export, checked against closed forms.
@@ -565,7 +569,8 @@ def child_shot(tmp):
 
 
 def child_nodes_playback(tmp):
-    """NODES playback with every frame handler removed: the modifier alone must show each frame."""
+    """AUTO playback (the default) on 5.0+ is NODES; with every frame handler removed the modifier
+    alone must show each frame, render and export."""
     import bpy
 
     tmp = Path(tmp)
@@ -580,7 +585,8 @@ def child_nodes_playback(tmp):
     obj = shot.display_object
     folder = Path(shot.versions[0].folder)
     scene.unit_settings.scale_length = 0.5  # 1 BU = 0.5 m: positions and velocities in BU are twice the metres
-    shot.playback = "NODES"
+    display.refresh(scene)
+    auto = {"setting": shot.playback, "reads_in_nodes": display.reads_in_nodes(scene)}  # AUTO by default
     modifiers = [m.name for m in obj.modifiers]
     bpy.app.handlers.frame_change_pre.clear()
     bpy.app.handlers.frame_change_post.clear()
@@ -619,11 +625,20 @@ def child_nodes_playback(tmp):
     display.refresh(scene)
     scene.frame_set(3)
     render = render_png(scene, tmp / "nodes_frame3.png")
+    path = tmp / "nodes.abc"
+    bpy.ops.splashdraft.export_liquid(file_format="ALEMBIC", filepath=str(path))
+    before = set(bpy.data.objects)
+    bpy.ops.wm.alembic_import(filepath=str(path))
+    imported = [o for o in bpy.data.objects if o not in before and o.type == "MESH"]
+    alembic = {"counts": [evaluated_count(imported[0], scene, f) for f in range(1, 5)] if imported else [],
+               "expected": [int(len(parse_ply(folder / f"points_{f:04d}.ply"))) for f in range(1, 5)]}
+    for o in imported:
+        bpy.data.objects.remove(o)
     shot.playback = "REFILL"
     scene.frame_set(2)
     back = {"modifiers": [m.name for m in obj.modifiers], "vertices": len(obj.data.vertices)}
     return {"available": True, "operator": sorted(result), "frames": frames, "render": render,
-            "modifiers_nodes": modifiers, "back": back}
+            "modifiers_nodes": modifiers, "back": back, "auto": auto, "alembic": alembic}
 
 
 if __name__ == "__main__":
