@@ -96,7 +96,12 @@ PRESSURE = "sph_pressure"
 #: Threads for the solver's sparse products (scipy's sparse kernels release the GIL). Each
 #: product is computed whole by one thread and the results are summed in a fixed order, so
 #: the bits do not depend on the thread count. SPLASHDRAFT_THREADS overrides the default.
-SOLVER_THREADS = max(1, int(os.environ.get("SPLASHDRAFT_THREADS", min(4, os.cpu_count() or 1))))
+def _thread_count(default=min(4, os.cpu_count() or 1)):
+    text = os.environ.get("SPLASHDRAFT_THREADS", "")
+    return max(1, int(text)) if text.strip().isdigit() else default
+
+
+SOLVER_THREADS = _thread_count()
 _pool = None
 
 
