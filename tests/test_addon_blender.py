@@ -148,6 +148,8 @@ def test_nodes_playback_reads_the_cache_without_python(tmp_path):
     assert result["auto"] == {"setting": "AUTO", "reads_in_nodes": True}, result["auto"]
     assert result["modifiers_nodes"][0] == "Splashdraft file reader"
     assert result["alembic"]["counts"] == result["alembic"]["expected"], result["alembic"]
+    swap = result["swap"]
+    assert swap["shown"] == swap["cache"] and swap["cache"][0] != swap["cache"][1], swap
     for frame in result["frames"]:
         assert frame["base_vertices"] == 0, frame
         if frame["frame"] == 6:
@@ -634,11 +636,27 @@ def child_nodes_playback(tmp):
                "expected": [int(len(parse_ply(folder / f"points_{f:04d}.ply"))) for f in range(1, 5)]}
     for o in imported:
         bpy.data.objects.remove(o)
+    # Swap versions under AUTO: a second bake with a finer spacing, then back and forth at frame 2.
+    shot.particle_spacing = 0.04
+    scene.frame_end = 2
+    bpy.ops.splashdraft.bake()
+    scene.frame_end = 4
+    swap = {}
+    for index in (1, 0, 1):
+        shot.versions_index = index
+        spheres.show_viewport = False  # the switch re-applies the display settings
+        scene.frame_set(2)
+        evaluated = obj.evaluated_get(bpy.context.evaluated_depsgraph_get())
+        swap.setdefault("shown", []).append(len(evaluated.to_mesh().vertices))
+        evaluated.to_mesh_clear()
+    swap["cache"] = [int(len(parse_ply(Path(shot.versions[i].folder) / "points_0002.ply"))) for i in (1, 0, 1)]
+    spheres.show_viewport = True
+    shot.versions_index = 0
     shot.playback = "REFILL"
     scene.frame_set(2)
     back = {"modifiers": [m.name for m in obj.modifiers], "vertices": len(obj.data.vertices)}
     return {"available": True, "operator": sorted(result), "frames": frames, "render": render,
-            "modifiers_nodes": modifiers, "back": back, "auto": auto, "alembic": alembic}
+            "modifiers_nodes": modifiers, "back": back, "auto": auto, "alembic": alembic, "swap": swap}
 
 
 if __name__ == "__main__":
