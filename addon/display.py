@@ -30,7 +30,7 @@ from pathlib import Path
 import bpy
 import numpy as np
 
-from ..engine.cache import open_cache
+from ..engine.cache import FRAME_FILE_PATTERN, open_cache
 from ..engine.errors import CacheError
 
 POINTS_GROUP = "Splashdraft points"
@@ -319,7 +319,7 @@ def reader_group():
     """Scene frame -> file name -> Import PLY -> metres to scene units -> velocity/speed/id attributes.
 
     Inputs: ``Path Pattern`` (a Python-style format string with ``{frame}``, e.g.
-    ``/cache/v001_sph/points_{frame:0>4}.ply``) and ``Scale`` (Blender units per metre).
+    ``/cache/v001_sph/points_{frame:04d}.ply``) and ``Scale`` (Blender units per metre).
     The PLY's own properties (vx, vy, vz, id, density, pressure) arrive as float point
     attributes; density and pressure keep their names.
     """
@@ -376,11 +376,8 @@ def reader_group():
 
 def path_pattern(folder):
     """The reader's format string for the frames of ``folder`` (braces in the path escaped)."""
-    from ..engine.cache import frame_file_name
-
-    stem = frame_file_name(0).split("_")[0]  # "points"
     escaped = str(Path(bpy.path.abspath(folder)).resolve()).replace("{", "{{").replace("}", "}}")
-    return f"{escaped}/{stem}_{{frame:0>4}}.ply"
+    return f"{escaped}/{FRAME_FILE_PATTERN}"
 
 
 def _apply_reader(scene, obj):

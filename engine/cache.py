@@ -65,9 +65,13 @@ _MAX_HEADER_BYTES = 64 * 1024
 _INT32_MAX = np.iinfo(np.int32).max
 
 
+#: Name of a frame file as a Python format string (also read by Blender's Format String node).
+FRAME_FILE_PATTERN = "points_{frame:04d}.ply"
+
+
 def frame_file_name(frame):
     """``points_0001.ply`` style name of a frame file (4+ digits, zero padded)."""
-    return f"points_{int(frame):04d}.ply"
+    return FRAME_FILE_PATTERN.format(frame=int(frame))
 
 
 def ply_header(count):
