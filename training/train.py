@@ -157,7 +157,8 @@ def train(data, out, resume=False, overrides=None, minutes=None, export_to=None,
     config["shots"] = [s.name for s in shots]
     if resume and config_path.exists():
         previous = json.loads(config_path.read_text())
-        for key in ("latent", "rounds", "radius_spacings", "seed", "step_froude", "shots"):
+        for key in ("latent", "rounds", "radius_spacings", "density_support_spacings", "max_neighbours", "seed",
+                    "step_froude", "shots"):
             if previous.get(key) != config.get(key):
                 raise SplashdraftError(
                     f"{config_path}: --resume with a different {key} ({previous.get(key)!r} -> {config.get(key)!r}); "
