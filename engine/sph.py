@@ -356,9 +356,15 @@ class PairOperators:
         self._rate_sum = total  # multiplies v_i in D rho / Dt
         self._accel_sum = total  # boundary term k_i Psi_b grad W_ib: p_i / rho_i^2 only
 
-    def density_rate(self, velocities):
-        """(D rho / Dt)_i = sum_j m (v_i - v_j).grad W_ij + sum_b Psi_b (v_i - v_b).grad W_ib, kg/(m^3 s)."""
-        rate = np.einsum("ij,ij->i", velocities, self._rate_sum) - self.boundary_rate
+    def density_rate(self, velocities, use_boundary_motion=True):
+        """(D rho / Dt)_i = sum_j m (v_i - v_j).grad W_ij + sum_b Psi_b (v_i - v_b).grad W_ib, kg/(m^3 s).
+
+        With ``use_boundary_motion=False`` the v_b term is left out: the linear part
+        only, for the change of the rate caused by a change of the fluid velocities.
+        """
+        rate = np.einsum("ij,ij->i", velocities, self._rate_sum)
+        if use_boundary_motion:
+            rate -= self.boundary_rate
         columns = [np.ascontiguousarray(velocities[:, c]) for c in range(3)]
         products = _products([(m, columns[c]) for c in range(3) for m in (self._upper[c], self._lower[c])])
         for c in range(3):
@@ -451,26 +457,68 @@ def _divergence_solve(ops, velocities, kappa_v, params, dt):
 
 
 def _pressure_solve(ops, velocities, kappa, params, dt):
-    """Constant-density solve (SCA 2015, Alg. 3); kappa in m^2/s^2 (= p / rho)."""
+    """Constant-density solve (SCA 2015, Alg. 3) by preconditioned conjugate gradients.
+
+    kappa in m^2/s^2 (= p / rho). The velocity change dv = -dt P(dk / rho) of a
+    kappa change dk changes the predicted density by -A dk with
+    A dk = dt^2 (D rho / Dt)(P(dk / rho)) (linear part of the rate); A is symmetric
+    positive semi-definite (the boundary pressure term is the transpose of the
+    boundary rate term, module docstring). On the set S of compressed particles
+    the solve drives rho*_i - rho0 to zero with conjugate gradients
+    (Hestenes & Stiefel 1952, J. Res. Natl. Bur. Stand. 49(6):409-436; Jacobi
+    preconditioner alpha_i / dt^2, the DFSPH factor being 1 / A_ii). Particles
+    outside S get no pressure change, so free surfaces do not pull. When the
+    residual on S is small next to the compression outside it, CG restarts on S
+    plus the newly compressed particles. Stopping rule and iteration count as in
+    the Jacobi form (one iteration = one pressure product + one rate product).
+    Equality on S can leave a few particles with a slightly negative kappa; the
+    kappa returned (warm start, pressure output) is clipped at 0.
+    """
     rho0 = params.rest_density
     alpha, density = ops.alpha, ops.density
     kappa = WARM_START_FACTOR * kappa
     if np.any(kappa):
         velocities = velocities - dt * ops.pressure_term(kappa / density)
+    predicted = density + dt * ops.density_rate(velocities)
+    preconditioner = alpha / (dt * dt)
+    active = np.zeros(len(predicted), bool)
+    is_restart = True
     iterations = 0
-    inv_dt2 = 1.0 / (dt * dt)
     while True:
-        predicted = density + dt * ops.density_rate(velocities)
-        compression = np.maximum(predicted - rho0, 0.0) / rho0
+        excess = predicted - rho0
+        compression = np.maximum(excess, 0.0) / rho0
         error = float(np.mean(compression))
         if (iterations >= 2 and error <= params.density_tolerance) or iterations >= params.max_iterations:
             break
-        change = alpha * np.maximum(predicted - rho0, 0.0) * inv_dt2
-        kappa = kappa + change
-        velocities = velocities - dt * ops.pressure_term(change / density)
+        if is_restart:
+            active |= excess > 0.0
+            residual = np.where(active, excess, 0.0)
+            search = preconditioner * residual
+            rz = float(residual @ search)
+            if rz <= 0.0:
+                break  # the compressed particles have no neighbours to push (alpha = 0)
+            is_restart = False
+        push = ops.pressure_term(search / density)
+        change = (dt * dt) * ops.density_rate(push, use_boundary_motion=False)
+        curvature = float(search @ change)
         iterations += 1
+        if curvature <= 0.0:
+            break  # round-off has exhausted the search direction
+        step = rz / curvature
+        kappa = kappa + step * search
+        velocities = velocities - (step * dt) * push
+        predicted = predicted - step * change
+        residual -= step * np.where(active, change, 0.0)
+        outside = float(np.sum(np.maximum(predicted - rho0, 0.0), where=~active)) / len(predicted)
+        if float(np.mean(np.abs(residual))) < 0.5 * outside:
+            is_restart = True
+            continue
+        z = preconditioner * residual
+        rz_next = float(residual @ z)
+        search = z + (rz_next / rz) * search
+        rz = rz_next
     worst = float(np.max(compression))
-    return velocities, kappa, iterations, error, worst
+    return velocities, np.maximum(kappa, 0.0), iterations, error, worst
 
 
 def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, pairs=None):
