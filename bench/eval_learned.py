@@ -2,6 +2,7 @@
 
     python bench/eval_learned.py [--heldout data/heldout] [--model models/preview-gn2.onnx]
                                  [--seconds 10] [--fidelity-seconds 2] [--demo-preset small|full|none]
+                                 [--relax-iterations N] [--shots ring stairs ...]
 
 For each held-out shot (``python -m training.generate --heldout --duration 2``
 bakes their reference) and the demo shot:
@@ -61,7 +62,7 @@ def stability(cache_dir, seconds_total):
     }
 
 
-def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity_seconds, log):
+def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity_seconds, log, relax_iterations=None):
     from engine.learned import LearnedSolver
 
     scene = load_scene(scene_path)
@@ -72,7 +73,8 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
         import dataclasses
 
         scene = dataclasses.replace(scene, frame_end=last)
-    solver = LearnedSolver(model=model) if model else None
+    options = {} if relax_iterations is None else {"relax_iterations": relax_iterations}
+    solver = LearnedSolver(model=model, **options) if model or options else None
     started = time.monotonic()
     try:
         result = bake(scene, "learned", learned_dir, overwrite=True, use_signals=False, solver=solver)
@@ -80,7 +82,8 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
     except SplashdraftError as exc:
         result, error = None, str(exc)
     learned_seconds = time.monotonic() - started
-    row = {"shot": name, "learned_wall_seconds": round(learned_seconds, 1), "error": error}
+    row = {"shot": name, "learned_wall_seconds": round(learned_seconds, 1), "error": error,
+           "relax_iterations": (solver.relax_iterations if solver is not None else None)}
     if result is not None:
         row.update(stability(learned_dir, seconds))
     try:
@@ -119,6 +122,10 @@ def main(argv=None):
     parser.add_argument("--fidelity-seconds", type=float, default=2.0, help="Fidelity window in seconds (2).")
     parser.add_argument("--demo-preset", default="small", choices=("small", "full", "none"),
                         help="Demo shot preset to evaluate as well (default small; full is 25k particles).")
+    parser.add_argument("--relax-iterations", type=int, default=None,
+                        help="Density relaxation iterations per learned step (default: the solver's default).")
+    parser.add_argument("--shots", nargs="*", default=None,
+                        help="Only these held-out shots (names contain the word, e.g. stairs); default all.")
     parser.add_argument("--out", default=str(ROOT / "bench" / "results" / "eval"))
     args = parser.parse_args(argv)
     out = Path(args.out)
@@ -127,8 +134,10 @@ def main(argv=None):
     rows = []
     manifest = json.loads((Path(args.heldout) / "data_manifest.json").read_text())
     for shot in manifest["shots"]:
+        if args.shots is not None and not any(word in shot["name"] for word in args.shots):
+            continue
         rows.append(evaluate_shot(shot["name"], Path(args.heldout) / shot["scene"], Path(args.heldout) / shot["cache"],
-                                  out, args.model, args.seconds, args.fidelity_seconds, log))
+                                  out, args.model, args.seconds, args.fidelity_seconds, log, args.relax_iterations))
     if args.demo_preset != "none":
         from engine.demo import write_demo_scene
 
@@ -148,7 +157,7 @@ def main(argv=None):
         except SplashdraftError as exc:
             log(f"demo reference bake failed: {exc}")
         rows.append(evaluate_shot(f"demo_{args.demo_preset}", scene_path, reference_dir, out, args.model,
-                                  args.seconds, args.fidelity_seconds, log))
+                                  args.seconds, args.fidelity_seconds, log, args.relax_iterations))
     head = f"{'shot':<18} {'CD mean [d]':>11} {'CD max [d]':>10} {'rho 3%':>7} {'inside':>6} {'10 s ok':>7} {'KE end/1s':>9} {'n0->n':>13}"
     print(head)
     for r in rows:
@@ -159,6 +168,7 @@ def main(argv=None):
               f"{str(r.get('particles_first')) + '->' + str(r.get('particles_last')):>13}")
     results = ROOT / "bench" / "results"
     results.mkdir(parents=True, exist_ok=True)
+    (out / "eval_learned.json").write_text(json.dumps({"rows": rows, "args": vars(args)}, indent=1) + "\n")
     (results / "eval_learned.json").write_text(json.dumps({"rows": rows, "args": vars(args)}, indent=1) + "\n")
     return 0
 

@@ -135,16 +135,20 @@ def fluid_neighbour_table(positions, radius, max_neighbours=48, first_guess=40, 
     valid = (index < n) & (index != rows)
     if index.shape[1] == max_neighbours + 1:
         truncated = int(np.count_nonzero(valid.sum(axis=1) >= max_neighbours))
-    # Drop self (normally column 0) by sorting valid entries to the front, then trim the width.
-    order = np.argsort(~valid, axis=1, kind="stable")
-    index = np.take_along_axis(index, order, axis=1)
-    distances = np.take_along_axis(distances, order, axis=1)
-    valid = np.take_along_axis(valid, order, axis=1)
+    # Drop self. The k-NN rows are sorted by distance with padding last, so self is column 0
+    # unless a duplicate point shares distance 0 with it: then sort valid entries to the front.
+    if index.shape[1] > 1 and np.array_equal(index[:, 0], rows[:, 0]):
+        index, distances, valid = index[:, 1:], distances[:, 1:], valid[:, 1:]
+    else:
+        order = np.argsort(~valid, axis=1, kind="stable")
+        index = np.take_along_axis(index, order, axis=1)
+        distances = np.take_along_axis(distances, order, axis=1)
+        valid = np.take_along_axis(valid, order, axis=1)
     width = max(int(valid.sum(axis=1).max()), 1)
     index, distances, valid = index[:, :width], distances[:, :width], valid[:, :width]
     index = np.where(valid, index, rows)
     distances = np.where(valid, distances, np.inf)
-    return index.astype(np.int64), valid.astype(np.float32), distances, truncated
+    return index.astype(np.int64, copy=False), valid.astype(np.float32), distances, truncated
 
 
 def boundary_neighbour_table(positions, boundary_positions, radius, max_neighbours=32, workers=2, tree=None):
@@ -185,10 +189,19 @@ def density_ratio(fluid_distances, fluid_mask, boundary_distances, boundary_mask
         (N,) float64.
     """
     w0 = float(kernel(0.0, support))
-    fluid = (kernel(np.where(fluid_mask > 0, fluid_distances, support), support) * fluid_mask).sum(axis=1)
-    wall = (kernel(np.where(boundary_mask > 0, boundary_distances, support), support)
-            * boundary_mask * boundary_volumes_per_d3).sum(axis=1)
+    fluid = _masked_kernel_sum(fluid_distances, fluid_mask, support)
+    wall = _masked_kernel_sum(boundary_distances, boundary_mask, support, boundary_volumes_per_d3)
     return w0 + fluid + wall
+
+
+def _masked_kernel_sum(distances, mask, support, weights=None):
+    """Row sums of mask * weights * W(distances), evaluating W on the real entries only."""
+    real = np.asarray(mask) > 0
+    values = kernel(np.asarray(distances)[real], support)
+    if weights is not None:
+        values = values * np.asarray(weights)[real]
+    rows = np.broadcast_to(np.arange(len(real))[:, None], real.shape)[real]
+    return np.bincount(rows, values, minlength=len(real))
 
 
 class Graph:
@@ -198,11 +211,12 @@ class Graph:
     unless noted:
         node_features (N, 7), neighbour_index (N, K) int64, neighbour_mask (N, K),
         edge_features (N, K, 7), boundary_features (N, Kb, 11), boundary_mask (N, Kb),
+        boundary_index (N, Kb) int64 (rows of the boundary arrays; padding 0),
         density_ratio (N,) float64, truncated_rows int.
     """
 
     __slots__ = ("node_features", "neighbour_index", "neighbour_mask", "edge_features",
-                 "boundary_features", "boundary_mask", "density_ratio", "truncated_rows")
+                 "boundary_features", "boundary_mask", "boundary_index", "density_ratio", "truncated_rows")
 
     def __init__(self, **values):
         for name in self.__slots__:
@@ -254,7 +268,8 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
     bindex, bmask, bdist = boundary_neighbour_table(x, bx, search, max_boundary_neighbours, tree=boundary_tree)
     bvol_pairs = bvol[bindex] if len(bvol) else np.zeros(bindex.shape)
     rho = density_ratio(distances, mask, bdist, bmask, bvol_pairs, float(density_support_spacings))
-    if search > radius:  # the density used a wider search; the graph keeps only r < R
+    is_wider_search = search > radius
+    if is_wider_search:  # the density used a wider search; the graph keeps only r < R
         mask = mask * (distances < radius)
         bmask = bmask * (bdist < radius)
 
@@ -264,23 +279,32 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
     x32 = (x - centre).astype(np.float32)
     v32 = v.astype(np.float32)
     inverse_radius = np.float32(1.0 / radius)
+    # Padding entries point at the particle itself, so their offsets are already zero; only
+    # the distance column (inf there) and a wider density search need the mask.
     edge = np.empty(index.shape + (EDGE_FEATURES,), np.float32)
-    np.subtract(x32[index], x32[:, None, :], out=edge[..., 0:3])
+    np.subtract(np.take(x32, index, axis=0), x32[:, None, :], out=edge[..., 0:3])
     edge[..., 0:3] *= inverse_radius
-    edge[..., 3] = np.where(mask > 0, distances, 0.0) / radius
-    np.subtract(v32[index], v32[:, None, :], out=edge[..., 4:7])
-    edge *= mask[..., None]
+    edge[..., 3] = np.where(mask > 0, distances * (1.0 / radius), 0.0)
+    np.subtract(np.take(v32, index, axis=0), v32[:, None, :], out=edge[..., 4:7])
+    if is_wider_search:
+        edge *= mask[..., None]
 
+    # Most particles have no boundary neighbour (valid entries come first in each row);
+    # only rows that have one are filled.
     bfeat = np.zeros(bindex.shape + (BOUNDARY_FEATURES,), np.float32)
-    if len(bx):
+    near = np.flatnonzero(bmask[:, 0] > 0) if len(bx) else np.zeros(0, np.int64)
+    if len(near):
+        bi, bm = bindex[near], bmask[near]
+        part = np.empty(bi.shape + (BOUNDARY_FEATURES,), np.float32)
         bx32 = (bx - centre).astype(np.float32)
-        np.subtract(bx32[bindex], x32[:, None, :], out=bfeat[..., 0:3])
-        bfeat[..., 0:3] *= inverse_radius
-        bfeat[..., 3] = np.where(bmask > 0, bdist, 0.0) / radius
-        bfeat[..., 4:7] = bn.astype(np.float32)[bindex]
-        np.subtract(bv.astype(np.float32)[bindex], v32[:, None, :], out=bfeat[..., 7:10])
-        bfeat[..., 10] = bvol_pairs
-        bfeat *= bmask[..., None]
+        np.subtract(np.take(bx32, bi, axis=0), x32[near, None, :], out=part[..., 0:3])
+        part[..., 0:3] *= inverse_radius
+        part[..., 3] = np.where(bm > 0, bdist[near] * (1.0 / radius), 0.0)
+        part[..., 4:7] = np.take(bn.astype(np.float32), bi, axis=0)
+        np.subtract(np.take(bv.astype(np.float32), bi, axis=0), v32[near, None, :], out=part[..., 7:10])
+        part[..., 10] = bvol_pairs[near]
+        part *= bm[..., None]
+        bfeat[near] = part
 
     node = np.empty((n, NODE_FEATURES), np.float32)
     node[:, 0:3] = v
@@ -288,7 +312,7 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
     node[:, 6] = rho - 1.0
     return Graph(node_features=node, neighbour_index=index, neighbour_mask=mask.astype(np.float32),
                  edge_features=edge, boundary_features=bfeat, boundary_mask=bmask.astype(np.float32),
-                 density_ratio=rho, truncated_rows=truncated)
+                 boundary_index=bindex, density_ratio=rho, truncated_rows=truncated)
 
 
 def normalise(graph, stats, in_place=False):

@@ -8,7 +8,12 @@ Each learned step of (about) the model's fixed Froude duration:
 3. the ONNX core on onnxruntime (``runtime.CoreRunner``, tiled above
    ``tile_particles``) predicts the non-gravity acceleration;
 4. semi-implicit Euler (``features.integrate``);
-5. the hard constraints (``World.enforce_bounds``: open faces remove particles,
+5. density relaxation (``relax.relax_density``): ``relax_iterations`` Jacobi
+   iterations of a position-based density constraint on the step's own
+   neighbour tables (found at the start of the step, distances recomputed);
+   velocities take the same correction over dt, so x_{t+1} = x_t + dt v_{t+1}
+   still holds as in training;
+6. the hard constraints (``World.enforce_bounds``: open faces remove particles,
    walls clamp, colliders push out), then stream emission over [t, t + dt)
    (``World.emit``), exactly as the reference solver does.
 
@@ -38,9 +43,13 @@ from scipy.spatial import cKDTree
 from ..errors import ModelError, SolverError
 from . import features
 from .contract import load_contract
+from .relax import relax_density
 from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
 
 PREVIOUS_VELOCITY = "learned_previous_velocity"
+
+#: Density relaxation iterations after each learned step (bench/eval_learned.py, model card).
+DEFAULT_RELAX_ITERATIONS = 2
 
 #: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
 DEFAULT_MODEL_NAME = "preview-gn2"
@@ -72,6 +81,7 @@ class LearnedSolver:
             ``models/preview-gn2.onnx``.
         threads: onnxruntime intra-op threads (2 measured best here).
         tile_particles: run the core in tiles of this many receivers above it.
+        relax_iterations: density relaxation iterations after each learned step (0: none).
 
     Raises:
         ModelError: model or contract missing, corrupt or mismatched (names the file and the fix).
@@ -79,7 +89,11 @@ class LearnedSolver:
 
     name = "learned"
 
-    def __init__(self, scene=None, model=None, threads=2, tile_particles=DEFAULT_TILE_PARTICLES):
+    def __init__(self, scene=None, model=None, threads=2, tile_particles=DEFAULT_TILE_PARTICLES,
+                 relax_iterations=DEFAULT_RELAX_ITERATIONS):
+        if int(relax_iterations) != relax_iterations or relax_iterations < 0:
+            raise ValueError(f"relax_iterations {relax_iterations!r}: use a whole number >= 0 (0 turns relaxation off)")
+        self.relax_iterations = int(relax_iterations)
         self.model_path = Path(model) if model is not None else default_model_path()
         if not self.model_path.exists() and self.model_path.suffix != ".json":
             contract_beside = self.model_path.with_suffix(".json")
@@ -107,6 +121,9 @@ class LearnedSolver:
             "step_froude": c["step_froude"],
             "radius_spacings": c["radius_spacings"],
             "rounds": c["rounds"],
+            "relax_iterations": self.relax_iterations,
+            "relaxation": "Jacobi iterations of a position-based density constraint (compression only), "
+                          "cubic spline H = 2 d, fluid + boundary, after each learned step",
             "constraints": "World.enforce_bounds after every step",
             "density": "SPH estimate, cubic spline H = 2 d, fluid + boundary",
             "pressure": "equation-of-state estimate c^2 max(rho - rho0, 0), c = 10 sqrt(g * bounds height); not solved",
@@ -171,6 +188,11 @@ class LearnedSolver:
                 truncated += graph.truncated_rows
                 timings["network"] += time.perf_counter() - started
                 positions, velocities = features.integrate(state.positions, state.velocities, accelerations, t_next - t)
+                if self.relax_iterations:
+                    relaxed = self.relax(positions, graph, world.boundary_at(state.time), units)
+                    velocities = velocities + (relaxed - positions) / (t_next - t)
+                    positions = relaxed
+                del graph
                 if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
                     bad = int(np.flatnonzero(~np.isfinite(positions).all(axis=1) | ~np.isfinite(velocities).all(axis=1))[0])
                     raise SolverError(
@@ -201,6 +223,23 @@ class LearnedSolver:
                                  network_seconds=timings["network"], constraint_seconds=timings["constraints"],
                                  truncated_neighbour_rows=truncated)
         return state, stats
+
+    def relax(self, positions, graph, boundary, units):
+        """``positions`` (N, 3) m after ``relax_iterations`` density iterations on ``graph``'s tables.
+
+        The tables were found at the start of the step; pairs that came within
+        the support during the step are missed (they sit at the edge of the
+        kernel, where W is small), which is the price of not searching again.
+        """
+        d = units.spacing
+        bindex, bmask = graph.boundary_index, graph.boundary_mask
+        if len(boundary.positions):
+            bpos, bvol = boundary.positions[bindex] / d, boundary.volumes[bindex] / d**3
+        else:
+            bpos = bvol = None
+        relaxed = relax_density(positions / d, graph.neighbour_index, graph.neighbour_mask, bpos, bvol, bmask,
+                                iterations=self.relax_iterations, support=self.contract["density_support_spacings"])
+        return relaxed * d
 
     def frame_attributes(self, state, world):
         """``density`` (kg/m^3, SPH estimate) and ``pressure`` (Pa, equation-of-state estimate) per particle."""
