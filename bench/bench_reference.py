@@ -10,6 +10,12 @@ PLY frame of the cache layout with numpy. Peak memory is the process's maximum
 resident set size (resource.getrusage), so it is cumulative over the sizes run
 so far (sizes run smallest first).
 
+The blocks are cubes, so depth grows with size (22 layers at 10k, 46 at 100k), and
+the timed window is the pressure build-up after release from a zero-pressure
+lattice: a deeper block has more pressure to build, so it needs more solver
+iterations per substep. The ``us/p-it`` column (solver time per particle and per
+iteration) separates that from how the cost of one iteration scales with size.
+
     nice .venv/bin/python bench/bench_reference.py                 # 10k 20k 50k 100k
     nice .venv/bin/python bench/bench_reference.py --sizes 10000 20000 --substeps 10
 
@@ -119,6 +125,9 @@ def run_size(count, substeps, warmup):
             "frame_io": io_seconds,
         },
         "pressure_iterations_per_substep": pressure / done,
+        # Cost per particle and per solver iteration (pressure + divergence): separates how the
+        # cost of one iteration scales with size from how the iteration count grows with depth.
+        "microseconds_per_particle_iteration": 1e6 * totals["solvers"] / (state.count * max(1, pressure + divergence)),
         "divergence_iterations_per_substep": divergence / done,
         "neighbour_rebuilds": rebuilds,
         "max_mean_density_error": worst,
@@ -139,7 +148,8 @@ def main(argv=None):
     args = parser.parse_args(argv)
     results = []
     header = (f"{'particles':>10} {'p-substeps/s':>13} {'us/p-step':>10} {'neigh ms':>9} {'dens ms':>8} "
-              f"{'solve ms':>9} {'other ms':>9} {'PLY ms':>7} {'p-it':>5} {'d-it':>5} {'rebuild':>7} {'RSS MiB':>8}")
+              f"{'solve ms':>9} {'other ms':>9} {'PLY ms':>7} {'p-it':>5} {'d-it':>5} {'us/p-it':>8} {'rebuild':>7} "
+              f"{'RSS MiB':>8}")
     print(header)
     for size in sorted(args.sizes):
         row = run_size(size, args.substeps, args.warmup)
@@ -149,7 +159,8 @@ def main(argv=None):
               f"{row['microseconds_per_particle_substep']:>10.2f} {1e3 * b['neighbours']:>9.1f} "
               f"{1e3 * b['density']:>8.1f} {1e3 * b['solvers']:>9.1f} {1e3 * b['other']:>9.1f} "
               f"{1e3 * b['frame_io']:>7.1f} {row['pressure_iterations_per_substep']:>5.1f} "
-              f"{row['divergence_iterations_per_substep']:>5.1f} {row['neighbour_rebuilds']:>7} "
+              f"{row['divergence_iterations_per_substep']:>5.1f} "
+              f"{row['microseconds_per_particle_iteration']:>8.3f} {row['neighbour_rebuilds']:>7} "
               f"{row['peak_rss_mib']:>8.0f}", flush=True)
     ratio = None
     by_size = {r["particles"]: r for r in results}

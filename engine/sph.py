@@ -17,13 +17,17 @@ step 1 of the next coincide):
 4. constant-density solve on v* (warm-started);
 5. x(t + dt) = x(t) + dt v*.
 
-Both solvers are Jacobi iterations with the DFSPH factor as the diagonal, as
-in the SCA paper. A constant-density iteration adds
-dkappa_i = alpha_i max(rho*_i - rho0, 0) / dt^2, with rho*_i = rho_i + dt
-(D rho / Dt)_i(v*), and applies it as v_i -= dt sum_j m (dk_i / rho_i + dk_j /
-rho_j) grad W_ij (dk = dkappa / rho). Only compression is corrected (clamped
-source term), so free surfaces do not pull (no tension) and kappa >= 0. The
-divergence-free solver does the same with dt * kappa_v increments alpha_i
+The divergence-free solver is a Jacobi iteration with the DFSPH factor as the
+diagonal, as in the SCA paper. The constant-density solver drives
+rho*_i = rho_i + dt (D rho / Dt)_i(v*) to rho0 on the compressed particles by
+preconditioned conjugate gradients with the same factor as preconditioner
+(``_pressure_solve``); a kappa change dk is applied as v_i -= dt sum_j m
+(dk_i / rho_i + dk_j / rho_j) grad W_ij (dk = dkappa / rho). Only compressed
+particles are solved for, so free surfaces do not pull (no tension) and the
+stored kappa is >= 0. (An earlier version used the Jacobi iteration
+dkappa_i = alpha_i max(rho*_i - rho0, 0) / dt^2; conjugate gradients reach the
+same tolerance in about half the iterations, fewer in deep fluid.) The
+divergence-free solver adds dt * kappa_v increments alpha_i
 max(D rho / Dt, 0); particles with fewer than ``MIN_DIVERGENCE_NEIGHBOURS``
 neighbours (kernel sum truncated at a free surface or in spray) sit it out.
 Stopping rules (SCA paper): mean compression max(rho* - rho0, 0) / rho0 <=
