@@ -1,6 +1,7 @@
 """Speed and memory of the learned preview against the reference solver (a benchmark, not a test).
 
     python bench/bench_learned.py [--sizes 20000 50000 100000] [--steps 4] [--shot-seconds 0.5]
+                                  [--relax-iterations N]
 
 1. Same shot, equal spacing: wall seconds per simulated second of the learned preview and of
    the DFSPH reference on one shot (a block of water dropped beside a box in a tank, about
@@ -51,15 +52,21 @@ def tank_scene(particles, spacing=0.025, fps=24, frame_end=13, obstacle=True):
     return scene
 
 
-def throughput(particles, steps, model=None):
-    """Run in this process: particle-steps/s of LearnedSolver.advance and the peak RSS (MiB)."""
+def make_solver(model=None, relax_iterations=None):
     from engine.learned import LearnedSolver
+
+    options = {} if relax_iterations is None else {"relax_iterations": relax_iterations}
+    return LearnedSolver(model=model, **options)
+
+
+def throughput(particles, steps, model=None, relax_iterations=None):
+    """Run in this process: particle-steps/s of LearnedSolver.advance and the peak RSS (MiB)."""
     from engine.scene import scene_from_dict
     from engine.world import build_world
 
     scene = scene_from_dict(tank_scene(particles, obstacle=False, frame_end=2 + steps))
     world = build_world(scene)
-    solver = LearnedSolver(scene, model=model)
+    solver = make_solver(model, relax_iterations)
     state = solver.start(world)
     units_step = solver.contract["step_froude"] * np.sqrt(scene.particle_spacing / 9.81)
     state, _ = solver.advance(state, world, units_step)  # warm-up at full size
@@ -68,12 +75,12 @@ def throughput(particles, steps, model=None):
     state, stats = solver.advance(state, world, state.time + steps * units_step)
     seconds = time.perf_counter() - started
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-    return {"particles": n, "steps": stats.substeps, "seconds": seconds,
+    return {"particles": n, "steps": stats.substeps, "seconds": seconds, "relax_iterations": solver.relax_iterations,
             "particle_steps_per_second": n * stats.substeps / seconds, "peak_rss_mib": peak,
             "seconds_per_step": seconds / stats.substeps}
 
 
-def same_shot(particles, seconds, model=None):
+def same_shot(particles, seconds, model=None, relax_iterations=None):
     """Wall seconds per simulated second of both solvers on one shot (learned first)."""
     import tempfile
 
@@ -88,7 +95,8 @@ def same_shot(particles, seconds, model=None):
         out = {}
         for solver in ("learned", "sph"):
             started = time.perf_counter()
-            bake(folder / "scene.json", solver, folder / solver, use_signals=False)
+            learned = make_solver(model, relax_iterations) if solver == "learned" else None
+            bake(folder / "scene.json", solver, folder / solver, use_signals=False, solver=learned)
             wall = time.perf_counter() - started
             reader = open_cache(folder / solver)
             frames = reader.frames
@@ -109,23 +117,27 @@ def main(argv=None):
     parser.add_argument("--shot-particles", type=int, default=4000)
     parser.add_argument("--shot-seconds", type=float, default=0.5)
     parser.add_argument("--model", default=None)
+    parser.add_argument("--relax-iterations", type=int, default=None,
+                        help="Density relaxation iterations per learned step (default: the solver's default).")
     parser.add_argument("--one", type=int, help=argparse.SUPPRESS)  # internal: one throughput size
     args = parser.parse_args(argv)
     if args.one:
-        print(json.dumps(throughput(args.one, args.steps, args.model)))
+        print(json.dumps(throughput(args.one, args.steps, args.model, args.relax_iterations)))
         return 0
     rows = []
     for size in args.sizes:
         command = [sys.executable, __file__, "--one", str(size), "--steps", str(args.steps)]
         if args.model:
             command += ["--model", args.model]
+        if args.relax_iterations is not None:
+            command += ["--relax-iterations", str(args.relax_iterations)]
         done = subprocess.run(command, capture_output=True, text=True)
         if done.returncode != 0:
             rows.append({"particles": size, "error": done.stderr.strip().splitlines()[-1:]})
             continue
         rows.append(json.loads(done.stdout.strip().splitlines()[-1]))
         print(f"throughput {rows[-1]}", file=sys.stderr, flush=True)
-    shot = same_shot(args.shot_particles, args.shot_seconds, args.model) if args.shot_seconds > 0 else None
+    shot = same_shot(args.shot_particles, args.shot_seconds, args.model, args.relax_iterations) if args.shot_seconds > 0 else None
     print(f"{'particles':>10} {'s/step':>8} {'particle-steps/s':>17} {'peak RSS MiB':>13}")
     for r in rows:
         if "error" in r:
