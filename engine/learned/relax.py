@@ -28,7 +28,7 @@ Macklin & Mueller's Algorithm 1; distances are recomputed each iteration.
 
 import numpy as np
 
-from ..kernels import kernel, kernel_terms
+from ..kernels import kernel
 
 #: Constraint-force mixing of Macklin & Mueller 2013 (their epsilon), in the
 #: units of |grad C|^2 (1/d^2). Typical interior denominators are ~0.2 here, so
@@ -37,16 +37,18 @@ DEFAULT_EPSILON = 1e-3
 
 
 def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions=None,
-                  boundary_volumes=None, boundary_mask=None, iterations=2, support=2.0,
-                  epsilon=DEFAULT_EPSILON):
+                  boundary_volumes=None, boundary_index=None, boundary_mask=None, iterations=2,
+                  support=2.0, epsilon=DEFAULT_EPSILON):
     """Move particles to reduce SPH over-density (see the module docstring).
 
     Args:
         positions: (N, 3) float fluid positions in spacings d.
         neighbour_index: (N, K) int fluid neighbours (padding entries point at the particle itself).
         neighbour_mask: (N, K) float 1 for a real neighbour, 0 for padding.
-        boundary_positions: optional (N, Kb, 3) float positions (d) of each particle's boundary neighbours.
-        boundary_volumes: (N, Kb) V_b / d^3 of those boundary neighbours.
+        boundary_positions: optional (B, 3) float boundary particle positions in d.
+        boundary_volumes: (B,) V_b / d^3.
+        boundary_index: (N, Kb) int rows of the boundary arrays near each particle
+            (``features.boundary_neighbour_table``).
         boundary_mask: (N, Kb) 1 for a real boundary neighbour.
         iterations: Jacobi iterations (0 returns a copy of the input).
         support: kernel support H in d.
@@ -60,16 +62,20 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
     if n == 0 or iterations <= 0:
         return x
     # Flat pair lists (i, j) of the real table entries: padding costs nothing in the loop.
+    # Pair arithmetic runs in float32 about the centre (offsets good to ~1e-7 of the scene
+    # size, far below the corrections); positions and sums stay float64.
     real = np.asarray(neighbour_mask) > 0
     rows = np.broadcast_to(np.arange(n)[:, None], real.shape)[real]
     cols = np.asarray(neighbour_index)[real]
-    w0 = float(kernel(0.0, support))
+    centre = x.mean(axis=0)
     use_boundary = boundary_positions is not None and np.size(boundary_positions) > 0
     if use_boundary:
         breal = np.asarray(boundary_mask) > 0
         brows = np.broadcast_to(np.arange(n)[:, None], breal.shape)[breal]
-        bpos = np.asarray(boundary_positions, np.float64)[breal]
-        bvol = np.asarray(boundary_volumes, np.float64)[breal]
+        bcols = np.asarray(boundary_index)[breal]
+        bpos = (np.asarray(boundary_positions, np.float64)[bcols] - centre).astype(np.float32)
+        bvol = np.asarray(boundary_volumes, np.float64)[bcols].astype(np.float32)
+    w0 = float(kernel(0.0, support))
 
     def row_sum(where, values):
         return np.bincount(where, values, minlength=n)
@@ -78,22 +84,39 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
         return np.stack([row_sum(where, scale * vectors[:, c]) for c in range(3)], axis=1)
 
     for _ in range(int(iterations)):
-        offsets = x[rows] - x[cols]  # x_i - x_j, (P, 3)
-        r = np.sqrt(np.einsum("pc,pc->p", offsets, offsets))
-        w, f = kernel_terms(r, support)
+        x32 = (x - centre).astype(np.float32)
+        offsets = x32[rows] - x32[cols]  # x_i - x_j, (P, 3)
+        w, f, r2 = _kernel_terms32(offsets, support)
         ratio = w0 + row_sum(rows, w)
         grad_self = row_sum3(rows, f, offsets)
-        grad_others = row_sum(rows, f * f * r * r)  # sum_j |grad_j C_i|^2
+        grad_others = row_sum(rows, f * f * r2)  # sum_j |grad_j C_i|^2
         if use_boundary:
-            boffsets = x[brows] - bpos
-            wb, fb = kernel_terms(np.sqrt(np.einsum("pc,pc->p", boffsets, boffsets)), support)
+            boffsets = x32[brows] - bpos
+            wb, fb, _ = _kernel_terms32(boffsets, support)
             ratio += row_sum(brows, wb * bvol)
             fb *= bvol
             grad_self += row_sum3(brows, fb, boffsets)
         constraint = np.maximum(ratio - 1.0, 0.0)
-        lam = -constraint / (grad_others + np.einsum("nc,nc->n", grad_self, grad_self) + epsilon)
+        lam = (-constraint / (grad_others + np.einsum("nc,nc->n", grad_self, grad_self) + epsilon)).astype(np.float32)
         step = row_sum3(rows, (lam[rows] + lam[cols]) * f, offsets)
         if use_boundary:
             step += row_sum3(brows, lam[brows] * fb, boffsets)
         x += step
     return x
+
+
+def _kernel_terms32(offsets, support):
+    """W, (dW/dr)/r and r^2 of the cubic spline (engine.kernels.kernel_terms) in float32.
+
+    ``offsets`` (P, 3) float32. Pairs that moved apart beyond the support since the table was
+    found get W = 0 and no gradient; r = 0 takes the inner branch (finite, zero gradient).
+    """
+    r2 = np.einsum("pc,pc->p", offsets, offsets)
+    q = np.sqrt(r2) * np.float32(1.0 / support)
+    sigma = np.float32(8.0 / (np.pi * support**3))
+    inner = q <= 0.5
+    one_minus = np.maximum(np.float32(1.0) - q, np.float32(0.0))
+    w = np.where(inner, 6.0 * (q - 1.0) * q * q + 1.0, 2.0 * one_minus**3).astype(np.float32) * sigma
+    scale = sigma / np.float32(support**2)
+    f = np.where(inner, 6.0 * (3.0 * q - 2.0), -6.0 * one_minus * one_minus / np.maximum(q, np.float32(0.5)))
+    return w, f.astype(np.float32) * scale, r2

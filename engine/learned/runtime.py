@@ -74,9 +74,12 @@ def halo_nodes(receivers, neighbour_index, rounds):
     inside[receivers] = True
     frontier = receivers
     for _ in range(rounds):
-        reached = np.unique(neighbour_index[frontier].ravel())
-        frontier = reached[~inside[reached]]
-        inside[frontier] = True
+        # Mark-and-scan (O(N) per round) instead of sorting the reached indices.
+        reached = np.zeros(len(neighbour_index), bool)
+        reached[neighbour_index[frontier].ravel()] = True
+        reached &= ~inside
+        frontier = np.flatnonzero(reached)
+        inside |= reached
     halo = np.flatnonzero(inside)
     is_receiver = np.zeros(len(neighbour_index), bool)
     is_receiver[receivers] = True
@@ -92,13 +95,17 @@ def subgraph(inputs, nodes):
     position = np.full(len(inputs["neighbour_index"]), -1, np.int64)
     position[nodes] = np.arange(len(nodes))
     index = position[inputs["neighbour_index"][nodes]]
-    mask = inputs["neighbour_mask"][nodes] * (index >= 0)
+    outside = index < 0
+    mask = inputs["neighbour_mask"][nodes]
+    edge = inputs["edge_features"][nodes]
+    mask[outside] = 0.0  # both are copies (fancy indexing); only the few outside entries change
+    edge[outside] = 0.0
     rows = np.arange(len(nodes))[:, None]
     return {
         "node_features": inputs["node_features"][nodes],
-        "neighbour_index": np.where(index >= 0, index, rows).astype(np.int64),
-        "neighbour_mask": mask.astype(np.float32),
-        "edge_features": inputs["edge_features"][nodes] * mask[..., None],
+        "neighbour_index": np.where(outside, rows, index).astype(np.int64, copy=False),
+        "neighbour_mask": mask.astype(np.float32, copy=False),
+        "edge_features": edge,
         "boundary_features": inputs["boundary_features"][nodes],
         "boundary_mask": inputs["boundary_mask"][nodes],
     }

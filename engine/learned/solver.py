@@ -230,14 +230,13 @@ class LearnedSolver:
         The tables were found at the start of the step; pairs that came within
         the support during the step are missed (they sit at the edge of the
         kernel, where W is small), which is the price of not searching again.
+        The tables hold pairs within the graph radius; with a density support
+        wider than that radius (no shipped model) the relaxation would see
+        only the nearer pairs.
         """
         d = units.spacing
-        bindex, bmask = graph.boundary_index, graph.boundary_mask
-        if len(boundary.positions):
-            bpos, bvol = boundary.positions[bindex] / d, boundary.volumes[bindex] / d**3
-        else:
-            bpos = bvol = None
-        relaxed = relax_density(positions / d, graph.neighbour_index, graph.neighbour_mask, bpos, bvol, bmask,
+        relaxed = relax_density(positions / d, graph.neighbour_index, graph.neighbour_mask, boundary.positions / d,
+                                boundary.volumes / d**3, graph.boundary_index, graph.boundary_mask,
                                 iterations=self.relax_iterations, support=self.contract["density_support_spacings"])
         return relaxed * d
 
