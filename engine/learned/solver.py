@@ -49,7 +49,7 @@ from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
 PREVIOUS_VELOCITY = "learned_previous_velocity"
 
 #: Density relaxation iterations after each learned step (bench/eval_learned.py, model card).
-DEFAULT_RELAX_ITERATIONS = 2
+DEFAULT_RELAX_ITERATIONS = 3
 
 #: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
 DEFAULT_MODEL_NAME = "preview-gn2"
