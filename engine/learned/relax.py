@@ -61,12 +61,16 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
     n = len(x)
     if n == 0 or iterations <= 0:
         return x
-    # Flat pair lists (i, j) of the real table entries: padding costs nothing in the loop.
-    # Pair arithmetic runs in float32 about the centre (offsets good to ~1e-7 of the scene
-    # size, far below the corrections); positions and sums stay float64.
-    real = np.asarray(neighbour_mask) > 0
+    # Each table pair once (i < j) as flat lists: padding costs nothing, and every pair term
+    # is evaluated once and added to both ends (the pair terms are symmetric in W, f and r and
+    # antisymmetric in x_i - x_j). A pair missing from one row because that row hit the table's
+    # cap is still used when the other row holds it with i < j. Pair arithmetic runs in
+    # float32 about the centre (offsets good to ~1e-7 of the scene size, far below the
+    # corrections); positions and sums stay float64.
+    index = np.asarray(neighbour_index)
+    real = (np.asarray(neighbour_mask) > 0) & (index > np.arange(n)[:, None])
     rows = np.broadcast_to(np.arange(n)[:, None], real.shape)[real]
-    cols = np.asarray(neighbour_index)[real]
+    cols = index[real]
     centre = x.mean(axis=0)
     use_boundary = boundary_positions is not None and np.size(boundary_positions) > 0
     if use_boundary:
@@ -77,30 +81,39 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
         bvol = np.asarray(boundary_volumes, np.float64)[bcols].astype(np.float32)
     w0 = float(kernel(0.0, support))
 
-    def row_sum(where, values):
-        return np.bincount(where, values, minlength=n)
+    def pair_sum(values):
+        """sum_j v_ij at each i for a symmetric pair quantity."""
+        return np.bincount(rows, values, minlength=n) + np.bincount(cols, values, minlength=n)
 
-    def row_sum3(where, scale, vectors):
-        return np.stack([row_sum(where, scale * vectors[:, c]) for c in range(3)], axis=1)
+    def pair_sum3(scale, offsets):
+        """sum_j s_ij (x_i - x_j) at each i, s symmetric (offsets are x_i - x_j for i < j)."""
+        out = np.empty((n, 3))
+        for c in range(3):
+            values = scale * offsets[:, c]
+            out[:, c] = np.bincount(rows, values, minlength=n) - np.bincount(cols, values, minlength=n)
+        return out
+
+    def boundary_sum3(scale, offsets):
+        return np.stack([np.bincount(brows, scale * offsets[:, c], minlength=n) for c in range(3)], axis=1)
 
     for _ in range(int(iterations)):
         x32 = (x - centre).astype(np.float32)
         offsets = x32[rows] - x32[cols]  # x_i - x_j, (P, 3)
         w, f, r2 = _kernel_terms32(offsets, support)
-        ratio = w0 + row_sum(rows, w)
-        grad_self = row_sum3(rows, f, offsets)
-        grad_others = row_sum(rows, f * f * r2)  # sum_j |grad_j C_i|^2
+        ratio = w0 + pair_sum(w)
+        grad_self = pair_sum3(f, offsets)
+        grad_others = pair_sum(f * f * r2)  # sum_j |grad_j C_i|^2
         if use_boundary:
             boffsets = x32[brows] - bpos
             wb, fb, _ = _kernel_terms32(boffsets, support)
-            ratio += row_sum(brows, wb * bvol)
+            ratio += np.bincount(brows, wb * bvol, minlength=n)
             fb *= bvol
-            grad_self += row_sum3(brows, fb, boffsets)
+            grad_self += boundary_sum3(fb, boffsets)
         constraint = np.maximum(ratio - 1.0, 0.0)
         lam = (-constraint / (grad_others + np.einsum("nc,nc->n", grad_self, grad_self) + epsilon)).astype(np.float32)
-        step = row_sum3(rows, (lam[rows] + lam[cols]) * f, offsets)
+        step = pair_sum3((lam[rows] + lam[cols]) * f, offsets)
         if use_boundary:
-            step += row_sum3(brows, lam[brows] * fb, boffsets)
+            step += boundary_sum3(lam[brows] * fb, boffsets)
         x += step
     return x
 

@@ -68,6 +68,7 @@ class LearnedStepStats:
     time_step: float
     neighbour_seconds: float
     network_seconds: float
+    relax_seconds: float
     constraint_seconds: float
     truncated_neighbour_rows: int
 
@@ -174,7 +175,7 @@ class LearnedSolver:
         step = self.contract["step_froude"] * units.time
         count = max(1, int(round((t_end - t) / step))) if t_end > t else 0
         dt = (t_end - t) / count if count else 0.0
-        timings = {"neighbours": 0.0, "network": 0.0, "constraints": 0.0}
+        timings = {"neighbours": 0.0, "network": 0.0, "relax": 0.0, "constraints": 0.0}
         truncated = 0
         if PREVIOUS_VELOCITY not in state.particle_arrays:
             arrays = dict(state.particle_arrays)
@@ -189,9 +190,11 @@ class LearnedSolver:
                 timings["network"] += time.perf_counter() - started
                 positions, velocities = features.integrate(state.positions, state.velocities, accelerations, t_next - t)
                 if self.relax_iterations:
+                    started = time.perf_counter()
                     relaxed = self.relax(positions, graph, world.boundary_at(state.time), units)
                     velocities = velocities + (relaxed - positions) / (t_next - t)
                     positions = relaxed
+                    timings["relax"] += time.perf_counter() - started
                 del graph
                 if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
                     bad = int(np.flatnonzero(~np.isfinite(positions).all(axis=1) | ~np.isfinite(velocities).all(axis=1))[0])
@@ -220,7 +223,8 @@ class LearnedSolver:
             timings["constraints"] += time.perf_counter() - started
             t = t_next
         stats = LearnedStepStats(substeps=count, time_step=dt, neighbour_seconds=timings["neighbours"],
-                                 network_seconds=timings["network"], constraint_seconds=timings["constraints"],
+                                 network_seconds=timings["network"], relax_seconds=timings["relax"],
+                                 constraint_seconds=timings["constraints"],
                                  truncated_neighbour_rows=truncated)
         return state, stats
 
