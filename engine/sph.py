@@ -17,17 +17,13 @@ step 1 of the next coincide):
 4. constant-density solve on v* (warm-started);
 5. x(t + dt) = x(t) + dt v*.
 
-The divergence-free solver is a Jacobi iteration with the DFSPH factor as the
-diagonal, as in the SCA paper. The constant-density solver drives
-rho*_i = rho_i + dt (D rho / Dt)_i(v*) to rho0 on the compressed particles by
-preconditioned conjugate gradients with the same factor as preconditioner
-(``_pressure_solve``); a kappa change dk is applied as v_i -= dt sum_j m
-(dk_i / rho_i + dk_j / rho_j) grad W_ij (dk = dkappa / rho). Only compressed
-particles are solved for, so free surfaces do not pull (no tension) and the
-stored kappa is >= 0. (An earlier version used the Jacobi iteration
-dkappa_i = alpha_i max(rho*_i - rho0, 0) / dt^2; conjugate gradients reach the
-tolerance band faster; the last stretch is still Jacobi, see ``_pressure_solve``.) The
-divergence-free solver adds dt * kappa_v increments alpha_i
+Both solvers are Jacobi iterations with the DFSPH factor as the diagonal, as
+in the SCA paper. A constant-density iteration adds
+dkappa_i = alpha_i max(rho*_i - rho0, 0) / dt^2, with rho*_i = rho_i + dt
+(D rho / Dt)_i(v*), and applies it as v_i -= dt sum_j m (dk_i / rho_i + dk_j /
+rho_j) grad W_ij (dk = dkappa / rho). Only compression is corrected (clamped
+source term), so free surfaces do not pull (no tension) and kappa >= 0. The
+divergence-free solver does the same with dt * kappa_v increments alpha_i
 max(D rho / Dt, 0); particles with fewer than ``MIN_DIVERGENCE_NEIGHBOURS``
 neighbours (kernel sum truncated at a free surface or in spray) sit it out.
 Stopping rules (SCA paper): mean compression max(rho* - rho0, 0) / rho0 <=
@@ -360,15 +356,9 @@ class PairOperators:
         self._rate_sum = total  # multiplies v_i in D rho / Dt
         self._accel_sum = total  # boundary term k_i Psi_b grad W_ib: p_i / rho_i^2 only
 
-    def density_rate(self, velocities, use_boundary_motion=True):
-        """(D rho / Dt)_i = sum_j m (v_i - v_j).grad W_ij + sum_b Psi_b (v_i - v_b).grad W_ib, kg/(m^3 s).
-
-        With ``use_boundary_motion=False`` the v_b term is left out: the linear part
-        only, for the change of the rate caused by a change of the fluid velocities.
-        """
-        rate = np.einsum("ij,ij->i", velocities, self._rate_sum)
-        if use_boundary_motion:
-            rate -= self.boundary_rate
+    def density_rate(self, velocities):
+        """(D rho / Dt)_i = sum_j m (v_i - v_j).grad W_ij + sum_b Psi_b (v_i - v_b).grad W_ib, kg/(m^3 s)."""
+        rate = np.einsum("ij,ij->i", velocities, self._rate_sum) - self.boundary_rate
         columns = [np.ascontiguousarray(velocities[:, c]) for c in range(3)]
         products = _products([(m, columns[c]) for c in range(3) for m in (self._upper[c], self._lower[c])])
         for c in range(3):
@@ -460,88 +450,27 @@ def _divergence_solve(ops, velocities, kappa_v, params, dt):
     return velocities, beta, iterations
 
 
-#: The constant-density solve switches from conjugate gradients to Jacobi steps below this
-#: multiple of the tolerance.
-FINISH_WITH_JACOBI = 2.0
-
-
 def _pressure_solve(ops, velocities, kappa, params, dt):
-    """Constant-density solve (SCA 2015, Alg. 3) by preconditioned conjugate gradients.
-
-    kappa in m^2/s^2 (= p / rho). The velocity change dv = -dt P(dk / rho) of a
-    kappa change dk changes the predicted density by -A dk with
-    A dk = dt^2 (D rho / Dt)(P(dk / rho)) (linear part of the rate); A is symmetric
-    positive semi-definite (the boundary pressure term is the transpose of the
-    boundary rate term, module docstring). On the set S of compressed particles
-    the solve drives rho*_i - rho0 to zero with conjugate gradients
-    (Hestenes & Stiefel 1952, J. Res. Natl. Bur. Stand. 49(6):409-436; Jacobi
-    preconditioner alpha_i / dt^2, the DFSPH factor being 1 / A_ii). Particles
-    outside S get no pressure change, so free surfaces do not pull. When the
-    residual on S is small next to the compression outside it, CG restarts on S
-    plus the newly compressed particles. Stopping rule and iteration count as in
-    the Jacobi form (one iteration = one pressure product + one rate product).
-    Below ``FINISH_WITH_JACOBI`` times the tolerance the solve finishes with the
-    compression-only Jacobi step dkappa_i = alpha_i max(rho*_i - rho0, 0) / dt^2:
-    stopping right after CG left the settled hydrostatic tank too restless
-    (max |v| / sqrt(g d) 0.10 against the validation test's 0.1; 0.05 with this finish).
-    Equality on S can leave a few particles with a slightly negative kappa; the
-    kappa returned (warm start, pressure output) is clipped at 0.
-    """
+    """Constant-density solve (SCA 2015, Alg. 3); kappa in m^2/s^2 (= p / rho)."""
     rho0 = params.rest_density
     alpha, density = ops.alpha, ops.density
     kappa = WARM_START_FACTOR * kappa
     if np.any(kappa):
         velocities = velocities - dt * ops.pressure_term(kappa / density)
-    predicted = density + dt * ops.density_rate(velocities)
-    preconditioner = alpha / (dt * dt)
-    active = np.zeros(len(predicted), bool)
-    is_restart = True
     iterations = 0
+    inv_dt2 = 1.0 / (dt * dt)
     while True:
-        excess = predicted - rho0
-        compression = np.maximum(excess, 0.0) / rho0
+        predicted = density + dt * ops.density_rate(velocities)
+        compression = np.maximum(predicted - rho0, 0.0) / rho0
         error = float(np.mean(compression))
         if (iterations >= 2 and error <= params.density_tolerance) or iterations >= params.max_iterations:
             break
-        if error <= FINISH_WITH_JACOBI * params.density_tolerance:
-            # Finish with compression-only Jacobi steps: they smooth what CG leaves.
-            change = alpha * np.maximum(excess, 0.0) / (dt * dt)
-            kappa = kappa + change
-            push = ops.pressure_term(change / density)
-            velocities = velocities - dt * push
-            predicted = predicted - (dt * dt) * ops.density_rate(push, use_boundary_motion=False)
-            iterations += 1
-            is_restart = True
-            continue
-        if is_restart:
-            active |= excess > 0.0
-            residual = np.where(active, excess, 0.0)
-            search = preconditioner * residual
-            rz = float(residual @ search)
-            if rz <= 0.0:
-                break  # the compressed particles have no neighbours to push (alpha = 0)
-            is_restart = False
-        push = ops.pressure_term(search / density)
-        change = (dt * dt) * ops.density_rate(push, use_boundary_motion=False)
-        curvature = float(search @ change)
+        change = alpha * np.maximum(predicted - rho0, 0.0) * inv_dt2
+        kappa = kappa + change
+        velocities = velocities - dt * ops.pressure_term(change / density)
         iterations += 1
-        if curvature <= 0.0:
-            break  # round-off has exhausted the search direction
-        step = rz / curvature
-        kappa = kappa + step * search
-        velocities = velocities - (step * dt) * push
-        predicted = predicted - step * change
-        residual -= step * np.where(active, change, 0.0)
-        outside = float(np.sum(np.maximum(predicted - rho0, 0.0), where=~active)) / len(predicted)
-        if float(np.mean(np.abs(residual))) < 0.5 * outside:
-            is_restart = True
-            continue
-        z = preconditioner * residual
-        rz_next = float(residual @ z)
-        search = z + (rz_next / rz) * search
-        rz = rz_next
     worst = float(np.max(compression))
-    return velocities, np.maximum(kappa, 0.0), iterations, error, worst
+    return velocities, kappa, iterations, error, worst
 
 
 def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, pairs=None):

@@ -334,11 +334,11 @@ def test_threaded_products_give_the_same_bits_as_serial(monkeypatch):
 
 
 def test_reported_compression_matches_a_fresh_evaluation_of_the_predicted_density():
-    """The constant-density solve updates its predicted density incrementally (conjugate
-    gradients); recomputing rho*_i = rho_i + dt (D rho / Dt)_i(v) from the returned velocities
-    (Bender & Koschier 2015 [M], the rate operator itself checked against a loop above) must
-    give the reported mean compression, with a moving floor (boundary velocity term). 1e-6
-    relative: round-off of the incremental updates, far below the 5e-4 tolerance it is held to."""
+    """The mean compression the constant-density solve reports (its stopping criterion) must be
+    that of the velocities it returns: recomputing rho*_i = rho_i + dt (D rho / Dt)_i(v) from them
+    (Bender & Koschier 2015 [M], the rate operator itself checked against a loop above) gives the
+    same value, with a moving floor (boundary velocity term). 1e-6 relative: round-off, far
+    below the 5e-4 tolerance it is held to."""
     x, v, boundary, params = _cloud_on_moving_floor(seed=4, n=90)
     x = 0.8 * x  # squeeze the cloud so the solve has compression to remove
     dt = 0.002
