@@ -19,7 +19,15 @@ import pytest
 from scipy.spatial.distance import cdist
 
 from engine.cache import CacheWriter
-from engine.compare import chamfer_distance, compare_caches, kinetic_energy, main_compare, sph_density
+from engine.compare import (
+    FULL_SUPPORT_NEIGHBOURS,
+    chamfer_distance,
+    compare_caches,
+    deep_interior,
+    kinetic_energy,
+    main_compare,
+    sph_density,
+)
 from engine.errors import SplashdraftError
 
 
@@ -74,6 +82,24 @@ def test_sph_density_on_a_lattice_interior_is_rest_density():
     centre = np.argmin(np.linalg.norm(points - points.mean(axis=0), axis=1))
     assert density[centre] / 1000.0 == pytest.approx(0.99997, abs=1e-4)
     assert counts[centre] == 26  # 3^3 - 1 lattice neighbours strictly inside H = 2 dx
+
+
+def test_deep_interior_of_a_lattice_cube_is_two_layers_in():
+    """Lattice counting [D]: on a cubic lattice, H = 2 dx holds 26 neighbours strictly inside
+    (physics-references.md section 1); a face particle misses 9 of them (17 < 22), so the interior
+    of a 12^3 cube is its inner 10^3 and the deep interior (every neighbour interior) its inner
+    8^3 = 512. The deep interior of a perfect lattice reads 0.99997 rho0 (same section), so all of
+    it is within 3 %."""
+    d = 0.05
+    points = lattice(12, d)
+    density, counts, pairs = sph_density(points, d, 1000.0, with_pairs=True)
+    interior = counts >= FULL_SUPPORT_NEIGHBOURS
+    deep = deep_interior(interior, pairs)
+    index = np.rint((points - points.min(axis=0)) / d).astype(int)
+    assert np.array_equal(interior, np.all((index >= 1) & (index <= 10), axis=1))
+    assert np.array_equal(deep, np.all((index >= 2) & (index <= 9), axis=1))
+    assert deep.sum() == 512
+    assert np.all(np.abs(density[deep] / 1000.0 - 1.0) <= 0.03)
 
 
 def test_sph_density_matches_a_per_particle_loop():
