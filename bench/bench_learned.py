@@ -1,7 +1,7 @@
 """Speed and memory of the learned preview against the reference solver (a benchmark, not a test).
 
     python bench/bench_learned.py [--sizes 20000 50000 100000] [--steps 4] [--shot-seconds 0.5]
-                                  [--relax-iterations N]
+                                  [--relax-iterations N] [--repeats R]
 
 1. Same shot, equal spacing: wall seconds per simulated second of the learned preview and of
    the DFSPH reference on one shot (a block of water dropped beside a box in a tank, about
@@ -59,8 +59,12 @@ def make_solver(model=None, relax_iterations=None):
     return LearnedSolver(model=model, **options)
 
 
-def throughput(particles, steps, model=None, relax_iterations=None):
-    """Run in this process: particle-steps/s of LearnedSolver.advance and the peak RSS (MiB)."""
+def throughput(particles, steps, model=None, relax_iterations=None, repeats=0):
+    """Run in this process: particle-steps/s of LearnedSolver.advance and the peak RSS (MiB).
+
+    With ``repeats`` > 0, also the minimum wall time of one step advanced ``repeats`` times from the
+    same state (the least disturbed figure on a shared machine).
+    """
     from engine.scene import scene_from_dict
     from engine.world import build_world
 
@@ -74,8 +78,15 @@ def throughput(particles, steps, model=None, relax_iterations=None):
     started = time.perf_counter()
     state, stats = solver.advance(state, world, state.time + steps * units_step)
     seconds = time.perf_counter() - started
+    single = []
+    for _ in range(repeats):
+        started = time.perf_counter()
+        solver.advance(state, world, state.time + units_step)
+        single.append(time.perf_counter() - started)
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-    return {"particles": n, "steps": stats.substeps, "seconds": seconds, "relax_iterations": solver.relax_iterations,
+    return {"particles": n, "steps": stats.substeps, "seconds": seconds,
+            "relax_iterations": getattr(solver, "relax_iterations", None),
+            "min_seconds_per_step": min(single) if single else None,
             "particle_steps_per_second": n * stats.substeps / seconds, "peak_rss_mib": peak,
             "seconds_per_step": seconds / stats.substeps}
 
@@ -119,14 +130,16 @@ def main(argv=None):
     parser.add_argument("--model", default=None)
     parser.add_argument("--relax-iterations", type=int, default=None,
                         help="Density relaxation iterations per learned step (default: the solver's default).")
+    parser.add_argument("--repeats", type=int, default=0,
+                        help="Also time one step this many times from the same state and report the minimum (default 0).")
     parser.add_argument("--one", type=int, help=argparse.SUPPRESS)  # internal: one throughput size
     args = parser.parse_args(argv)
     if args.one:
-        print(json.dumps(throughput(args.one, args.steps, args.model, args.relax_iterations)))
+        print(json.dumps(throughput(args.one, args.steps, args.model, args.relax_iterations, args.repeats)))
         return 0
     rows = []
     for size in args.sizes:
-        command = [sys.executable, __file__, "--one", str(size), "--steps", str(args.steps)]
+        command = [sys.executable, __file__, "--one", str(size), "--steps", str(args.steps), "--repeats", str(args.repeats)]
         if args.model:
             command += ["--model", args.model]
         if args.relax_iterations is not None:
@@ -138,12 +151,14 @@ def main(argv=None):
         rows.append(json.loads(done.stdout.strip().splitlines()[-1]))
         print(f"throughput {rows[-1]}", file=sys.stderr, flush=True)
     shot = same_shot(args.shot_particles, args.shot_seconds, args.model, args.relax_iterations) if args.shot_seconds > 0 else None
-    print(f"{'particles':>10} {'s/step':>8} {'particle-steps/s':>17} {'peak RSS MiB':>13}")
+    print(f"{'particles':>10} {'s/step':>8} {'min s/step':>10} {'particle-steps/s':>17} {'peak RSS MiB':>13}")
     for r in rows:
         if "error" in r:
             print(f"{r['particles']:>10} error: {r['error']}")
         else:
-            print(f"{r['particles']:>10} {r['seconds_per_step']:>8.3f} {r['particle_steps_per_second']:>17.0f} {r['peak_rss_mib']:>13.0f}")
+            least = r.get("min_seconds_per_step")
+            print(f"{r['particles']:>10} {r['seconds_per_step']:>8.3f} {(least if least else float('nan')):>10.3f} "
+                  f"{r['particle_steps_per_second']:>17.0f} {r['peak_rss_mib']:>13.0f}")
     if shot:
         print(f"same shot ({shot['learned']['particles']} particles, {shot['learned']['simulated_seconds']:.2f} s simulated): "
               f"learned {shot['learned']['seconds_per_simulated_second']:.1f} s/s ({shot['learned']['substeps']} steps), "
