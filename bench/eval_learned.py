@@ -98,6 +98,7 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
             "mean_chamfer_spacings": fidelity["mean_chamfer_spacings"],
             "max_chamfer_spacings": fidelity["max_chamfer_spacings"],
             "density_within_3pct_fraction": fidelity["density_within_3pct_fraction"],
+            "density_within_3pct_fraction_deep": fidelity.get("density_within_3pct_fraction_deep"),
             "density_within_3pct_fraction_all": float(np.mean([r["density_within_3pct_fraction_all"] for r in fidelity["frames"]])),
             "penetrating_particles": fidelity["penetrating_particles"],
             "reference_seconds_per_simulated_second": _seconds_per_sim(ref, fidelity_seconds),
@@ -105,6 +106,7 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
         # The same density measure on the reference bake itself: what an incompressible solver scores.
         itself = compare_caches(reference_dir, reference_dir, frames=frames, scene=scene_path)
         row["reference_density_within_3pct_fraction"] = itself["density_within_3pct_fraction"]
+        row["reference_density_within_3pct_fraction_deep"] = itself.get("density_within_3pct_fraction_deep")
     except SplashdraftError as exc:
         row["compare_error"] = str(exc)
     log(json.dumps(row))
