@@ -85,7 +85,7 @@ def throughput(particles, steps, model=None, relax_iterations=None, repeats=0):
         single.append(time.perf_counter() - started)
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     return {"particles": n, "steps": stats.substeps, "seconds": seconds,
-            "relax_iterations": getattr(solver, "relax_iterations", None),
+            "relax_iterations": solver.relax_iterations,
             "min_seconds_per_step": min(single) if single else None,
             "particle_steps_per_second": n * stats.substeps / seconds, "peak_rss_mib": peak,
             "seconds_per_step": seconds / stats.substeps}

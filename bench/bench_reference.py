@@ -112,7 +112,7 @@ def run_size(count, substeps, warmup, shape="cube", layers=20):
         t += dt
         state, _ = solver.advance(state, world, t)
     totals = {"neighbours": 0.0, "density": 0.0, "solvers": 0.0}
-    iterations = pressure = divergence = rebuilds = done = 0
+    pressure = divergence = rebuilds = done = 0
     worst = 0.0
     started = time.perf_counter()
     for _ in range(substeps):
