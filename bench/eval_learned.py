@@ -1,6 +1,6 @@
 """Evaluate the shipped learned preview on the held-out shots and the demo shot (not a timed test).
 
-    python bench/eval_learned.py [--heldout data/heldout] [--model models/preview-gn2.onnx]
+    python bench/eval_learned.py [--heldout data/heldout] [--model models/preview-gn4.onnx]
                                  [--seconds 10] [--fidelity-seconds 2] [--demo-preset small|full|none]
                                  [--relax-iterations N] [--shots ring stairs ...]
 

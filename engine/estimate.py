@@ -12,7 +12,8 @@ Every figure here is an estimate, stated as such:
   estimated particle count for every frame (an upper bound when particles
   leave through open faces).
 - time: substeps per frame from the CFL rule with a free-fall speed over the
-  bounds height, times particles, divided by a throughput in
+  bounds height (the learned preview: its own steps per frame, from the shipped
+  model's longest step, ``LearnedSolver.step_plan``), times particles, divided by a throughput in
   particle-substeps per second. The throughput is a rough constant measured
   on a 2-core laptop-class CPU, replaced by the latest figure in
   ``bench/results/<solver>_throughput.json`` (key
@@ -145,6 +146,22 @@ def check_budget(scene, world, max_particles=None, particles=None):
     return particles
 
 
+def learned_steps_per_frame(scene):
+    """Learned steps per frame: ceil(frame interval / the shipped model's longest step).
+
+    Read from the model's contract (no onnxruntime session); 1 if the contract is missing or
+    unreadable (the bake itself then reports the model error).
+    """
+    from .learned.solver import default_model_path
+
+    try:
+        contract = json.loads(default_model_path().with_suffix(".json").read_text())
+        step = float(contract["step_froude"]) * math.sqrt(scene.particle_spacing / math.dist(scene.gravity, (0, 0, 0)))
+    except (OSError, ValueError, KeyError, TypeError, ZeroDivisionError):
+        return 1
+    return max(1, math.ceil((1.0 / scene.fps) / step - 1e-9))
+
+
 def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=None):
     """Estimate a bake of ``scene`` with ``solver``; raises BudgetError over the budget.
 
@@ -163,7 +180,7 @@ def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=N
     particles, boundary = count_particles(world)
     check_budget(scene, world, max_particles=max_particles, particles=particles)
     frames = int(frames) if frames is not None else scene.frame_end - scene.frame_start + 1
-    substeps = substeps_per_frame(scene)
+    substeps = learned_steps_per_frame(scene) if solver == "learned" else substeps_per_frame(scene)
     rate, source = throughput(solver)
     per_frame = substeps * max(particles, 1) / rate
     frame_size = frame_file_bytes(particles)

@@ -367,6 +367,10 @@ class World:
            the fraction ``friction`` of its tangential part.
         3. Particles are clamped to ``contact_margin`` inside every wall face, and
            their velocity component into the wall is set to zero.
+        4. Particles the walls moved get step 2 again: one that was beyond the
+           floor under a collider resting on it is clamped into the collider
+           (a long learned step can carry a particle that far).
+        Collider surface samples on or beyond a wall face are never used as exits.
         """
         positions = state.positions
         outside = np.zeros(len(positions), bool)
@@ -383,15 +387,23 @@ class World:
         if self.colliders and len(positions):
             self._push_out_of_colliders(positions, velocities, state.time)
         margin = self.contact_margin
+        clamped = np.zeros(len(positions), bool)
         for axis in range(3):
             if self.scene.bounds.faces[FACE_NAMES[2 * axis]] == "wall":
                 low = positions[:, axis] < self.lower[axis] + margin
                 positions[low, axis] = self.lower[axis] + margin
                 velocities[low, axis] = np.maximum(velocities[low, axis], 0.0)
+                clamped |= low
             if self.scene.bounds.faces[FACE_NAMES[2 * axis + 1]] == "wall":
                 high = positions[:, axis] > self.upper[axis] - margin
                 positions[high, axis] = self.upper[axis] - margin
                 velocities[high, axis] = np.minimum(velocities[high, axis], 0.0)
+                clamped |= high
+        if self.colliders and clamped.any():
+            again = np.flatnonzero(clamped)
+            moved_positions, moved_velocities = positions[again], velocities[again]
+            self._push_out_of_colliders(moved_positions, moved_velocities, state.time)
+            positions[again], velocities[again] = moved_positions, moved_velocities
         return dataclasses.replace(state, positions=positions, velocities=velocities, removed=state.removed + removed)
 
     def _push_out_of_colliders(self, positions, velocities, t):
@@ -400,8 +412,15 @@ class World:
         _, per_collider = self._cache["colliders"]
         margin = self.contact_margin
         for collider, (sp, sv, sn) in zip(self.colliders, per_collider):
-            if len(sp) == 0:
+            # Surface samples on or beyond a wall face are no exit: a particle pushed there is
+            # clamped straight back by the wall (a box resting on the floor would hand deep
+            # particles its bottom face, and they would end inside it again).
+            exits = self._inside_walls(sp, margin)
+            if not exits.any():
                 continue
+            if not exits.all():
+                exits = np.flatnonzero(exits)
+                sp, sv, sn = sp[exits], sv[exits], sn[exits]
             lo = sp.min(axis=0) - 2 * self.particle_spacing
             hi = sp.max(axis=0) + 2 * self.particle_spacing
             near = np.flatnonzero(np.all((positions >= lo) & (positions <= hi), axis=1))
@@ -426,6 +445,16 @@ class World:
             tangential = relative - normal_speed[:, None] * normal
             normal_part = np.maximum(normal_speed, 0.0)[:, None] * normal
             velocities[moved] = sv[index] + normal_part + (1.0 - collider.friction) * tangential
+
+    def _inside_walls(self, points, margin):
+        """(N,) bool: points more than ``margin`` inside every wall face of the bounds (open faces ignored)."""
+        keep = np.ones(len(points), bool)
+        for axis in range(3):
+            if self.scene.bounds.faces[FACE_NAMES[2 * axis]] == "wall":
+                keep &= points[:, axis] > self.lower[axis] + margin
+            if self.scene.bounds.faces[FACE_NAMES[2 * axis + 1]] == "wall":
+                keep &= points[:, axis] < self.upper[axis] - margin
+        return keep
 
     # -- estimate
 

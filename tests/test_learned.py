@@ -31,6 +31,7 @@ from engine.learned.contract import load_contract
 
 ROOT = Path(__file__).resolve().parents[1]
 SHIPPED = default_model_path()
+STEP = 0.6  # learned step in sqrt(d/g) for feature tests (any value in the shipped model's range)
 
 
 def jittered_block(n, spacing, rng, jitter=0.1):
@@ -83,9 +84,9 @@ def test_features_are_translation_invariant():
     v = rng.normal(0, 0.5, x.shape)
     units = features.Units(d, [0, 0, -9.81])
     wall = floor_boundary(d)
-    a = features.build_graph(x, v, 0.5 * v, wall, units, 2.0)
+    a = features.build_graph(x, v, 0.5 * v, wall, units, 2.0, step_froude=STEP)
     shift = np.array([3.7, -12.25, 0.4])
-    b = features.build_graph(x + shift, v, 0.5 * v, moved(wall, shift), units, 2.0)
+    b = features.build_graph(x + shift, v, 0.5 * v, moved(wall, shift), units, 2.0, step_froude=STEP)
     np.testing.assert_allclose(a.node_features, b.node_features, atol=1e-5)
     for ra, rb in zip(sorted_rows(a), sorted_rows(b)):
         np.testing.assert_allclose(ra, rb, atol=1e-5)
@@ -99,9 +100,9 @@ def test_features_are_permutation_equivariant():
     x = jittered_block(5, d, rng)
     v = rng.normal(0, 0.5, x.shape)
     units = features.Units(d, [0, 0, -9.81])
-    a = features.build_graph(x, v, v, floor_boundary(d), units, 2.0)
+    a = features.build_graph(x, v, v, floor_boundary(d), units, 2.0, step_froude=STEP)
     order = rng.permutation(len(x))
-    b = features.build_graph(x[order], v[order], v[order], floor_boundary(d), units, 2.0)
+    b = features.build_graph(x[order], v[order], v[order], floor_boundary(d), units, 2.0, step_froude=STEP)
     np.testing.assert_allclose(a.node_features[order], b.node_features, atol=1e-6)
     rows_a, rows_b = sorted_rows(a), sorted_rows(b)
     for new, old in enumerate(order):
@@ -119,15 +120,84 @@ def test_features_are_invariant_to_rotating_the_scene_with_gravity():
     angle = 0.7
     rotation = np.array([[1, 0, 0], [0, np.cos(angle), -np.sin(angle)], [0, np.sin(angle), np.cos(angle)]])
     gravity = np.array([0, 0, -9.81])
-    a = features.build_graph(x, v, v, wall, features.Units(d, gravity), 2.0)
+    a = features.build_graph(x, v, v, wall, features.Units(d, gravity), 2.0, step_froude=STEP)
     units_b = features.Units(d, rotation @ gravity)
-    b = features.build_graph(x @ rotation.T, v @ rotation.T, v @ rotation.T, moved(wall, 0.0, rotation), units_b, 2.0)
+    b = features.build_graph(x @ rotation.T, v @ rotation.T, v @ rotation.T, moved(wall, 0.0, rotation), units_b, 2.0, step_froude=STEP)
     np.testing.assert_allclose(units_b.rotation @ (rotation @ gravity) / 9.81, [0, 0, -1], atol=1e-12)
     np.testing.assert_allclose(units_b.rotation @ units_b.rotation.T, np.eye(3), atol=1e-12)
     # Rotation about the gravity axis is a free gauge; compare rotation-invariant parts.
     np.testing.assert_allclose(a.node_features[:, 6], b.node_features[:, 6], atol=1e-5)
     np.testing.assert_allclose(np.linalg.norm(a.node_features[:, :3], axis=1), np.linalg.norm(b.node_features[:, :3], axis=1), atol=1e-5)
     np.testing.assert_allclose(a.node_features[:, 2], b.node_features[:, 2], atol=1e-5)  # along gravity
+
+
+def test_boundary_tables_are_kept_for_exactly_the_particles_near_a_boundary():
+    """Compact boundary rows (features.compact_boundary_rows): brute-force oracle by cdist. A
+    particle is listed iff some boundary particle is within R; its slot points at its row, whose
+    real entries are exactly those boundary particles; every other slot points past the end.
+    With no boundary in reach, the arrays hold one all-padding row."""
+    rng = np.random.default_rng(12)
+    d = 0.02
+    x = jittered_block(6, d, rng, 0.2)
+    wall = floor_boundary(d)
+    units = features.Units(d, [0, 0, -9.81])
+    graph = features.build_graph(x, np.zeros_like(x), np.zeros_like(x), wall, units, 2.0, step_froude=STEP)
+    near = cdist(x, wall.positions) < 2.0 * d
+    expected_rows = np.flatnonzero(near.any(axis=1))
+    assert 0 < len(expected_rows) < len(x)
+    np.testing.assert_array_equal(graph.boundary_rows, expected_rows)
+    nb = len(expected_rows)
+    assert graph.boundary_features.shape[0] == graph.boundary_mask.shape[0] == nb
+    for slot, i in enumerate(expected_rows):
+        assert graph.boundary_slot[i] == slot
+        real = graph.boundary_index[slot][graph.boundary_mask[slot] > 0]
+        assert set(real.tolist()) == set(np.flatnonzero(near[i]).tolist())
+    others = np.setdiff1d(np.arange(len(x)), expected_rows)
+    assert (graph.boundary_slot[others] == nb).all()
+    far = features.build_graph(x + [0, 0, 1.0], np.zeros_like(x), np.zeros_like(x), wall, units, 2.0, step_froude=STEP)
+    assert far.boundary_features.shape[0] == 1 and not far.boundary_mask.any()
+    assert (far.boundary_slot == 1).all()
+    np.testing.assert_allclose(far.node_features[:, 7], STEP)
+
+
+def test_step_plan_takes_the_fewest_steps_inside_the_trained_range():
+    """n = ceil(T / step_max) equal steps per frame interval T: dt <= step_max always, and
+    dt >= step_max / 2 once T >= step_max (arithmetic of the rule; checked over a sweep)."""
+    solver = LearnedSolver(relax_iterations=0)
+    units = features.Units(0.025, [0, 0, -9.81])
+    step_max = solver.contract["step_froude"] * units.time
+    assert solver.step_plan(0.5 * step_max, units) == (1, pytest.approx(0.5 * step_max))
+    assert solver.step_plan(step_max, units) == (1, pytest.approx(step_max))
+    assert solver.step_plan(1.01 * step_max, units) == (2, pytest.approx(0.505 * step_max))
+    assert solver.step_plan(0.0, units) == (0, 0.0)
+    for interval in np.linspace(step_max, 9.7 * step_max, 200):
+        count, dt = solver.step_plan(interval, units)
+        assert count * dt == pytest.approx(interval)
+        assert 0.5 * step_max <= dt <= step_max * (1 + 1e-9)
+        assert count == 1 or interval / (count - 1) > step_max
+
+
+def test_time_estimate_counts_the_learned_steps_the_bake_takes(tmp_path):
+    """engine.estimate's learned steps per frame equal the steps the learned bake reports per
+    frame (cache manifest), at two spacings that need one and two steps per frame."""
+    from engine.bake import bake
+    from engine.cache import open_cache
+    from engine.estimate import estimate_scene
+    from engine.scene import load_scene
+
+    counts = []
+    for spacing in (0.025, 0.006):  # a smaller d has a shorter learned step: more steps per frame
+        folder = tmp_path / f"d{spacing}"
+        folder.mkdir()
+        make_small_scene(folder, spacing, frame_end=3)
+        scene = load_scene(folder / "scene.json")
+        estimate = estimate_scene(scene, "learned")
+        bake(folder / "scene.json", "learned", folder / "cache", use_signals=False)
+        reader = open_cache(folder / "cache")
+        baked = {reader.manifest["frames"][str(f)]["substeps"] for f in reader.frames[1:]}
+        assert baked == {estimate.substeps_per_frame}
+        counts.append(estimate.substeps_per_frame)
+    assert counts[0] < counts[1]
 
 
 def test_density_feature_matches_the_independent_sph_sum():
@@ -137,7 +207,7 @@ def test_density_feature_matches_the_independent_sph_sum():
     d = 0.02
     x = jittered_block(6, d, rng, 0.2)
     wall = floor_boundary(d)
-    graph = features.build_graph(x, np.zeros_like(x), np.zeros_like(x), wall, features.Units(d, [0, 0, -9.81]), 2.0)
+    graph = features.build_graph(x, np.zeros_like(x), np.zeros_like(x), wall, features.Units(d, [0, 0, -9.81]), 2.0, step_froude=STEP)
     reference, _ = sph_density(x, d, 1000.0, wall.positions, wall.volumes)
     np.testing.assert_allclose(graph.density_ratio, reference / 1000.0, rtol=1e-9)
 
@@ -211,6 +281,7 @@ def test_unloadable_model_with_matching_checksum_is_a_model_error(tmp_path):
     ("history_length", 5, "history_length"),
     ("format", "something-else", "format is not"),
     ("step_froude", -1, "step_froude"),
+    ("step_froude_min", 50.0, "step_froude_min .* is larger than"),
 ])  # fmt: skip
 def test_mismatched_contract_fields_are_model_errors(tmp_path, key, value, message):
     path = copy_model(tmp_path)
@@ -236,15 +307,14 @@ def test_bad_normalisation_and_invalid_json_are_model_errors(tmp_path):
 # ---------------------------------------------------------------- short rollout of the shipped model
 
 
-def make_small_scene(folder):
+def make_small_scene(folder, d=0.025, frame_end=13):
     from engine import mesh_io
     from engine.scene import save_scene
 
-    d = 0.025
     mesh = lambda vt: {"vertices": vt[0], "triangles": vt[1]}  # noqa: E731
     scene = {
         "format": "splashdraft-scene", "version": 1, "name": "learned_rollout_test", "fps": 24,
-        "frame_start": 1, "frame_end": 13, "particle_spacing": d,
+        "frame_start": 1, "frame_end": frame_end, "particle_spacing": d,
         "bounds": {"min": [-0.5 * d] * 3, "max": [15.5 * d, 9.5 * d, 19.5 * d]},
         "emitters": [{"name": "block", "type": "fill",
                       "mesh": mesh(mesh_io.box_mesh(np.array([0.0, 0.0, 3.0]) * d, np.array([7.0, 9.0, 12.0]) * d))}],
@@ -474,7 +544,7 @@ def test_halo_nodes_match_a_breadth_first_search_and_tiles_reproduce_the_whole_g
     d = 0.025
     x = jittered_block(12, d, rng, 0.2)
     v = rng.normal(0, 0.3, x.shape)
-    graph = features.build_graph(x, v, v, floor_boundary(d, n=14), features.Units(d, [0, 0, -9.81]), 2.0)
+    graph = features.build_graph(x, v, v, floor_boundary(d, n=14), features.Units(d, [0, 0, -9.81]), 2.0, step_froude=STEP)
     receivers = np.arange(100, 400)
     nodes = halo_nodes(receivers, graph.neighbour_index, 2)
     expected, frontier = set(receivers.tolist()), set(receivers.tolist())

@@ -20,7 +20,7 @@ torch = pytest.importorskip("torch")
 from engine.cache import CacheWriter  # noqa: E402
 from engine.learned import features  # noqa: E402
 from engine.learned.contract import load_contract  # noqa: E402
-from engine.learned.runtime import CoreRunner  # noqa: E402
+from engine.learned.runtime import CoreRunner, subgraph  # noqa: E402
 from engine.scene import save_scene  # noqa: E402
 from engine.world import build_world  # noqa: E402
 from training import dataset, scenes  # noqa: E402
@@ -68,6 +68,14 @@ def free_fall_data(tmp_path_factory):
     return root
 
 
+def unit_stats():
+    sizes = {"node": features.NODE_FEATURES, "edge": features.EDGE_FEATURES, "boundary": features.BOUNDARY_FEATURES,
+             "target": 3}
+    stats = {f"{k}_mean": np.zeros(n) for k, n in sizes.items()}
+    stats.update({f"{k}_std": np.ones(n) for k, n in sizes.items()})
+    return stats
+
+
 CONFIG = {"radius_spacings": 2.0, "density_support_spacings": 2.0, "max_neighbours": 48, "max_boundary_neighbours": 32}
 
 
@@ -86,6 +94,50 @@ def test_free_fall_targets_are_zero_non_gravity_acceleration(free_fall_data):
     assert graph.node_features[:, 2].mean() == pytest.approx(expected_vz, rel=1e-3)
 
 
+def test_longer_steps_read_frames_further_apart_and_still_see_free_fall(free_fall_data):
+    """A learned step of 2 frames: velocities are finite differences over 2 frames (the
+    central-difference value at mid-interval, exact for a quadratic), the non-gravity target
+    is still 0, and the step column is 2 frame intervals in sqrt(d/g)."""
+    _, shots = dataset.load_shots(free_fall_data)
+    shot = shots[0]
+    graph, target, mask = dataset.make_sample(shot, 4, CONFIG, stride=2)
+    assert mask.all() and np.abs(target).max() < 0.02
+    t = shot.times[4]
+    expected_vz = -9.81 * (t - 1.0 / shot.scene.fps) / shot.units.velocity
+    assert graph.node_features[:, 2].mean() == pytest.approx(expected_vz, rel=1e-3)
+    np.testing.assert_allclose(graph.node_features[:, 7], 2.0 / shot.scene.fps / shot.units.time, rtol=1e-6)
+    assert shot.sample_indices(2) == [4, 5]  # frames 0..7: k - 4 >= 0 and k + 2 <= 7
+
+
+def test_compact_boundary_rows_give_the_same_output_as_every_row(free_fall_data):
+    """The core computes wall messages only for rows with boundary neighbours and gathers them
+    back; giving it every row instead (the layout before compaction, rows without neighbours
+    all padding) must give the same output (float32 rounding only)."""
+    torch.manual_seed(2)
+    model = GraphCore(latent=16, rounds=2)
+    _, shots = dataset.load_shots(free_fall_data)
+    rng = np.random.default_rng(3)
+    inputs = features.normalise(dataset.make_sample(shots[0], 3, CONFIG)[0], unit_stats())
+    n, nb = len(inputs["node_features"]), 30
+    kb = 5
+    inputs["boundary_rows"] = np.sort(rng.choice(n, nb, replace=False)).astype(np.int64)
+    inputs["boundary_slot"] = np.full(n, nb, np.int64)
+    inputs["boundary_slot"][inputs["boundary_rows"]] = np.arange(nb)
+    inputs["boundary_features"] = rng.standard_normal((nb, kb, features.BOUNDARY_FEATURES)).astype(np.float32)
+    inputs["boundary_mask"] = (rng.uniform(size=(nb, kb)) < 0.7).astype(np.float32)
+    every = dict(inputs)
+    every["boundary_rows"] = np.arange(n, dtype=np.int64)
+    every["boundary_slot"] = np.arange(n, dtype=np.int64)
+    every["boundary_features"] = np.zeros((n, kb, features.BOUNDARY_FEATURES), np.float32)
+    every["boundary_features"][inputs["boundary_rows"]] = inputs["boundary_features"]
+    every["boundary_mask"] = np.zeros((n, kb), np.float32)
+    every["boundary_mask"][inputs["boundary_rows"]] = inputs["boundary_mask"]
+    with torch.no_grad():
+        compact = model(*as_tensors(inputs)).numpy()
+        full = model(*as_tensors(every)).numpy()
+    np.testing.assert_allclose(compact, full, atol=1e-5 * np.abs(full).max())
+
+
 def test_onnx_export_matches_pytorch_on_a_random_model(tmp_path, free_fall_data):
     """Export criterion: onnxruntime output equals PyTorch to 1e-4 relative, with a different
     particle and neighbour count than at export (dynamic axes)."""
@@ -93,11 +145,8 @@ def test_onnx_export_matches_pytorch_on_a_random_model(tmp_path, free_fall_data)
     model = GraphCore(latent=16, rounds=2)
     _, shots = dataset.load_shots(free_fall_data)
     graph, _, _ = dataset.make_sample(shots[0], 3, CONFIG)
-    stats = {k: np.zeros(n) for k, n in (("node_mean", 7), ("edge_mean", 7), ("boundary_mean", 11), ("target_mean", 3))}
-    stats.update({k: np.ones(n) for k, n in (("node_std", 7), ("edge_std", 7), ("boundary_std", 11), ("target_std", 3))})
-    inputs = features.normalise(graph, stats)
-    small = {k: v[:40] for k, v in inputs.items()}
-    small["neighbour_index"] = np.minimum(small["neighbour_index"], 39)
+    inputs = features.normalise(graph, unit_stats())
+    small = subgraph(inputs, np.arange(40))
     export_onnx(model, tmp_path / "m.onnx", small)
     rng = np.random.default_rng(0)
     inputs["node_features"] = rng.standard_normal(inputs["node_features"].shape).astype(np.float32)
@@ -128,3 +177,29 @@ def test_train_checkpoints_resumes_and_exports_a_checked_contract(tmp_path, free
     contract, onnx_path = load_contract(tmp_path / "models" / "tiny.onnx")
     assert contract["rounds"] == 2 and onnx_path.name == "tiny.onnx"
     assert contract["step_froude"] == pytest.approx(scenes.frame_rate_for_step(SPACING)[1])
+    assert contract["step_froude_min"] == contract["step_froude"]
+
+
+def test_strides_set_the_trained_step_range_in_the_contract(tmp_path, free_fall_data):
+    """--strides 1 2: the contract records the range [1, 2] frame intervals in sqrt(d/g)."""
+    overrides = {"iterations": 2, "latent": 8, "rounds": 1, "checkpoint_every": 2, "validate_every": 2,
+                 "statistics_samples": 4, "validation_shots": 1, "strides": [2, 1]}
+    summary = train(free_fall_data, tmp_path / "run", overrides=overrides, name="tiny", log=lambda m: None)
+    contract, _ = load_contract(summary["onnx"])
+    frame = scenes.frame_rate_for_step(SPACING)[1]
+    assert contract["step_froude"] == pytest.approx(2 * frame)
+    assert contract["step_froude_min"] == pytest.approx(frame)
+    assert contract["training"]["config"]["strides"] == [1, 2]
+
+
+def test_generate_refuses_to_mix_frame_rates_in_one_folder(tmp_path):
+    """A data folder holds one frame interval: asking for another names both fps and the fix,
+    before any baking (the shots' fps follow from frame_rate_for_step)."""
+    from engine.errors import SplashdraftError
+    from training.generate import generate
+
+    fps_half, _ = scenes.frame_rate_for_step(step_froude=0.5)
+    fps_quarter, _ = scenes.frame_rate_for_step(step_froude=0.25)
+    (tmp_path / "data_manifest.json").write_text(json.dumps({"fps": fps_half, "shots": [{"name": "shot_0000"}]}))
+    with pytest.raises(SplashdraftError, match=rf"{fps_half} fps.*--frame-step 0.25 asks for {fps_quarter} fps"):
+        generate(tmp_path, count=1, frame_step=0.25, log=lambda m: None)

@@ -135,6 +135,24 @@ def test_static_box_collider_pushes_particles_out():
     assert out.velocities[0, 2] >= 0.0
 
 
+def test_a_collider_resting_on_the_floor_never_keeps_a_particle_inside():
+    """A box standing on the floor wall: its bottom face is no exit. A particle deep in the box
+    near its bottom, and one that overshot below the floor under the box (a long learned step),
+    both end outside the box (winding-number test, Jacobson et al. 2013, "Robust Inside-Outside
+    Segmentation using Generalized Winding Numbers", ACM TOG 32(4)) and inside the bounds."""
+    from engine.geometry import inside_mesh
+
+    v, t = box_mesh([0.4, 0.4, 0.0], [0.6, 0.6, 0.3])
+    collider = {"name": "rock", "mesh": _inline(v, t), "motion": "static"}
+    world = build_world(_scene(colliders=[collider]))
+    positions = np.array([[0.47, 0.52, 0.01],     # inside, nearest face is the bottom
+                          [0.46, 0.55, -0.04]])   # below the floor, under the box
+    state = State(time=0.0, positions=positions, velocities=np.zeros((2, 3)), ids=np.arange(2), next_id=2)
+    out = world.enforce_bounds(state)
+    assert not inside_mesh(out.positions, np.asarray(v, float), np.asarray(t)).any(), out.positions
+    assert np.all(out.positions >= world.lower + 0.99 * world.contact_margin)
+
+
 def test_rigid_collider_motion_interpolates_between_frames():
     """Translation blends linearly between frames; a 90-degree turn over one frame gives an
     orthonormal matrix with det 1 half-way (a rotation, not a squashed blend)."""

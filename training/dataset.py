@@ -1,7 +1,10 @@
 """Training samples from baked shots: id-aligned frame triples -> core inputs and targets.
 
-A shot is a cache baked at one frame per learned step (training/generate.py).
-For frame t (with frames t-2, t-1, t+1 present) and the particles of frame t:
+A shot is a cache of frames a fixed interval apart (training/generate.py). A
+learned step spans ``stride`` s frames, dt = s * frame interval (the step is a
+node feature, so one model learns several). For 'now' = frame t (with frames
+t-2s, t-s, t+s present) and the particles of frame t, with t +- 1 meaning
++- s frames below:
 
 - v_t = (x_t - x_{t-1}) / dt where the particle exists at t-1, else the cached velocity;
 - v_{t-1} = (x_{t-1} - x_{t-2}) / dt where it exists at t-2 and t-1, else v_t;
@@ -57,9 +60,9 @@ class Shot:
             return self._boundary
         return self.world.boundary_at(self.times[k])
 
-    def sample_indices(self):
-        """Frame positions k usable as 'now' (k-2 and k+1 exist, and frame k has particles)."""
-        return [k for k in range(2, len(self.frames) - 1) if len(self.ids[k])]
+    def sample_indices(self, stride=1):
+        """Frame positions k usable as 'now' (k-2s and k+s exist, and frame k has particles)."""
+        return [k for k in range(2 * stride, len(self.frames) - stride) if len(self.ids[k])]
 
     def _lookup(self, k, ids):
         """Index into frame k of each id (or -1)."""
@@ -69,15 +72,16 @@ class Shot:
         found = (len(frame_ids) > 0) & (frame_ids[where] == ids) if len(frame_ids) else np.zeros(len(ids), bool)
         return np.where(found, where, -1)
 
-    def triple(self, k):
-        """Clean arrays for 'now' = frame position k (world units).
+    def triple(self, k, stride=1):
+        """Clean arrays for 'now' = frame position k and a step of ``stride`` frames (world units).
 
         Returns dict: positions (N, 3), velocity (N, 3), previous_velocity (N, 3),
         next_velocity (N, 3), has_target (N,) bool.
         """
         ids, x, v_cached = self.ids[k], self.positions[k], self.velocities[k]
-        dt = self.dt
-        i1, i2, i_next = self._lookup(k - 1, ids), self._lookup(k - 2, ids), self._lookup(k + 1, ids)
+        s = stride
+        dt = self.dt * s
+        i1, i2, i_next = self._lookup(k - s, ids), self._lookup(k - 2 * s, ids), self._lookup(k + s, ids)
         has1, has2, has_next = i1 >= 0, i2 >= 0, i_next >= 0
 
         def gather(j, where, found, fallback):
@@ -85,11 +89,11 @@ class Shot:
                 return fallback
             return np.where(found[:, None], self.positions[j][np.maximum(where, 0)], fallback)
 
-        x1 = gather(k - 1, i1, has1, x)
+        x1 = gather(k - s, i1, has1, x)
         v = np.where(has1[:, None], (x - x1) / dt, v_cached)
-        x2 = gather(k - 2, i2, has2, x1)
+        x2 = gather(k - 2 * s, i2, has2, x1)
         v_prev = np.where((has1 & has2)[:, None], (x1 - x2) / dt, v)
-        x_next = gather(k + 1, i_next, has_next, x)
+        x_next = gather(k + s, i_next, has_next, x)
         v_next = (x_next - x) / dt
         return {"positions": x, "velocity": v, "previous_velocity": v_prev, "next_velocity": v_next,
                 "has_target": has1 & has_next}
@@ -116,11 +120,11 @@ def load_shots(data_dir, names=None):
     return manifest, shots
 
 
-def make_sample(shot, k, contract_like, rng=None, noise_std=0.0):
+def make_sample(shot, k, contract_like, rng=None, noise_std=0.0, stride=1):
     """Core inputs (unnormalised Graph) and target for one frame, with optional noise.
 
     Args:
-        shot: Shot. k: frame position ("now").
+        shot: Shot. k: frame position ("now"). stride: frames per learned step.
         contract_like: dict with radius_spacings, density_support_spacings,
             max_neighbours, max_boundary_neighbours.
         rng: numpy Generator for the noise; noise_std: sigma in sqrt(g d).
@@ -128,8 +132,8 @@ def make_sample(shot, k, contract_like, rng=None, noise_std=0.0):
     Returns:
         (Graph, target (N, 3) float32 non-gravity acceleration in g (gravity frame), mask (N,) bool).
     """
-    arrays = shot.triple(k)
-    units, dt = shot.units, shot.dt
+    arrays = shot.triple(k, stride)
+    units, dt = shot.units, shot.dt * stride
     x, v, v_prev = arrays["positions"], arrays["velocity"], arrays["previous_velocity"]
     if noise_std > 0 and rng is not None:
         scale = noise_std * units.velocity / np.sqrt(2.0)
@@ -142,7 +146,7 @@ def make_sample(shot, k, contract_like, rng=None, noise_std=0.0):
     graph = features.build_graph(
         x, v, v_prev, shot.boundary(k), units, contract_like["radius_spacings"],
         contract_like["density_support_spacings"], contract_like["max_neighbours"],
-        contract_like["max_boundary_neighbours"],
+        contract_like["max_boundary_neighbours"], step_froude=dt / units.time,
     )  # fmt: skip
     target = features.target_from_accelerations(accelerations, units).astype(np.float32)
     return graph, target, arrays["has_target"]
@@ -150,11 +154,13 @@ def make_sample(shot, k, contract_like, rng=None, noise_std=0.0):
 
 def batch_inputs(samples):
     """Concatenate several (normalised inputs, target, mask) samples into one disjoint graph."""
-    keys = ("node_features", "neighbour_index", "neighbour_mask", "edge_features", "boundary_features", "boundary_mask")
+    keys = ("node_features", "neighbour_index", "neighbour_mask", "edge_features", "boundary_rows", "boundary_slot",
+            "boundary_features", "boundary_mask")
     width = max(s[0]["neighbour_index"].shape[1] for s in samples)
     bwidth = max(s[0]["boundary_mask"].shape[1] for s in samples)
+    total_rows = sum(len(s[0]["boundary_rows"]) for s in samples)
     out = {key: [] for key in keys}
-    offset = 0
+    offset = boffset = 0
     for inputs, _, _ in samples:
         n, k = inputs["neighbour_index"].shape
         kb = inputs["boundary_mask"].shape[1]
@@ -164,9 +170,14 @@ def batch_inputs(samples):
         out["neighbour_index"].append(index)
         out["neighbour_mask"].append(np.pad(inputs["neighbour_mask"], ((0, 0), (0, width - k))))
         out["edge_features"].append(np.pad(inputs["edge_features"], ((0, 0), (0, width - k), (0, 0))))
+        nb = len(inputs["boundary_rows"])
+        out["boundary_rows"].append(inputs["boundary_rows"] + offset)
+        slot = inputs["boundary_slot"]
+        out["boundary_slot"].append(np.where(slot < nb, slot + boffset, total_rows))
         out["boundary_features"].append(np.pad(inputs["boundary_features"], ((0, 0), (0, bwidth - kb), (0, 0))))
         out["boundary_mask"].append(np.pad(inputs["boundary_mask"], ((0, 0), (0, bwidth - kb))))
         offset += n
+        boffset += nb
     merged = {key: np.concatenate(values) for key, values in out.items()}
     target = np.concatenate([s[1] for s in samples])
     mask = np.concatenate([s[2] for s in samples])

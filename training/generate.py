@@ -7,8 +7,9 @@ Writes, under ``--out``:
     shot_0000/scene.json        the shot's scene (meshes beside it in shot_0000/meshes/)
     shot_0000/cache/            its bake in the standard cache layout (engine.bake)
 
-Shots are baked at one frame per learned step (training/scenes.py picks the
-fps), so training reads consecutive frames as consecutive steps.
+Training shots are baked at one frame per ``--frame-step`` sqrt(d/g)
+(training/scenes.py picks the fps); the training takes learned steps of one
+or more frames (``python -m training.train --strides``).
 
 Resumable: a shot whose cache is complete is skipped; a shot with a
 checkpoint continues from it (``engine.bake`` with ``resume``); ``--resume``
@@ -37,11 +38,11 @@ from . import scenes
 DATA_FORMAT = "splashdraft-training-data"
 
 
-def shot_plan(heldout, count):
+def shot_plan(heldout, count, frame_step=scenes.TARGET_STEP_FROUDE):
     """[(name, scene dict)] of the shots to generate."""
     if heldout:
         return [(f"heldout_{kind}", lambda kind=kind: scenes.heldout_scene(kind)) for kind in scenes.HELDOUT_KINDS]
-    return [(f"shot_{i:04d}", lambda i=i: scenes.training_scene(i)) for i in range(count)]
+    return [(f"shot_{i:04d}", lambda i=i: scenes.training_scene(i, frame_step=frame_step)) for i in range(count)]
 
 
 def _cache_state(cache_dir):
@@ -74,8 +75,8 @@ def _summary(name, folder, scene_dict):
     }
 
 
-def _write_manifest(out, kind, shots, seed):
-    fps, step = scenes.frame_rate_for_step()
+def _write_manifest(out, kind, shots, seed, frame_step=scenes.TARGET_STEP_FROUDE):
+    fps, step = scenes.frame_rate_for_step(step_froude=frame_step)
     manifest = {
         "format": DATA_FORMAT,
         "version": 1,
@@ -84,25 +85,39 @@ def _write_manifest(out, kind, shots, seed):
         "family_seed": seed,
         "particle_spacing": scenes.TRAINING_SPACING,
         "fps": fps,
-        "step_froude": step,
+        "frame_froude": step,
+        "step_froude": step,  # the frame interval again, under its older name
         "reference_solver": "sph (DFSPH, engine/sph.py)",
         "shots": shots,
     }
     write_atomic(out / "data_manifest.json", (json.dumps(manifest, indent=1) + "\n").encode())
 
 
-def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=print):
-    """Generate (or finish) the shots; returns the list of shot summaries."""
+def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=print,
+             frame_step=scenes.TARGET_STEP_FROUDE):
+    """Generate (or finish) the shots; returns the list of shot summaries.
+
+    ``frame_step`` (sqrt(d/g)) sets the training shots' fps; held-out shots keep the default.
+    """
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    plan = shot_plan(heldout, count)
+    if heldout:
+        frame_step = scenes.TARGET_STEP_FROUDE
+    plan = shot_plan(heldout, count, frame_step)
     summaries = {}
     existing = out / "data_manifest.json"
     if existing.exists():
         try:
-            summaries = {s["name"]: s for s in json.loads(existing.read_text())["shots"]}
+            previous = json.loads(existing.read_text())
+            summaries = {s["name"]: s for s in previous["shots"]}
         except (ValueError, KeyError):
-            summaries = {}
+            previous, summaries = {}, {}
+        wanted = scenes.frame_rate_for_step(step_froude=frame_step)[0]
+        if summaries and previous.get("fps") not in (None, wanted):
+            raise SplashdraftError(
+                f"{existing}: this folder holds shots at {previous['fps']} fps, --frame-step {frame_step} asks for "
+                f"{wanted} fps; use another --out folder or the same --frame-step"
+            )
     index, total = shard
     for number, (name, make) in enumerate(plan):
         if number % total != index:
@@ -132,10 +147,10 @@ def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=prin
                     summaries.setdefault(shot["name"], shot)
             except (ValueError, KeyError):
                 pass
-        _write_manifest(out, "heldout" if heldout else "train",
-                        [summaries[k] for k in sorted(summaries)], scenes.HELDOUT_SEED if heldout else scenes.TRAIN_SEED)
+        _write_manifest(out, "heldout" if heldout else "train", [summaries[k] for k in sorted(summaries)],
+                        scenes.HELDOUT_SEED if heldout else scenes.TRAIN_SEED, frame_step)
     _write_manifest(out, "heldout" if heldout else "train", [summaries[k] for k in sorted(summaries)],
-                    scenes.HELDOUT_SEED if heldout else scenes.TRAIN_SEED)
+                    scenes.HELDOUT_SEED if heldout else scenes.TRAIN_SEED, frame_step)
     return [summaries[k] for k in sorted(summaries)]
 
 
@@ -150,6 +165,9 @@ def main(argv=None):
     parser.add_argument("--resume", action="store_true", help="Continue: finished shots are skipped, partial bakes resumed "
                         "(always on; accepted for clarity).")
     parser.add_argument("--shard", default="0/1", help="I/N: bake only shots k with k mod N == I (default 0/1).")
+    parser.add_argument("--frame-step", type=float, default=scenes.TARGET_STEP_FROUDE,
+                        help="Frame interval of the training shots in sqrt(d/g) (default %(default)s; the training "
+                        "takes learned steps of one or more frames).")
     parser.add_argument("--duration", type=float, default=None,
                         help="Override the shot length in seconds (default 2 s training, 10 s held-out).")
     args = parser.parse_args(argv)
@@ -164,7 +182,7 @@ def main(argv=None):
     started = time.monotonic()
     try:
         shots = generate(out, args.count, args.heldout, (index, total), args.duration,
-                         log=lambda m: print(m, file=sys.stderr, flush=True))
+                         log=lambda m: print(m, file=sys.stderr, flush=True), frame_step=args.frame_step)
     except SplashdraftError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return exc.exit_code

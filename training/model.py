@@ -6,12 +6,16 @@ arXiv:1806.01261; Sanchez-Gonzalez et al. 2020, "Learning to Simulate Complex
 Physics with Graph Networks", ICML). One network handles everything -- free
 flight, pressure, walls and colliders -- there are no separate learned parts.
 
-- Encoder: node features (7) -> latent h (L) by a 2-layer MLP.
+- Encoder: node features (8, the learned step among them) -> latent h (L) by a 2-layer MLP.
 - R rounds, unshared weights. Each round sums messages from fluid neighbours
   and from boundary particles over the dense padded tables:
       m_i  = W2 * (1/K0) sum_j mask_ij relu(A h_i + B h_j + C e_ij + b) + b2 * deg_i
       mb_i = W2b * (1/K0) sum_b maskb_ib relu(Ab h_i + Cb f_ib + bb) + b2b * degb_i
       h_i <- h_i + LayerNorm(MLP([h_i, m_i, mb_i]))
+  mb_i is computed only for the Nb particles that have boundary neighbours
+  (``boundary_rows``) and gathered back to all N with ``boundary_slot``
+  (an appended zero row serves the rest): in a splash most particles touch no
+  wall, and the boundary branch was 32 of the 80 padded slots per particle.
   The first edge layer is factorised (A h_i and B h_j are node-level products,
   gathered afterwards) and the second, linear, edge layer is applied after the
   sum, as measured fastest on this CPU (shared/docs/learned-surrogate.md).
@@ -51,15 +55,17 @@ class Round(nn.Module):
         self.update = _mlp(3 * latent, latent, latent)
         self.norm = nn.LayerNorm(latent)
 
-    def forward(self, h, neighbour_index, neighbour_mask, edge_features, boundary_features, boundary_mask):
+    def forward(self, h, neighbour_index, neighbour_mask, edge_features, boundary_rows, boundary_slot,
+                boundary_features, boundary_mask):
         pre = self.receiver(h).unsqueeze(1) + self.sender(h)[neighbour_index] + self.edge(edge_features)
         summed = (torch.relu(pre) * neighbour_mask.unsqueeze(-1)).sum(dim=1) * NEIGHBOUR_SCALE
         degree = neighbour_mask.sum(dim=1, keepdim=True) * NEIGHBOUR_SCALE
         fluid = summed @ self.message.weight.t() + degree * self.message.bias
-        bpre = self.boundary_receiver(h).unsqueeze(1) + self.boundary_edge(boundary_features)
+        bpre = self.boundary_receiver(h[boundary_rows]).unsqueeze(1) + self.boundary_edge(boundary_features)
         bsummed = (torch.relu(bpre) * boundary_mask.unsqueeze(-1)).sum(dim=1) * NEIGHBOUR_SCALE
         bdegree = boundary_mask.sum(dim=1, keepdim=True) * NEIGHBOUR_SCALE
         wall = bsummed @ self.boundary_message.weight.t() + bdegree * self.boundary_message.bias
+        wall = torch.cat([wall, torch.zeros(1, wall.shape[1], dtype=wall.dtype)])[boundary_slot]
         return h + self.norm(self.update(torch.cat([h, fluid, wall], dim=1)))
 
 
@@ -77,15 +83,17 @@ class GraphCore(nn.Module):
         )
         self.decoder = _mlp(latent, latent, 3)
 
-    def forward(self, node_features, neighbour_index, neighbour_mask, edge_features, boundary_features, boundary_mask):
+    def forward(self, node_features, neighbour_index, neighbour_mask, edge_features, boundary_rows, boundary_slot,
+                boundary_features, boundary_mask):
         h = self.encoder_norm(self.encoder(node_features))
         for block in self.blocks:
-            h = block(h, neighbour_index, neighbour_mask, edge_features, boundary_features, boundary_mask)
+            h = block(h, neighbour_index, neighbour_mask, edge_features, boundary_rows, boundary_slot,
+                      boundary_features, boundary_mask)
         return self.decoder(h)
 
 
-INPUT_ORDER = ("node_features", "neighbour_index", "neighbour_mask", "edge_features", "boundary_features",
-               "boundary_mask")
+INPUT_ORDER = ("node_features", "neighbour_index", "neighbour_mask", "edge_features", "boundary_rows",
+               "boundary_slot", "boundary_features", "boundary_mask")
 
 
 def as_tensors(inputs):
@@ -94,7 +102,7 @@ def as_tensors(inputs):
 
 
 def export_onnx(model, path, example_inputs, opset=17):
-    """Export ``model`` to ONNX with dynamic N, K, Kb (legacy TorchScript exporter, no scatter ops).
+    """Export ``model`` to ONNX with dynamic N, K, Nb, Kb (legacy TorchScript exporter, no scatter ops).
 
     Args:
         model: GraphCore (put in eval mode here).
@@ -107,8 +115,10 @@ def export_onnx(model, path, example_inputs, opset=17):
         "neighbour_index": {0: "N", 1: "K"},
         "neighbour_mask": {0: "N", 1: "K"},
         "edge_features": {0: "N", 1: "K"},
-        "boundary_features": {0: "N", 1: "Kb"},
-        "boundary_mask": {0: "N", 1: "Kb"},
+        "boundary_rows": {0: "Nb"},
+        "boundary_slot": {0: "N"},
+        "boundary_features": {0: "Nb", 1: "Kb"},
+        "boundary_mask": {0: "Nb", 1: "Kb"},
         "non_gravity_acceleration": {0: "N"},
     }
     import warnings

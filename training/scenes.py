@@ -3,8 +3,9 @@
 Every shot is drawn from ``numpy.random.default_rng([family_seed, index])``,
 so a shot is fully determined by (kind, index) and the seed recorded in the
 data manifest. Sizes are in particle spacings d and converted to metres with
-``TRAINING_SPACING``; the fps is chosen so one frame is one learned step
-(``frame_rate_for_step``), which the training reads frame to frame.
+``TRAINING_SPACING``; the fps is chosen so one frame lasts ``frame_step``
+sqrt(d/g) (``frame_rate_for_step``); the training takes learned steps of one
+or more frames (training/dataset.py).
 
 Training shots: a tank (walls, open top) with 0-2 static obstacles (boxes,
 spheres, upright cylinders) and 1-3 liquid sources: blocks and balls dropped
@@ -23,7 +24,7 @@ from engine import mesh_io
 
 #: Particle spacing of the generated shots, m.
 TRAINING_SPACING = 0.025
-#: Learned step in Froude time sqrt(d / g); the shot fps follows from it.
+#: Frame interval of the generated shots in Froude time sqrt(d / g) (default; ``--frame-step``).
 TARGET_STEP_FROUDE = 0.5
 GRAVITY = 9.81
 
@@ -32,7 +33,7 @@ HELDOUT_SEED = 77001
 
 
 def frame_rate_for_step(spacing=TRAINING_SPACING, step_froude=TARGET_STEP_FROUDE, gravity=GRAVITY):
-    """Integer fps closest to one frame per learned step, and the exact step in sqrt(d/g) it gives."""
+    """Integer fps closest to one frame per ``step_froude`` sqrt(d/g), and the exact frame interval it gives."""
     tau = math.sqrt(spacing / gravity)
     fps = max(1, int(round(1.0 / (step_froude * tau))))
     return fps, 1.0 / (fps * tau)
@@ -43,8 +44,8 @@ def _mesh(vertices_triangles):
     return {"vertices": np.asarray(vertices, np.float64), "triangles": np.asarray(triangles, np.int64)}
 
 
-def _base(name, seed, size_m, duration_s, spacing):
-    fps, _ = frame_rate_for_step(spacing)
+def _base(name, seed, size_m, duration_s, spacing, frame_step=TARGET_STEP_FROUDE):
+    fps, _ = frame_rate_for_step(spacing, frame_step)
     return {
         "format": "splashdraft-scene", "version": 1, "name": name,
         "fps": fps, "frame_start": 1, "frame_end": 1 + int(round(duration_s * fps)),
@@ -64,12 +65,16 @@ def _overlaps(lower, upper, boxes, gap):
     return any(np.all(lower < b_hi + gap) and np.all(upper > b_lo - gap) for b_lo, b_hi in boxes)
 
 
-def training_scene(index, seed=TRAIN_SEED, spacing=TRAINING_SPACING, duration_s=2.0, max_particles=4500):
-    """Scene dict of training shot ``index`` (inline meshes; see the module docstring)."""
+def training_scene(index, seed=TRAIN_SEED, spacing=TRAINING_SPACING, duration_s=2.0, max_particles=4500,
+                   frame_step=TARGET_STEP_FROUDE):
+    """Scene dict of training shot ``index`` (inline meshes; see the module docstring).
+
+    ``frame_step`` (sqrt(d/g)) sets the fps only; the shot's content does not depend on it.
+    """
     rng = np.random.default_rng([seed, index])
     d = spacing
     size = np.array([rng.uniform(22, 34), rng.uniform(12, 22), rng.uniform(24, 34)])  # in d
-    scene = _base(f"train_{index:04d}", seed * 1000 + index, size * d, duration_s, spacing)
+    scene = _base(f"train_{index:04d}", seed * 1000 + index, size * d, duration_s, spacing, frame_step)
     occupied = []  # (lower, upper) in d of obstacles and fills, to keep them apart
     for k in range(int(rng.integers(0, 3))):
         kind = rng.choice(["box", "sphere", "cylinder"])

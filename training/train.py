@@ -58,6 +58,7 @@ DEFAULTS = {
     "checkpoint_every": 200,
     "validate_every": 200,
     "statistics_samples": 120,
+    "strides": [1],
 }
 
 
@@ -76,17 +77,22 @@ def _split(shots, validation_shots):
     return shots[:-validation_shots], shots[-validation_shots:]
 
 
-def _normalised_sample(shot, k, config, stats, rng, noise):
-    graph, target, mask = dataset.make_sample(shot, k, config, rng, noise)
+def _normalised_sample(shot, k, stride, config, stats, rng, noise):
+    graph, target, mask = dataset.make_sample(shot, k, config, rng, noise, stride)
     inputs = features.normalise(graph, stats)
     target = ((target - stats["target_mean"]) / stats["target_std"]).astype(np.float32)
     return inputs, target, mask
 
 
+def sample_pool(shots, strides):
+    """[(shot, frame position, stride)] of every usable sample."""
+    return [(s, k, stride) for s in shots for stride in strides for k in s.sample_indices(stride)]
+
+
 def compute_statistics(shots, config, rng):
-    pool = [(s, k) for s in shots for k in s.sample_indices()]
+    pool = sample_pool(shots, config["strides"])
     picks = rng.choice(len(pool), size=min(config["statistics_samples"], len(pool)), replace=False)
-    samples = [dataset.make_sample(pool[i][0], pool[i][1], config) for i in picks]
+    samples = [dataset.make_sample(pool[i][0], pool[i][1], config, stride=pool[i][2]) for i in picks]
     return dataset.feature_statistics(samples)
 
 
@@ -130,6 +136,7 @@ def export(model, run, name, sample_inputs, config, stats, training_info):
         name, onnx_path, stats, config["radius_spacings"], config["step_froude"], config["rounds"],
         training=training_info, density_support_spacings=config["density_support_spacings"],
         max_neighbours=config["max_neighbours"], max_boundary_neighbours=config["max_boundary_neighbours"],
+        step_froude_min=config["step_froude_min"],
         architecture={"latent": config["latent"], "rounds": config["rounds"], "kind": "GraphCore (training/model.py)"},
     )  # fmt: skip
     contract_module.write_contract(onnx_path.with_suffix(".json"), contract)
@@ -152,13 +159,23 @@ def train(data, out, resume=False, overrides=None, minutes=None, export_to=None,
         raise SplashdraftError(f"{data}: no baked shots with 4+ frames; run python -m training.generate --out {data}")
     config = dict(DEFAULTS)
     config.update({k: v for k, v in (overrides or {}).items() if v is not None})
-    config["step_froude"] = float(manifest["step_froude"])
+    resumed_config = json.loads(config_path.read_text()) if resume and config_path.exists() else None
+    if resumed_config is not None and (overrides or {}).get("strides") is None:
+        config["strides"] = resumed_config.get("strides", [1])  # --resume without --strides keeps the run's
+    strides = sorted({int(x) for x in config["strides"]})
+    if not strides or strides[0] < 1:
+        raise SplashdraftError(f"--strides {config['strides']}: give whole numbers of frames >= 1, e.g. --strides 1 2 3 4")
+    config["strides"] = strides
+    frame = float(manifest.get("frame_froude", manifest["step_froude"]))
+    config["frame_froude"] = frame
+    config["step_froude"] = frame * strides[-1]
+    config["step_froude_min"] = frame * strides[0]
     config["data"] = str(data)
     config["shots"] = [s.name for s in shots]
-    if resume and config_path.exists():
-        previous = json.loads(config_path.read_text())
+    if resumed_config is not None:
+        previous = resumed_config
         for key in ("latent", "rounds", "radius_spacings", "density_support_spacings", "max_neighbours", "seed",
-                    "step_froude", "shots"):
+                    "step_froude", "step_froude_min", "strides", "shots"):
             if previous.get(key) != config.get(key):
                 raise SplashdraftError(
                     f"{config_path}: --resume with a different {key} ({previous.get(key)!r} -> {config.get(key)!r}); "
@@ -196,10 +213,10 @@ def train(data, out, resume=False, overrides=None, minutes=None, export_to=None,
     validation = []
     if validation_shots:
         vrng = np.random.default_rng(config["seed"] + 1)
-        pool = [(s, k) for s in validation_shots for k in s.sample_indices()]
+        pool = sample_pool(validation_shots, config["strides"])
         for i in vrng.choice(len(pool), size=min(24, len(pool)), replace=False):
-            validation.append(_normalised_sample(pool[i][0], pool[i][1], config, stats, None, 0.0))
-    pool = [(s, k) for s in train_shots for k in s.sample_indices()]
+            validation.append(_normalised_sample(*pool[i], config, stats, None, 0.0))
+    pool = sample_pool(train_shots, config["strides"])
 
     def validation_loss():
         model.eval()
@@ -233,7 +250,7 @@ def train(data, out, resume=False, overrides=None, minutes=None, export_to=None,
         for group in optimiser.param_groups:
             group["lr"] = config["lr"] * decay**iteration
         picks = rng.integers(0, len(pool), config["batch"])
-        samples = [_normalised_sample(pool[i][0], pool[i][1], config, stats, rng, config["noise"]) for i in picks]
+        samples = [_normalised_sample(*pool[i], config, stats, rng, config["noise"]) for i in picks]
         inputs, target, mask = dataset.batch_inputs(samples)
         if not mask.any():
             iteration += 1
@@ -307,15 +324,19 @@ def main(argv=None):
                         help=f"Support of the density feature in spacings (default {DEFAULTS['density_support_spacings']}).")
     parser.add_argument("--max-neighbours", dest="max_neighbours", type=int,
                         help=f"Fluid neighbours kept per particle (default {DEFAULTS['max_neighbours']}).")
+    parser.add_argument("--strides", type=int, nargs="+",
+                        help="Learned steps to train, in frames of the data (default 1; e.g. 1 2 3 4). The step is "
+                        "a node feature; the model's trained range is recorded in its contract.")
     parser.add_argument("--noise", type=float, help=f"Velocity noise sigma in sqrt(g d) (default {DEFAULTS['noise']}).")
     parser.add_argument("--lr", type=float, help=f"Initial learning rate (default {DEFAULTS['lr']}).")
     parser.add_argument("--batch", type=int, help=f"Frames per iteration (default {DEFAULTS['batch']}).")
     parser.add_argument("--seed", type=int, help=f"Seed (default {DEFAULTS['seed']}).")
     parser.add_argument("--checkpoint-every", type=int, help=f"Iterations between checkpoints (default {DEFAULTS['checkpoint_every']}).")
-    parser.add_argument("--export", dest="export_to", help="Also copy the model + contract to this path stem, e.g. models/preview-gn2.")
+    parser.add_argument("--export", dest="export_to", help="Also copy the model + contract to this path stem, e.g. models/preview-gn4.")
     args = parser.parse_args(argv)
     overrides = {k: getattr(args, k) for k in ("iterations", "latent", "rounds", "noise", "lr", "batch", "seed",
-                                               "radius_spacings", "density_support_spacings", "max_neighbours")}
+                                               "radius_spacings", "density_support_spacings", "max_neighbours",
+                                               "strides")}
     overrides["checkpoint_every"] = args.checkpoint_every
     overrides["validate_every"] = args.checkpoint_every
     try:

@@ -5,11 +5,13 @@ the ONNX file expects and how to drive it:
 
 - ``onnx_file`` (name beside the contract) and its ``onnx_sha256``;
 - ``feature_version`` (must equal ``engine.learned.features.FEATURE_VERSION``);
-- ``inputs`` / ``outputs``: ONNX names, dtypes and shapes (symbolic N, K, Kb);
+- ``inputs`` / ``outputs``: ONNX names, dtypes and shapes (symbolic N, K, Nb, Kb);
 - ``units``: lengths in particle spacings d, time in sqrt(d/g), velocities in
   sqrt(g d), the output in g;
 - ``radius_spacings``, ``density_support_spacings``, ``max_neighbours``,
-  ``max_boundary_neighbours``, ``step_froude`` (the learned step in sqrt(d/g)),
+  ``max_boundary_neighbours``, ``step_froude`` and ``step_froude_min`` (the
+  longest and shortest learned step trained, in sqrt(d/g); the step is a node
+  feature, and the stepper takes steps of at most ``step_froude``),
   ``history_length``, ``rounds`` (message-passing rounds, for tiling);
 - ``normalisation``: mean and std of every feature column and of the target;
 - ``training``: free-form provenance (data, command, seeds, times).
@@ -35,8 +37,10 @@ INPUT_SPECS = (
     ("neighbour_index", "int64", ["N", "K"]),
     ("neighbour_mask", "float32", ["N", "K"]),
     ("edge_features", "float32", ["N", "K", features.EDGE_FEATURES]),
-    ("boundary_features", "float32", ["N", "Kb", features.BOUNDARY_FEATURES]),
-    ("boundary_mask", "float32", ["N", "Kb"]),
+    ("boundary_rows", "int64", ["Nb"]),
+    ("boundary_slot", "int64", ["N"]),
+    ("boundary_features", "float32", ["Nb", "Kb", features.BOUNDARY_FEATURES]),
+    ("boundary_mask", "float32", ["Nb", "Kb"]),
 )
 OUTPUT_SPECS = (("non_gravity_acceleration", "float32", ["N", 3]),)
 
@@ -49,7 +53,7 @@ _STAT_SIZES = {
 
 _REQUIRED = ("format", "version", "name", "onnx_file", "onnx_sha256", "feature_version", "inputs", "outputs",
              "units", "radius_spacings", "density_support_spacings", "max_neighbours", "max_boundary_neighbours",
-             "step_froude", "history_length", "rounds", "normalisation")
+             "step_froude", "step_froude_min", "history_length", "rounds", "normalisation")
 
 UNITS = {
     "length": "particle spacing d",
@@ -70,7 +74,8 @@ def sha256_file(path):
 
 
 def make_contract(name, onnx_path, normalisation, radius_spacings, step_froude, rounds, training=None,
-                  density_support_spacings=2.0, max_neighbours=48, max_boundary_neighbours=32, architecture=None):
+                  density_support_spacings=2.0, max_neighbours=48, max_boundary_neighbours=32, architecture=None,
+                  step_froude_min=None):
     """A contract dict for an exported ONNX file (the sha256 is computed here)."""
     stats = {key: [float(x) for x in np.asarray(normalisation[key]).reshape(-1)] for key in _STAT_SIZES}
     return {
@@ -88,6 +93,7 @@ def make_contract(name, onnx_path, normalisation, radius_spacings, step_froude, 
         "max_neighbours": int(max_neighbours),
         "max_boundary_neighbours": int(max_boundary_neighbours),
         "step_froude": float(step_froude),
+        "step_froude_min": float(step_froude if step_froude_min is None else step_froude_min),
         "history_length": features.HISTORY_LENGTH,
         "rounds": int(rounds),
         "architecture": architecture or {},
@@ -154,10 +160,13 @@ def load_contract(model_path):
             f"model contract {path}: inputs {[i[0] for i in given_inputs]} with shapes differ from the "
             f"engine's {[i[0] for i in expected_inputs]}; {RETRAIN_HINT}"
         )
-    for key in ("radius_spacings", "density_support_spacings", "step_froude"):
+    for key in ("radius_spacings", "density_support_spacings", "step_froude", "step_froude_min"):
         value = contract[key]
         if not isinstance(value, (int, float)) or not 0 < value < 100:
             raise ModelError(f"model contract {path}: {key} = {value!r} is not a positive number; {RETRAIN_HINT}")
+    if contract["step_froude_min"] > contract["step_froude"]:
+        raise ModelError(f"model contract {path}: step_froude_min {contract['step_froude_min']} is larger than "
+                         f"step_froude {contract['step_froude']}; {RETRAIN_HINT}")
     stats = {}
     for key, size in _STAT_SIZES.items():
         values = np.asarray(contract["normalisation"].get(key, []), np.float64)

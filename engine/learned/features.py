@@ -21,17 +21,24 @@ differences of positions enter, and every per-neighbour quantity is summed):
   as a dense padded table ``neighbour_index`` (N, K) int64 with
   ``neighbour_mask`` (N, K) float32 (1 = real neighbour; padding points at i);
 - boundary neighbours: boundary particles (walls, colliders; World.boundary_at)
-  with |x_b - x_i| < R, as per-pair features only, (N, Kb, F_b) with a mask.
+  with |x_b - x_i| < R, as per-pair features only, held for the Nb particles
+  that have any (``boundary_rows``; most particles have none): (Nb, Kb, F_b)
+  with a mask, and ``boundary_slot`` (N,) giving each particle's row in those
+  arrays, or Nb for none. The core computes wall messages for those rows only
+  and gathers them back with the slot (a gather, no scatter).
 
-Node features (F_node = 7): v_t, v_{t-1} (sqrt(g d)), SPH density ratio - 1
+Node features (F_node = 8): v_t, v_{t-1} (sqrt(g d)), SPH density ratio - 1
 (cubic spline, H = 2 d = R, m = rho0 d^3, fluid + Akinci boundary term;
-Monaghan 1992, ARA&A 30:543; Akinci et al. 2012, ACM TOG 31(4)).
+Monaghan 1992, ARA&A 30:543; Akinci et al. 2012, ACM TOG 31(4)), and the
+learned step dt in sqrt(d/g) (the same for every particle): one model serves
+a range of steps, so the stepper can take one step per frame at ordinary
+frame rates instead of several.
 Fluid edge features (F_edge = 7): (x_j - x_i)/R, |x_j - x_i|/R, (v_j - v_i)/sqrt(g d).
 Boundary edge features (F_bnd = 11): (x_b - x_i)/R, |x_b - x_i|/R, boundary
 normal n_b, (v_b - v_i)/sqrt(g d), V_b / d^3.
 
-Output of the core: the non-gravity acceleration a - g over the next step,
-in units of g, normalised by the contract's statistics.
+Output of the core: the non-gravity acceleration a - g over the next step
+(of the given dt), in units of g, normalised by the contract's statistics.
 
 Integration (semi-implicit Euler, as in Sanchez-Gonzalez et al. 2020,
 "Learning to Simulate Complex Physics with Graph Networks", ICML):
@@ -43,14 +50,14 @@ from scipy.spatial import cKDTree
 
 from ..kernels import kernel
 
-FEATURE_VERSION = "splashdraft-graph-features-1"
-NODE_FEATURES = 7
+FEATURE_VERSION = "splashdraft-graph-features-2"
+NODE_FEATURES = 8
 EDGE_FEATURES = 7
 BOUNDARY_FEATURES = 11
 HISTORY_LENGTH = 2  # velocities v_t and v_{t-1}
 
 #: Column layout, used by the contract file and by tests.
-NODE_FEATURE_NAMES = ("vx_t", "vy_t", "vz_t", "vx_prev", "vy_prev", "vz_prev", "density_ratio_minus_1")
+NODE_FEATURE_NAMES = ("vx_t", "vy_t", "vz_t", "vx_prev", "vy_prev", "vz_prev", "density_ratio_minus_1", "step")
 EDGE_FEATURE_NAMES = ("dx", "dy", "dz", "distance", "dvx", "dvy", "dvz")
 BOUNDARY_FEATURE_NAMES = ("dx", "dy", "dz", "distance", "nx", "ny", "nz", "dvx", "dvy", "dvz", "volume")
 
@@ -172,7 +179,8 @@ def boundary_neighbour_table(positions, boundary_positions, radius, max_neighbou
     return np.where(valid, index, 0).astype(np.int64), valid.astype(np.float32), np.where(valid, distances, np.inf)
 
 
-def density_ratio(fluid_distances, fluid_mask, boundary_distances, boundary_mask, boundary_volumes_per_d3, support):
+def density_ratio(fluid_distances, fluid_mask, boundary_distances, boundary_mask, boundary_volumes_per_d3, support,
+                  boundary_rows=None):
     """SPH density / rho0 from neighbour tables, in spacing units.
 
     rho_i / rho0 = sum_j W(r_ij) + W(0) + sum_b (V_b / d^3) W(r_ib), with
@@ -181,9 +189,10 @@ def density_ratio(fluid_distances, fluid_mask, boundary_distances, boundary_mask
 
     Args:
         fluid_distances, fluid_mask: (N, K) from ``fluid_neighbour_table`` (in d).
-        boundary_distances, boundary_mask: (N, Kb) (in d).
-        boundary_volumes_per_d3: (N, Kb) V_b / d^3 of each boundary neighbour.
+        boundary_distances, boundary_mask: (N, Kb) (in d), or (Nb, Kb) for ``boundary_rows``.
+        boundary_volumes_per_d3: V_b / d^3 of each boundary neighbour, shaped like the mask.
         support: H in d.
+        boundary_rows: optional (Nb,) particles the boundary tables belong to (default all).
 
     Returns:
         (N,) float64.
@@ -191,6 +200,8 @@ def density_ratio(fluid_distances, fluid_mask, boundary_distances, boundary_mask
     w0 = float(kernel(0.0, support))
     fluid = _masked_kernel_sum(fluid_distances, fluid_mask, support)
     wall = _masked_kernel_sum(boundary_distances, boundary_mask, support, boundary_volumes_per_d3)
+    if boundary_rows is not None:
+        wall = np.bincount(np.asarray(boundary_rows, np.int64), wall, minlength=len(fluid))
     return w0 + fluid + wall
 
 
@@ -207,16 +218,20 @@ def _masked_kernel_sum(distances, mask, support, weights=None):
 class Graph:
     """The inputs of the learned core for one step, plus what integration needs.
 
-    Attributes (N particles, K fluid and Kb boundary neighbour slots), float32
-    unless noted:
-        node_features (N, 7), neighbour_index (N, K) int64, neighbour_mask (N, K),
-        edge_features (N, K, 7), boundary_features (N, Kb, 11), boundary_mask (N, Kb),
-        boundary_index (N, Kb) int64 (rows of the boundary arrays; padding 0),
+    Attributes (N particles, K fluid and Kb boundary neighbour slots, Nb >= 1
+    rows with boundary neighbours), float32 unless noted:
+        node_features (N, 8), neighbour_index (N, K) int64, neighbour_mask (N, K),
+        edge_features (N, K, 7), boundary_rows (Nb,) int64, boundary_slot (N,) int64,
+        boundary_features (Nb, Kb, 11), boundary_mask (Nb, Kb),
+        boundary_index (Nb, Kb) int64 (rows of the boundary arrays; padding 0),
         density_ratio (N,) float64, truncated_rows int.
+    With no particle near a boundary, the boundary arrays hold one all-padding
+    row for particle 0 (its wall message is then exactly zero) and every slot is 1.
     """
 
-    __slots__ = ("node_features", "neighbour_index", "neighbour_mask", "edge_features",
-                 "boundary_features", "boundary_mask", "boundary_index", "density_ratio", "truncated_rows")
+    __slots__ = ("node_features", "neighbour_index", "neighbour_mask", "edge_features", "boundary_rows",
+                 "boundary_slot", "boundary_features", "boundary_mask", "boundary_index", "density_ratio",
+                 "truncated_rows")
 
     def __init__(self, **values):
         for name in self.__slots__:
@@ -229,13 +244,34 @@ class Graph:
             "neighbour_index": self.neighbour_index,
             "neighbour_mask": self.neighbour_mask,
             "edge_features": self.edge_features,
+            "boundary_rows": self.boundary_rows,
+            "boundary_slot": self.boundary_slot,
             "boundary_features": self.boundary_features,
             "boundary_mask": self.boundary_mask,
         }
 
 
+def compact_boundary_rows(mask):
+    """(rows, slot) for a boundary mask (N, Kb) whose real entries come first in each row.
+
+    rows: (Nb,) int64 particles with a boundary neighbour; when none has one (and N > 0),
+    [0], whose row is all padding, so the arrays never have zero rows;
+    slot: (N,) int64 each particle's position in ``rows``, or Nb when it has none.
+    """
+    n = len(mask)
+    if n == 0:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    rows = np.flatnonzero(np.asarray(mask)[:, 0] > 0)
+    slot = np.full(n, max(len(rows), 1), np.int64)
+    if len(rows) == 0:
+        return np.zeros(1, np.int64), slot
+    slot[rows] = np.arange(len(rows))
+    return rows.astype(np.int64), slot
+
+
 def build_graph(positions, velocities, previous_velocities, boundary, units, radius_spacings,
-                density_support_spacings=2.0, max_neighbours=48, max_boundary_neighbours=32, boundary_tree=None):
+                density_support_spacings=2.0, max_neighbours=48, max_boundary_neighbours=32, boundary_tree=None,
+                *, step_froude):
     """Build the core's inputs from world-space arrays (see the module docstring).
 
     Args:
@@ -245,6 +281,7 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
         units: ``Units`` of the scene.
         radius_spacings: connectivity radius R in d.
         density_support_spacings: H of the density feature in d.
+        step_froude: the learned step dt in sqrt(d/g) (node feature).
 
     Returns:
         Graph (unnormalised features).
@@ -266,8 +303,11 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
         bx = bv = bn = np.zeros((0, 3))
         bvol = np.zeros(0)
     bindex, bmask, bdist = boundary_neighbour_table(x, bx, search, max_boundary_neighbours, tree=boundary_tree)
+    # Keep the boundary tables only for the particles that have a boundary neighbour.
+    brows, bslot = compact_boundary_rows(bmask)
+    bindex, bmask, bdist = bindex[brows], bmask[brows], bdist[brows]
     bvol_pairs = bvol[bindex] if len(bvol) else np.zeros(bindex.shape)
-    rho = density_ratio(distances, mask, bdist, bmask, bvol_pairs, float(density_support_spacings))
+    rho = density_ratio(distances, mask, bdist, bmask, bvol_pairs, float(density_support_spacings), brows)
     is_wider_search = search > radius
     if is_wider_search:  # the density used a wider search; the graph keeps only r < R
         mask = mask * (distances < radius)
@@ -289,30 +329,27 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
     if is_wider_search:
         edge *= mask[..., None]
 
-    # Most particles have no boundary neighbour (valid entries come first in each row);
-    # only rows that have one are filled.
+    # Boundary rows (valid entries come first in each row).
     bfeat = np.zeros(bindex.shape + (BOUNDARY_FEATURES,), np.float32)
-    near = np.flatnonzero(bmask[:, 0] > 0) if len(bx) else np.zeros(0, np.int64)
-    if len(near):
-        bi, bm = bindex[near], bmask[near]
-        part = np.empty(bi.shape + (BOUNDARY_FEATURES,), np.float32)
+    if n and bmask.any():
         bx32 = (bx - centre).astype(np.float32)
-        np.subtract(np.take(bx32, bi, axis=0), x32[near, None, :], out=part[..., 0:3])
-        part[..., 0:3] *= inverse_radius
-        part[..., 3] = np.where(bm > 0, bdist[near] * (1.0 / radius), 0.0)
-        part[..., 4:7] = np.take(bn.astype(np.float32), bi, axis=0)
-        np.subtract(np.take(bv.astype(np.float32), bi, axis=0), v32[near, None, :], out=part[..., 7:10])
-        part[..., 10] = bvol_pairs[near]
-        part *= bm[..., None]
-        bfeat[near] = part
+        np.subtract(np.take(bx32, bindex, axis=0), x32[brows, None, :], out=bfeat[..., 0:3])
+        bfeat[..., 0:3] *= inverse_radius
+        bfeat[..., 3] = np.where(bmask > 0, bdist * (1.0 / radius), 0.0)
+        bfeat[..., 4:7] = np.take(bn.astype(np.float32), bindex, axis=0)
+        np.subtract(np.take(bv.astype(np.float32), bindex, axis=0), v32[brows, None, :], out=bfeat[..., 7:10])
+        bfeat[..., 10] = bvol_pairs
+        bfeat *= bmask[..., None]
 
     node = np.empty((n, NODE_FEATURES), np.float32)
     node[:, 0:3] = v
     node[:, 3:6] = v_prev
     node[:, 6] = rho - 1.0
+    node[:, 7] = step_froude
     return Graph(node_features=node, neighbour_index=index, neighbour_mask=mask.astype(np.float32),
-                 edge_features=edge, boundary_features=bfeat, boundary_mask=bmask.astype(np.float32),
-                 boundary_index=bindex, density_ratio=rho, truncated_rows=truncated)
+                 edge_features=edge, boundary_rows=brows, boundary_slot=bslot, boundary_features=bfeat,
+                 boundary_mask=bmask.astype(np.float32), boundary_index=bindex, density_ratio=rho,
+                 truncated_rows=truncated)
 
 
 def normalise(graph, stats, in_place=False):
@@ -324,7 +361,8 @@ def normalise(graph, stats, in_place=False):
     Args:
         graph: Graph from ``build_graph``.
         stats: dict with ``node_mean``/``node_std`` (7,), ``edge_mean``/``edge_std`` (7,),
-            ``boundary_mean``/``boundary_std`` (11,).
+            ``boundary_mean``/``boundary_std`` (11,). The step column's std may be
+            1 (a model trained at one step): it is then only centred.
         in_place: normalise the graph's float32 feature arrays in place (no copies; the
             stepper uses this, the graph's features are not needed afterwards).
 
@@ -347,6 +385,8 @@ def normalise(graph, stats, in_place=False):
         "neighbour_index": graph.neighbour_index,
         "neighbour_mask": graph.neighbour_mask,
         "edge_features": scaled(graph.edge_features, stats["edge_mean"], stats["edge_std"], graph.neighbour_mask),
+        "boundary_rows": graph.boundary_rows,
+        "boundary_slot": graph.boundary_slot,
         "boundary_features": scaled(graph.boundary_features, stats["boundary_mean"], stats["boundary_std"],
                                     graph.boundary_mask),
         "boundary_mask": graph.boundary_mask,

@@ -38,7 +38,7 @@ DEFAULT_EPSILON = 1e-3
 
 def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions=None,
                   boundary_volumes=None, boundary_index=None, boundary_mask=None, iterations=2,
-                  support=2.0, epsilon=DEFAULT_EPSILON):
+                  support=2.0, epsilon=DEFAULT_EPSILON, boundary_rows=None):
     """Move particles to reduce SPH over-density (see the module docstring).
 
     Args:
@@ -48,8 +48,10 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
         boundary_positions: optional (B, 3) float boundary particle positions in d.
         boundary_volumes: (B,) V_b / d^3.
         boundary_index: (N, Kb) int rows of the boundary arrays near each particle
-            (``features.boundary_neighbour_table``).
-        boundary_mask: (N, Kb) 1 for a real boundary neighbour.
+            (``features.boundary_neighbour_table``), or (Nb, Kb) for the particles
+            ``boundary_rows`` only.
+        boundary_mask: (N, Kb) or (Nb, Kb) 1 for a real boundary neighbour.
+        boundary_rows: optional (Nb,) int particles the boundary tables belong to (default all).
         iterations: Jacobi iterations (0 returns a copy of the input).
         support: kernel support H in d.
         epsilon: constraint-force mixing (1/d^2).
@@ -75,7 +77,8 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
     use_boundary = boundary_positions is not None and np.size(boundary_positions) > 0
     if use_boundary:
         breal = np.asarray(boundary_mask) > 0
-        brows = np.broadcast_to(np.arange(n)[:, None], breal.shape)[breal]
+        owners = np.arange(n) if boundary_rows is None else np.asarray(boundary_rows, np.int64)
+        brows = np.broadcast_to(owners[:, None], breal.shape)[breal]
         bcols = np.asarray(boundary_index)[breal]
         bpos = (np.asarray(boundary_positions, np.float64)[bcols] - centre).astype(np.float32)
         bvol = np.asarray(boundary_volumes, np.float64)[bcols].astype(np.float32)

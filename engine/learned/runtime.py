@@ -101,13 +101,50 @@ def subgraph(inputs, nodes):
     mask[outside] = 0.0  # both are copies (fancy indexing); only the few outside entries change
     edge[outside] = 0.0
     rows = np.arange(len(nodes))[:, None]
+    # Boundary rows of the tile's nodes, in the compact layout (features.compact_boundary_rows).
+    boundary_rows = inputs["boundary_rows"]
+    kept = np.flatnonzero(position[boundary_rows] >= 0)
+    slot = np.full(len(nodes), max(len(kept), 1), np.int64)
+    if len(kept):
+        tile_rows = position[boundary_rows[kept]]
+        slot[tile_rows] = np.arange(len(kept))
+        bfeat, bmask = inputs["boundary_features"][kept], inputs["boundary_mask"][kept]
+    else:  # one all-padding row (its message is exactly zero; no slot points at it)
+        tile_rows = np.zeros(1, np.int64)
+        bfeat = np.zeros((1,) + inputs["boundary_features"].shape[1:], np.float32)
+        bmask = np.zeros((1,) + inputs["boundary_mask"].shape[1:], np.float32)
     return {
         "node_features": inputs["node_features"][nodes],
         "neighbour_index": np.where(outside, rows, index).astype(np.int64, copy=False),
         "neighbour_mask": mask.astype(np.float32, copy=False),
         "edge_features": edge,
-        "boundary_features": inputs["boundary_features"][nodes],
-        "boundary_mask": inputs["boundary_mask"][nodes],
+        "boundary_rows": tile_rows.astype(np.int64, copy=False),
+        "boundary_slot": slot,
+        "boundary_features": bfeat,
+        "boundary_mask": bmask,
+    }
+
+
+def random_inputs(particles, neighbours, boundary_neighbours, seed=0, boundary_fraction=0.25):
+    """Core inputs of the contract's shapes on a random graph (warm-up, benchmarks and tests).
+
+    The first ``boundary_fraction`` of the particles have boundary neighbours.
+    """
+    rng = np.random.default_rng(seed)
+    n, k, kb = particles, neighbours, boundary_neighbours
+    specs = {name: shape for name, _, shape in INPUT_SPECS}
+    nb = max(1, int(round(boundary_fraction * n)))
+    slot = np.full(n, nb, np.int64)
+    slot[:nb] = np.arange(nb)
+    return {
+        "node_features": rng.standard_normal((n, specs["node_features"][1])).astype(np.float32),
+        "neighbour_index": rng.integers(0, n, (n, k)).astype(np.int64),
+        "neighbour_mask": np.ones((n, k), np.float32),
+        "edge_features": rng.standard_normal((n, k, specs["edge_features"][2])).astype(np.float32),
+        "boundary_rows": np.arange(nb, dtype=np.int64),
+        "boundary_slot": slot,
+        "boundary_features": rng.standard_normal((nb, kb, specs["boundary_features"][2])).astype(np.float32),
+        "boundary_mask": np.ones((nb, kb), np.float32),
     }
 
 
@@ -132,18 +169,8 @@ class CoreRunner:
 
     def warm_up(self, particles=2000, neighbours=30, boundary_neighbours=8, seed=0):
         """Run the session twice on a random graph of the given size (first calls are slow)."""
-        rng = np.random.default_rng(seed)
-        n, k, kb = particles, neighbours, boundary_neighbours
-        inputs = {
-            "node_features": rng.standard_normal((n, INPUT_SPECS[0][2][1])).astype(np.float32),
-            "neighbour_index": rng.integers(0, n, (n, k)).astype(np.int64),
-            "neighbour_mask": np.ones((n, k), np.float32),
-            "edge_features": rng.standard_normal((n, k, INPUT_SPECS[3][2][2])).astype(np.float32),
-            "boundary_features": rng.standard_normal((n, kb, INPUT_SPECS[4][2][2])).astype(np.float32),
-            "boundary_mask": np.ones((n, kb), np.float32),
-        }
         for _ in range(2):
-            self._run(inputs)
+            self._run(random_inputs(particles, neighbours, boundary_neighbours, seed))
 
     def _run(self, inputs):
         return self.session.run(None, inputs)[0]

@@ -1,10 +1,10 @@
 """``LearnedSolver``: the learned preview behind ``--solver learned`` (Solver protocol, DEVELOPERS.md).
 
-Each learned step of (about) the model's fixed Froude duration:
+Each learned step (dt within the model's trained range, see below):
 
 1. boundary particles of walls and colliders at t (``World.boundary_at``);
-2. features from positions, v_t and v_{t-1} (``features.build_graph``), normalised
-   with the contract's statistics;
+2. features from positions, v_t, v_{t-1} and dt (``features.build_graph``),
+   normalised with the contract's statistics;
 3. the ONNX core on onnxruntime (``runtime.CoreRunner``, tiled above
    ``tile_particles``) predicts the non-gravity acceleration;
 4. semi-implicit Euler (``features.integrate``);
@@ -17,9 +17,14 @@ Each learned step of (about) the model's fixed Froude duration:
    walls clamp, colliders push out), then stream emission over [t, t + dt)
    (``World.emit``), exactly as the reference solver does.
 
-A frame interval T is split into n = max(1, round(T / step)) equal steps, so
-the step the model sees stays within a few per cent of its trained step at
-ordinary frame rates. v_{t-1} is kept per particle in
+The learned step dt is a node feature, and the model is trained on a range
+of steps [``step_froude_min``, ``step_froude``] sqrt(d/g) (its contract). A
+frame interval T is split into n = ceil(T / step_max) equal steps, dt = T / n:
+the fewest steps that stay inside the trained range from above. For T >=
+step_max, dt >= step_max / 2, inside the range when it spans a factor 2 or
+more; shorter frames (T < step_min: a coarse spacing at a high frame rate)
+take one step of T, below the range, and ``LearnedStepStats.steps_below_range``
+counts them. v_{t-1} is kept per particle in
 ``State.particle_arrays["learned_previous_velocity"]`` so a resumed bake is
 identical to an uninterrupted one; newly emitted particles start with
 v_{t-1} = v_t.
@@ -49,10 +54,10 @@ from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
 PREVIOUS_VELOCITY = "learned_previous_velocity"
 
 #: Density relaxation iterations after each learned step (bench/eval_learned.py, model card).
-DEFAULT_RELAX_ITERATIONS = 3
+DEFAULT_RELAX_ITERATIONS = 5
 
 #: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
-DEFAULT_MODEL_NAME = "preview-gn2"
+DEFAULT_MODEL_NAME = "preview-gn4"
 MODELS_DIR = Path(__file__).resolve().parents[2] / "models"
 
 
@@ -71,6 +76,7 @@ class LearnedStepStats:
     relax_seconds: float
     constraint_seconds: float
     truncated_neighbour_rows: int
+    steps_below_range: int = 0
 
 
 class LearnedSolver:
@@ -79,7 +85,7 @@ class LearnedSolver:
     Args:
         scene: accepted for the bake loop's uniform construction; unused.
         model: path of the .onnx model (its .json contract beside it); default
-            ``models/preview-gn2.onnx``.
+            ``models/preview-gn4.onnx``.
         threads: onnxruntime intra-op threads (2 measured best here).
         tile_particles: run the core in tiles of this many receivers above it.
         relax_iterations: density relaxation iterations after each learned step (0: none).
@@ -101,8 +107,8 @@ class LearnedSolver:
             if not contract_beside.exists():
                 raise ModelError(
                     f"model file {self.model_path}: not found; the learned preview needs the shipped model "
-                    "(models/preview-gn2.onnx and .json) -- restore it from the repository, pass another model, "
-                    "or retrain with `python -m training.train` (see models/preview-gn2.md)"
+                    "(models/preview-gn4.onnx and .json) -- restore it from the repository, pass another model, "
+                    "or retrain with `python -m training.train` (see models/preview-gn4.md)"
                 )
         self.contract, self.onnx_path = load_contract(self.model_path)
         self.stats = self.contract["normalisation"]
@@ -120,6 +126,7 @@ class LearnedSolver:
             "onnx_sha256": c["onnx_sha256"],
             "feature_version": c["feature_version"],
             "step_froude": c["step_froude"],
+            "step_froude_min": c["step_froude_min"],
             "radius_spacings": c["radius_spacings"],
             "rounds": c["rounds"],
             "relax_iterations": self.relax_iterations,
@@ -136,8 +143,9 @@ class LearnedSolver:
         arrays[PREVIOUS_VELOCITY] = state.velocities.copy()
         return dataclasses.replace(state, particle_arrays=arrays)
 
-    def step_acceleration(self, state, world, units):
-        """World-space accelerations (N, 3) m/s^2 the model predicts for ``state``; also returns the Graph."""
+    def step_acceleration(self, state, world, units, time_step):
+        """World-space accelerations (N, 3) m/s^2 the model predicts for ``state`` and a step of
+        ``time_step`` s; also returns the Graph."""
         boundary = world.boundary_at(state.time)
         previous = state.particle_arrays.get(PREVIOUS_VELOCITY)
         if previous is None or previous.shape != state.velocities.shape:
@@ -156,6 +164,7 @@ class LearnedSolver:
         graph = features.build_graph(
             state.positions, state.velocities, previous, boundary, units, c["radius_spacings"],
             c["density_support_spacings"], c["max_neighbours"], c["max_boundary_neighbours"], boundary_tree=tree,
+            step_froude=time_step / units.time,
         )  # fmt: skip
         inputs = features.normalise(graph, self.stats, in_place=True)
         output = self.runner.run(inputs, state.positions / units.spacing, 4.0)
@@ -172,9 +181,7 @@ class LearnedSolver:
             raise SolverError(f"learned solver: asked to advance back in time from t = {t} s to {t_end} s; "
                               "frames must be baked in increasing order")
         units = features.Units(world.particle_spacing, world.gravity)
-        step = self.contract["step_froude"] * units.time
-        count = max(1, int(round((t_end - t) / step))) if t_end > t else 0
-        dt = (t_end - t) / count if count else 0.0
+        count, dt = self.step_plan(t_end - t, units)
         timings = {"neighbours": 0.0, "network": 0.0, "relax": 0.0, "constraints": 0.0}
         truncated = 0
         if PREVIOUS_VELOCITY not in state.particle_arrays:
@@ -185,7 +192,7 @@ class LearnedSolver:
             t_next = t_end if k == count - 1 else t + dt
             if state.count:
                 started = time.perf_counter()
-                accelerations, graph = self.step_acceleration(state, world, units)
+                accelerations, graph = self.step_acceleration(state, world, units, t_next - t)
                 truncated += graph.truncated_rows
                 timings["network"] += time.perf_counter() - started
                 positions, velocities = features.integrate(state.positions, state.velocities, accelerations, t_next - t)
@@ -225,8 +232,17 @@ class LearnedSolver:
         stats = LearnedStepStats(substeps=count, time_step=dt, neighbour_seconds=timings["neighbours"],
                                  network_seconds=timings["network"], relax_seconds=timings["relax"],
                                  constraint_seconds=timings["constraints"],
-                                 truncated_neighbour_rows=truncated)
+                                 truncated_neighbour_rows=truncated,
+                                 steps_below_range=count if dt < self.contract["step_froude_min"] * units.time * (1 - 1e-9) else 0)
         return state, stats
+
+    def step_plan(self, interval, units):
+        """(n, dt): n = ceil(interval / step_max) equal learned steps of dt s (see the module docstring)."""
+        if not interval > 0:
+            return 0, 0.0
+        step_max = self.contract["step_froude"] * units.time
+        count = max(1, int(np.ceil(interval / step_max - 1e-9)))
+        return count, interval / count
 
     def relax(self, positions, graph, boundary, units):
         """``positions`` (N, 3) m after ``relax_iterations`` density iterations on ``graph``'s tables.
@@ -241,7 +257,8 @@ class LearnedSolver:
         d = units.spacing
         relaxed = relax_density(positions / d, graph.neighbour_index, graph.neighbour_mask, boundary.positions / d,
                                 boundary.volumes / d**3, graph.boundary_index, graph.boundary_mask,
-                                iterations=self.relax_iterations, support=self.contract["density_support_spacings"])
+                                iterations=self.relax_iterations, support=self.contract["density_support_spacings"],
+                                boundary_rows=graph.boundary_rows)
         return relaxed * d
 
     def frame_attributes(self, state, world):
