@@ -160,7 +160,7 @@ def test_boundary_tables_are_kept_for_exactly_the_particles_near_a_boundary():
     np.testing.assert_allclose(far.node_features[:, 7], STEP)
 
 
-def test_step_plan_takes_the_fewest_steps_inside_the_trained_range():
+def test_step_plan_takes_the_fewest_steps_inside_the_trained_range(tmp_path):
     """n = ceil(T / step_max) equal steps per frame interval T: dt <= step_max always, and
     dt >= step_max / 2 once T >= step_max (arithmetic of the rule; checked over a sweep)."""
     solver = LearnedSolver(relax_iterations=0)
@@ -175,6 +175,16 @@ def test_step_plan_takes_the_fewest_steps_inside_the_trained_range():
         assert count * dt == pytest.approx(interval)
         assert 0.5 * step_max <= dt <= step_max * (1 + 1e-9)
         assert count == 1 or interval / (count - 1) > step_max
+    # Intervals shorter than the trained range are one step, counted as below the range.
+    from engine.world import build_world
+
+    world = build_world(make_small_scene(tmp_path, frame_end=3))
+    state = solver.start(world)
+    step_min = solver.contract["step_froude_min"] * units.time
+    _, stats = solver.advance(state, world, 0.5 * step_min)
+    assert (stats.substeps, stats.steps_below_range) == (1, 1)
+    _, stats = solver.advance(state, world, 1.5 * step_min)
+    assert (stats.substeps, stats.steps_below_range) == (1, 0)
 
 
 def test_time_estimate_counts_the_learned_steps_the_bake_takes(tmp_path):

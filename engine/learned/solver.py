@@ -182,6 +182,7 @@ class LearnedSolver:
                               "frames must be baked in increasing order")
         units = features.Units(world.particle_spacing, world.gravity)
         count, dt = self.step_plan(t_end - t, units)
+        step_min = self.contract["step_froude_min"] * units.time
         timings = {"neighbours": 0.0, "network": 0.0, "relax": 0.0, "constraints": 0.0}
         truncated = 0
         if PREVIOUS_VELOCITY not in state.particle_arrays:
@@ -233,7 +234,7 @@ class LearnedSolver:
                                  network_seconds=timings["network"], relax_seconds=timings["relax"],
                                  constraint_seconds=timings["constraints"],
                                  truncated_neighbour_rows=truncated,
-                                 steps_below_range=count if dt < self.contract["step_froude_min"] * units.time * (1 - 1e-9) else 0)
+                                 steps_below_range=count if dt < (1 - 1e-9) * step_min else 0)
         return state, stats
 
     def step_plan(self, interval, units):
