@@ -152,14 +152,14 @@ def learned_steps_per_frame(scene):
     Read from the model's contract (no onnxruntime session); 1 if the contract is missing or
     unreadable (the bake itself then reports the model error).
     """
-    from .learned.solver import default_model_path
+    from .learned.solver import default_model_path, step_plan
 
     try:
         contract = json.loads(default_model_path().with_suffix(".json").read_text())
         step = float(contract["step_froude"]) * math.sqrt(scene.particle_spacing / math.dist(scene.gravity, (0, 0, 0)))
     except (OSError, ValueError, KeyError, TypeError, ZeroDivisionError):
         return 1
-    return max(1, math.ceil((1.0 / scene.fps) / step - 1e-9))
+    return step_plan(1.0 / scene.fps, step)[0]
 
 
 def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=None):

@@ -419,7 +419,6 @@ class World:
             if not exits.any():
                 continue
             if not exits.all():
-                exits = np.flatnonzero(exits)
                 sp, sv, sn = sp[exits], sv[exits], sn[exits]
             lo = sp.min(axis=0) - 2 * self.particle_spacing
             hi = sp.max(axis=0) + 2 * self.particle_spacing

@@ -126,7 +126,7 @@ def subgraph(inputs, nodes):
 
 
 def random_inputs(particles, neighbours, boundary_neighbours, seed=0, boundary_fraction=0.25):
-    """Core inputs of the contract's shapes on a random graph (warm-up, benchmarks and tests).
+    """Core inputs of the contract's shapes on a random graph (for ``CoreRunner.warm_up``).
 
     The first ``boundary_fraction`` of the particles have boundary neighbours.
     """

@@ -38,6 +38,7 @@ with U_max ~ sqrt(g L); from memory). The manifest settings say so.
 """
 
 import dataclasses
+import math
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -59,6 +60,14 @@ DEFAULT_RELAX_ITERATIONS = 5
 #: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
 DEFAULT_MODEL_NAME = "preview-gn4"
 MODELS_DIR = Path(__file__).resolve().parents[2] / "models"
+
+
+def step_plan(interval, step_max):
+    """(n, dt) for a frame interval (s): n = ceil(interval / step_max) equal steps, dt = interval / n; (0, 0) if none."""
+    if not interval > 0:
+        return 0, 0.0
+    count = max(1, math.ceil(interval / step_max - 1e-9))
+    return count, interval / count
 
 
 def default_model_path():
@@ -239,11 +248,7 @@ class LearnedSolver:
 
     def step_plan(self, interval, units):
         """(n, dt): n = ceil(interval / step_max) equal learned steps of dt s (see the module docstring)."""
-        if not interval > 0:
-            return 0, 0.0
-        step_max = self.contract["step_froude"] * units.time
-        count = max(1, int(np.ceil(interval / step_max - 1e-9)))
-        return count, interval / count
+        return step_plan(interval, self.contract["step_froude"] * units.time)
 
     def relax(self, positions, graph, boundary, units):
         """``positions`` (N, 3) m after ``relax_iterations`` density iterations on ``graph``'s tables.
