@@ -26,6 +26,7 @@ import threading
 import time
 from pathlib import Path
 
+from . import energy
 from .cache import MANIFEST_NAME, CacheWriter, open_cache
 from .errors import CacheError, SolverError, SplashdraftError, UsageError
 from .progress import SilentProgress
@@ -298,7 +299,7 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
             current = scene.frame_start
             progress.start(frames=(scene.frame_start, last), solver=solver.name, particles=state.count)
             frame_started = time.monotonic()
-            _write(writer, solver, world, state, current, 0, 0.0)
+            state = _write(writer, solver, world, state, current, 0, 0.0)
             written, last_written, particles = 1, current, state.count
             progress.frame(
                 frame=current, done=1, total=last - scene.frame_start + 1, particles=state.count,
@@ -319,7 +320,7 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
             state, stats = solver.advance(state, world, frame_time(scene, frame))
             _check_state(state, frame)
             substeps = int(getattr(stats, "substeps", 0))
-            _write(writer, solver, world, state, frame, substeps, time.monotonic() - frame_started)
+            state = _write(writer, solver, world, state, frame, substeps, time.monotonic() - frame_started, stats)
             state = _reloaded(state)
             written += 1
             last_written, particles = frame, state.count
@@ -349,8 +350,24 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
     )  # fmt: skip
 
 
-def _write(writer, solver, world, state, frame, substeps, seconds):
-    """Write one frame's PLY + manifest entry, then the checkpoint (in that order; see ``engine.cache``)."""
+def _solver_record(stats):
+    """The manifest's per-frame ``solver`` entry from a solver's step stats (None: the first frame)."""
+    if stats is None:
+        return {}
+    names = ("iterations", "pressure_iterations", "divergence_iterations", "retried_substeps",
+             "unconverged_substeps", "max_density_error", "steps", "steps_below_range")
+    return {name: _json_ready(getattr(stats, name)) for name in names if hasattr(stats, name)}
+
+
+def _write(writer, solver, world, state, frame, substeps, seconds, stats=None):
+    """Write one frame's PLY + manifest entry, then the checkpoint (in that order; see ``engine.cache``).
+
+    The manifest entry carries the energy audit (``engine.energy.frame_audit``) and the
+    solver's counts for the frame; the state's over-energy flags are updated first, so
+    the checkpoint carries them.
+    """
+    top = energy.ceiling(world)
+    state = energy.flag_over(state, world, top)
     attributes = solver.frame_attributes(state, world)
     arrays = {
         "positions": state.positions,
@@ -359,5 +376,7 @@ def _write(writer, solver, world, state, frame, substeps, seconds):
         "density": attributes["density"],
         "pressure": attributes["pressure"],
     }
-    writer.write_frame(frame, arrays, time=state.time, substeps=substeps, seconds=seconds)
+    extra = {"energy": energy.frame_audit(state, world, top), "solver": _solver_record(stats)}
+    writer.write_frame(frame, arrays, time=state.time, substeps=substeps, seconds=seconds, extra=extra)
     writer.write_checkpoint(state, frame)
+    return state

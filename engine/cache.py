@@ -459,7 +459,7 @@ class CacheWriter:
                 f"{path}: cannot write ({exc.strerror}); free disk space or choose another --out folder"
             ) from exc
 
-    def write_frame(self, frame, arrays, time, substeps, seconds):
+    def write_frame(self, frame, arrays, time, substeps, seconds, extra=None):
         """Write frame ``frame`` and list it in the manifest.
 
         Args:
@@ -467,6 +467,8 @@ class CacheWriter:
             arrays: ``positions``, ``velocities``, ``ids``, ``density``, ``pressure`` (see ``frame_bytes``).
             time: simulated time of the frame, s. substeps: solver substeps taken to reach it.
             seconds: wall-clock seconds spent on it.
+            extra: further JSON-ready entries for the frame's manifest record
+                (the bake adds ``energy``, ``solver``).
         """
         names = ("positions", "velocities", "ids", "density", "pressure")
         data = frame_bytes(*(arrays[name] for name in names))
@@ -479,6 +481,7 @@ class CacheWriter:
             "time": float(time),
             "substeps": int(substeps),
             "seconds": round(float(seconds), 4),
+            **(extra or {}),
         }
         self._write_manifest()
         return len(data)

@@ -203,7 +203,20 @@ def describe_cache(folder, verify=False):
         "disk_bytes": cache.disk_bytes(),
         "verified": bool(verify),
         "updated": manifest.get("updated"),
+        "energy": _energy_summary(entries),
     }
+
+
+def _energy_summary(entries):
+    """The energy audit of the last frame and the largest energy-to-input ratio over frames, or None."""
+    audits = [e["energy"] for e in entries if isinstance(e.get("energy"), dict)]
+    if not audits:
+        return None
+    first = audits[0]
+    start = first["kinetic_j"] + first["potential_j"]
+    ratios = [(a["kinetic_j"] + a["potential_j"] + a["removed_j"]) / (start + a["emitted_j"])
+              for a in audits if start + a["emitted_j"] > 0]
+    return {**audits[-1], "max_energy_ratio": max(ratios) if ratios else None}
 
 
 def command_info(args):
@@ -222,6 +235,13 @@ def command_info(args):
     _say(f"  disk: {format_bytes(info['disk_bytes'])}; bake time {format_duration(info['bake_seconds'])}, "
          f"{info['substeps']} substeps")  # fmt: skip
     _say("  settings: " + json.dumps(info["settings"], sort_keys=True))
+    energy = info["energy"]
+    if energy is not None:
+        ratio = energy["max_energy_ratio"]
+        _say(f"  energy at the last frame: kinetic {energy['kinetic_j']:.4g} J, potential {energy['potential_j']:.4g} J, "
+             f"brought in by emitters {energy['emitted_j']:.4g} J, removed {energy['removed_j']:.4g} J; "
+             f"highest (liquid + removed) / (start + emitted) {'-' if ratio is None else f'{ratio:.4f}'}; "
+             f"over-energy {100 * energy['over_energy_fraction']:.2f} % of particles")
     if args.verify:
         _say("  every frame's checksum matches the manifest")
     _say(f"{info['frames']} frames, {particles['last']:,} particles in the last, cache {info['cache']}")

@@ -271,6 +271,8 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
             "kinetic_energy_a_j": kinetic_energy(fa["velocities"], spacing, rest_density),
             "kinetic_energy_b_j": kinetic_energy(fb["velocities"], spacing, rest_density),
             "penetrating_particles": count_penetrating(fb["positions"], world, time) if world is not None else None,
+            "energy_a": _audit(cache_a, frame),
+            "energy_b": _audit(cache_b, frame),
         })
     chamfers = np.array([r["chamfer_spacings"] for r in rows])
     fractions = [r["density_within_3pct_fraction"] for r in rows if r["density_within_3pct_fraction"] is not None]
@@ -288,6 +290,8 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
         "density_within_3pct_fraction": float(np.mean(fractions)) if fractions else None,
         "density_within_3pct_fraction_deep": float(np.mean(deep_fractions)) if deep_fractions else None,
         "penetrating_particles": penetration,
+        "over_energy_fraction_a": _last_over_energy(rows, "energy_a"),
+        "over_energy_fraction_b": _last_over_energy(rows, "energy_b"),
         "scene": scene_used,
         "density_includes_boundary": world is not None,
         "conventions": {
@@ -304,6 +308,17 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
         },
         "frames": rows,
     }
+
+
+def _audit(cache, frame):
+    """The energy audit the bake recorded for ``frame`` (engine.energy.frame_audit), or None."""
+    return cache.manifest["frames"].get(str(frame), {}).get("energy")
+
+
+def _last_over_energy(rows, key):
+    """Over-energy fraction at the last compared frame that has an audit (it only grows), or None."""
+    audits = [r[key] for r in rows if r[key]]
+    return float(audits[-1]["over_energy_fraction"]) if audits else None
 
 
 def format_table(result):
@@ -327,6 +342,9 @@ def format_table(result):
         f"{'' if result['density_includes_boundary'] else ' (fluid only, no scene)'}; "
         f"penetrating: {result['penetrating_particles'] if result['penetrating_particles'] is not None else 'not checked (no scene)'}"
     )
+    over = [result.get("over_energy_fraction_a"), result.get("over_energy_fraction_b")]
+    lines.append("over-energy fraction (engine.energy): " + ", ".join(
+        f"{name} {'not audited' if value is None else f'{100 * value:.2f} %'}" for name, value in zip("AB", over)))
     return "\n".join(lines)
 
 

@@ -36,8 +36,10 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.spatial import cKDTree
 
+from . import energy
 from .boundary import FACE_NAMES, BoundaryParticles, boundary_volumes, sample_box_walls
 from .errors import SceneError
+from .kernels import kernel
 from .geometry import (evaluate_surface, inside_closed_mesh, push_out, sample_surface, sample_volume,
                        signed_volume, triangle_corners)
 from .scene import FillEmitter, StreamEmitter
@@ -45,6 +47,15 @@ from .state import State, append, select
 
 #: Fraction of the spacing that enforce_bounds keeps particles away from walls and collider surfaces.
 CONTACT_MARGIN = 0.25
+#: Spacings a new stream particle keeps from every liquid particle; closer, the space is taken and
+#: the particle is not created (World.emit). A free stream's previous layer is one spacing or more
+#: away (gravity only stretches it), so only a blocked nozzle is affected.
+EMIT_CLEARANCE = 0.75
+#: A new stream particle is not created where the liquid already there fills more than this
+#: fraction of rest density (SPH sum of the existing particles and the Akinci boundary at the spot,
+#: without the new one).
+#: A stream's own previous layer, one spacing behind, fills about half; the inside of a pool 1.
+EMIT_FILLED_FRACTION = 0.7
 #: Fraction of the spacing that fill particles keep from wall planes and collider surface samples at t = 0.
 #: The one-layer Akinci boundary over-counts density for fluid closer than about one spacing (a lattice
 #: point half a spacing from a wall starts at up to 1.8 rho0 and the first pressure solve blows it apart);
@@ -211,6 +222,10 @@ class _StreamState:
     def key(self):
         return f"emit.{self.name}.layers"
 
+    @property
+    def blocked_key(self):
+        return f"emit.{self.name}.blocked"
+
     def layers_before(self, time):
         """Number of layers k >= 0 with start + k * interval < min(time, end)."""
         limit = min(time, self.end)
@@ -289,10 +304,14 @@ class World:
                      scalars={s.key: 0.0 for s in self.streams})
 
     def emit(self, state, t0, t1):
-        """State with the stream layers born in [t0, t1) appended, placed as at t1.
+        """State with the stream layers born in [t0, t1), placed as at t1, where there is room.
 
         Layers born before t0 that were not emitted yet (by the counter in
-        ``state.scalars``) are emitted too, so no layer is ever lost.
+        ``state.scalars``) are emitted too, so no layer is ever lost. A new
+        particle is not created where the space is taken (``free_space``): within
+        ``EMIT_CLEARANCE`` spacings of a liquid particle, within ``CONTACT_MARGIN``
+        spacings of a wall or collider sample, inside a closed collider, or outside
+        the bounds. Such particles are counted in ``scalars["emit.<name>.blocked"]``.
         """
         if t1 < t0:
             raise SceneError(f"emit: t1 = {t1} is before t0 = {t0}; call emit with an increasing interval")
@@ -308,9 +327,66 @@ class World:
                 points, direction = stream_layer(stream, birth, self.fps)
                 positions.append(points + (stream.speed * (t1 - birth)) * direction)
                 velocities.append(np.broadcast_to(stream.speed * direction, points.shape))
-            state = append(state, np.concatenate(positions), np.concatenate(velocities))
+            positions, velocities = np.concatenate(positions), np.concatenate(velocities)
+            free = self.free_space(positions, state.positions, t1)
+            scalars[stream.blocked_key] = scalars.get(stream.blocked_key, 0.0) + float(np.count_nonzero(~free))
+            positions, velocities = positions[free], velocities[free]
+            state = append(state, positions, velocities)
             scalars[stream.key] = float(target)
+            scalars[energy.EMITTED] = scalars.get(energy.EMITTED, 0.0) + self.particle_mass * float(
+                np.sum(energy.specific_energy(positions, velocities, self.gravity, self.energy_datum)))
         return dataclasses.replace(state, scalars=scalars)
+
+    def _kernel_sums(self, tree, points, volumes):
+        """(P,) sum_j V_j W(|x - x_j|, H) over the tree's points (the filled fraction they make)."""
+        distances, index = tree.query(points, k=64, distance_upper_bound=self.support_radius)
+        found = np.isfinite(distances)
+        weights = np.zeros(distances.shape)
+        weights[found] = kernel(distances[found], self.support_radius) * volumes[index[found]]
+        return weights.sum(axis=1)
+
+    def free_space(self, points, liquid, t):
+        """(P,) bool: where a new particle may be placed at time t (see ``emit``)."""
+        spacing = self.particle_spacing
+        free = np.all((points > self.lower) & (points < self.upper), axis=1)
+        lo, hi = points.min(axis=0) - self.support_radius, points.max(axis=0) + self.support_radius
+        near = liquid[np.all((liquid >= lo) & (liquid <= hi), axis=1)]
+        filled = np.zeros(len(points))
+        if len(near):
+            tree = cKDTree(near)
+            distance, _ = tree.query(points, k=1, distance_upper_bound=EMIT_CLEARANCE * spacing)
+            free &= ~np.isfinite(distance)
+            filled += spacing**3 * self._kernel_sums(tree, points, np.ones(len(near)))
+        boundary = self.boundary_at(t)
+        inside = np.all((boundary.positions >= lo) & (boundary.positions <= hi), axis=1)
+        if inside.any():
+            tree = cKDTree(boundary.positions[inside])
+            distance, _ = tree.query(points, k=1, distance_upper_bound=CONTACT_MARGIN * spacing)
+            free &= ~np.isfinite(distance)
+            filled += self._kernel_sums(tree, points, boundary.volumes[inside])
+        # Interstitial spots of a resting lattice are 0.87 spacings from 8 particles: taken too.
+        free &= filled <= EMIT_FILLED_FRACTION
+        for collider in self.colliders:
+            if collider.is_closed and free.any():
+                vertices = collider_vertices_at(collider, t, self.fps)[0]
+                if np.all(vertices.min(axis=0) <= hi) and np.all(vertices.max(axis=0) >= lo):
+                    free[free] = ~inside_closed_mesh(points[free], vertices, collider.triangles)
+        return free
+
+    @property
+    def energy_datum(self):
+        """Height datum of the energy audit: the lowest bounds corner (``engine.energy.height_datum``)."""
+        return energy.height_datum(self.gravity, self.lower, self.upper)
+
+    def stream_sources(self):
+        """[(points (P, 3), speed)]: every stream's layer points, at every position its motion takes."""
+        out = []
+        for stream in self.streams:
+            if stream.transforms is None:
+                out.append((stream.points, stream.speed))
+            else:
+                out += [(_apply(m, stream.points), stream.speed) for m in stream.transforms]
+        return out
 
     # -- boundary
 
@@ -381,6 +457,7 @@ class World:
                 outside |= positions[:, axis] > self.upper[axis]
         removed = int(np.count_nonzero(outside))
         if removed:
+            state = self._account_removed(state, outside)
             state = select(state, ~outside)
         positions = state.positions.copy()
         velocities = state.velocities.copy()
@@ -405,6 +482,17 @@ class World:
             self._push_out_of_colliders(moved_positions, moved_velocities, state.time)
             positions[again], velocities[again] = moved_positions, moved_velocities
         return dataclasses.replace(state, positions=positions, velocities=velocities, removed=state.removed + removed)
+
+    def _account_removed(self, state, leaving):
+        """State whose energy-audit scalars include the particles in the mask ``leaving``."""
+        scalars = dict(state.scalars)
+        e = energy.specific_energy(state.positions[leaving], state.velocities[leaving], self.gravity,
+                                   self.energy_datum)
+        scalars[energy.REMOVED] = scalars.get(energy.REMOVED, 0.0) + self.particle_mass * float(np.sum(e))
+        flags = state.particle_arrays.get(energy.OVER)
+        if flags is not None and flags.shape == (state.count,):
+            scalars[energy.OVER_REMOVED] = scalars.get(energy.OVER_REMOVED, 0.0) + float(np.count_nonzero(flags[leaving]))
+        return dataclasses.replace(state, scalars=scalars)
 
     def _push_out_of_colliders(self, positions, velocities, t):
         """In place: push particle positions out of every collider at time t, fix velocities."""
