@@ -183,6 +183,10 @@ def describe_cache(folder, verify=False):
     if verify:
         for frame in cache.frames:
             cache.read_frame(frame)
+    # "complete" is what the manifest claims, and only while every frame it lists is still on disk.
+    span = range(manifest["frame_start"], manifest["frame_end"] + 1)
+    is_complete = (manifest.get("complete") is True and all(str(f) in manifest["frames"] for f in span)
+                   and all(cache.frame_path(f).is_file() for f in cache.frames))  # fmt: skip
     return {
         "cache": str(folder),
         "scene_name": manifest.get("scene_name"),
@@ -194,7 +198,7 @@ def describe_cache(folder, verify=False):
         "frames": len(cache.frames),
         "first_frame": cache.frames[0] if cache.frames else None,
         "last_frame": cache.frames[-1] if cache.frames else None,
-        "complete": bool(manifest.get("complete")),
+        "complete": is_complete,
         "particles": {
             "min": min(counts) if counts else 0,
             "max": max(counts) if counts else 0,
