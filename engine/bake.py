@@ -26,6 +26,8 @@ import threading
 import time
 from pathlib import Path
 
+import numpy as np
+
 from .cache import MANIFEST_NAME, CacheWriter, checkpoint_matches_frame, open_cache, verify_frames
 from .errors import CacheError, SolverError, SplashdraftError, UsageError
 from .progress import SilentProgress
@@ -92,6 +94,23 @@ def make_solver(name):
     raise UsageError(f"solver {name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
 
 
+#: Weakest gravity (m/s^2) the learned preview accepts: its features and step scale with sqrt(d / g).
+LEARNED_MIN_GRAVITY = 0.01
+
+
+def check_scene_for_solver(scene, solver_name):
+    """Raise SceneError when ``scene`` cannot be baked by ``solver_name`` (checked before anything is built)."""
+    from .errors import SceneError
+
+    gravity = float(np.linalg.norm(scene.gravity))
+    if solver_name == "learned" and not gravity >= LEARNED_MIN_GRAVITY:
+        raise SceneError(
+            f"scene {scene.name!r}: gravity has length {gravity:g} m/s^2; the learned preview needs gravity of at "
+            f"least {LEARNED_MIN_GRAVITY:g} m/s^2 (it scales by sqrt(spacing / g)); give the scene gravity or "
+            "bake it with --solver sph"
+        )
+
+
 def frame_time(scene, frame):
     """Simulated time (s) of ``frame``: (frame - frame_start) / fps."""
     return (int(frame) - scene.frame_start) / scene.fps
@@ -156,8 +175,6 @@ def _reloaded(state):
 
 
 def _check_state(state, frame):
-    import numpy as np
-
     if state.count and not (np.isfinite(state.positions).all() and np.isfinite(state.velocities).all()):
         raise SolverError(
             f"frame {frame}: the solver produced non-finite positions or velocities; "
@@ -236,6 +253,7 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
     first, last = resolve_frames(scene, frames)
     if solver_name not in SOLVER_NAMES:
         make_solver(solver_name)  # raises the UsageError naming the choices
+    check_scene_for_solver(scene, solver_name)
     hash_hex = scene_hash(scene)
 
     continue_from = None  # (state, frame) of an existing checkpoint

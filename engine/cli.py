@@ -237,10 +237,11 @@ def command_info(args):
 
 
 def command_estimate(args):
-    from .bake import load_scene_any
+    from .bake import check_scene_for_solver, load_scene_any
     from .estimate import estimate_scene, format_bytes
 
     scene = load_scene_any(args.scene)
+    check_scene_for_solver(scene, args.solver)
     result = estimate_scene(scene, solver=args.solver, max_particles=args.max_particles)
     if args.json:
         _print_json(result.as_dict())

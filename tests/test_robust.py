@@ -112,17 +112,18 @@ def _dead_pid():
     return process.pid
 
 
-def test_killed_bake_resumes_bit_identically_and_leaves_no_temporary_files(tmp_path):
-    """A real ``python -m engine bake`` (DFSPH) killed with SIGKILL, then resumed: every frame equals an
-    uninterrupted bake's and no ``.tmp-`` file is left in the folder. A temporary file of the killed
-    process is planted as if the kill had landed mid-write (old code left such files for ever)."""
-    scene = write_tiny_scene(tmp_path, frame_end=5)
+@pytest.mark.parametrize("solver", ["sph", "learned"])
+def test_killed_bake_resumes_bit_identically_and_leaves_no_temporary_files(tmp_path, solver):
+    """A real ``python -m engine bake`` of either solver killed with SIGKILL, then resumed: every frame
+    equals an uninterrupted bake's and no ``.tmp-`` file is left in the folder. A temporary file of the
+    killed process is planted as if the kill had landed mid-write (old code left such files for ever)."""
+    scene = write_tiny_scene(tmp_path, frame_end=24)
     full = tmp_path / "full"
-    subprocess.run([sys.executable, "-m", "engine", "bake", str(scene), "--out", str(full), "--progress", "none"],
-                   cwd=ROOT, check=True, capture_output=True, timeout=300)  # fmt: skip
+    subprocess.run([sys.executable, "-m", "engine", "bake", str(scene), "--solver", solver, "--out", str(full),
+                    "--progress", "none"], cwd=ROOT, check=True, capture_output=True, timeout=300)  # fmt: skip
     out = tmp_path / "killed"
     process = subprocess.Popen(
-        [sys.executable, "-m", "engine", "bake", str(scene), "--out", str(out), "--progress", "json"],
+        [sys.executable, "-m", "engine", "bake", str(scene), "--solver", solver, "--out", str(out), "--progress", "json"],
         cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
     )  # fmt: skip
     try:
@@ -137,9 +138,11 @@ def test_killed_bake_resumes_bit_identically_and_leaves_no_temporary_files(tmp_p
         if process.poll() is None:
             process.kill()
             process.wait()
+    assert open_cache(out).manifest["complete"] is False, "the kill landed after the bake had finished"
     (out / f".points_0004.ply.tmp-{process.pid}").write_bytes(b"ply\nhalf")
-    resumed = subprocess.run([sys.executable, "-m", "engine", "bake", str(scene), "--out", str(out), "--resume",
-                              "--progress", "none"], cwd=ROOT, capture_output=True, text=True, timeout=300)  # fmt: skip
+    resumed = subprocess.run([sys.executable, "-m", "engine", "bake", str(scene), "--solver", solver, "--out", str(out),
+                              "--resume", "--progress", "none"], cwd=ROOT, capture_output=True, text=True,
+                             timeout=300)  # fmt: skip
     assert resumed.returncode == 0, resumed.stderr
     assert checksums(out) == checksums(full)
     assert open_cache(out).manifest["complete"] is True
@@ -446,6 +449,17 @@ def test_no_write_outside_out_for_a_learned_bake_home(tmp_path):
                             text=True, timeout=300)  # fmt: skip
     assert result.returncode == 0, result.stderr
     assert [str(p.relative_to(home)) for p in home.rglob("*")] == []
+
+
+def test_zero_gravity_with_the_learned_solver_is_a_scene_error(tmp_path, capsys):
+    """Old code: a ValueError traceback from the learned features after the world was built."""
+    scene = _scene_with(tmp_path, lambda d: d.update(gravity=[0, 0, 0]))
+    for command in ("estimate", "bake"):
+        argv = [command, scene, "--solver", "learned"]
+        argv += ["--out", tmp_path / "out", "--progress", "none"] if command == "bake" else []
+        code, _, err = run_cli(argv, capsys)
+        assert code == 2 and "gravity has length 0 m/s^2; the learned preview needs gravity" in err, err
+        assert "--solver sph" in err
 
 
 def test_budget_error_is_named_for_stream_layers(tmp_path):
