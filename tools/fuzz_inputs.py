@@ -212,15 +212,20 @@ def _npy(array_or_header):
     return buffer.getvalue()
 
 
-def nasty_npz(rng, key, good):
-    """Bytes of an npz that holds ``key`` in some broken way (or a wrong key)."""
+def nasty_npz(rng, key, good, companions=None):
+    """Bytes of an npz that holds ``key`` in some broken way (or a wrong key), plus the valid ``companions``."""
+    companions = companions or {}
     kind = rng.choice(["garbage_zip", "strings", "records", "objects", "huge_header", "wrong_key", "nan",
-                       "huge_values", "shape", "empty", "truncated", "bool", "int_overflow"])  # fmt: skip
+                       "huge_values", "shape", "empty", "truncated", "bool", "int_overflow", "benign_float32"])
+    if kind == "benign_float32":  # valid: the same array as float32 (and int32 triangles)
+        buffer = io.BytesIO()
+        np.savez(buffer, **{key: good.astype(np.float32)}, **{k: v.astype(np.int32) for k, v in companions.items()})
+        return buffer.getvalue(), kind
     if kind == "garbage_zip":
         return b"PK\x03\x04" + bytes(rng.randrange(256) for _ in range(200)), kind
     if kind == "truncated":
         buffer = io.BytesIO()
-        np.savez(buffer, **{key: good})
+        np.savez(buffer, **{key: good}, **companions)
         data = buffer.getvalue()
         return data[: rng.randrange(len(data))], kind
     arrays = {
@@ -242,8 +247,8 @@ def nasty_npz(rng, key, good):
             archive.writestr("other.npy", _npy(good))
         else:
             archive.writestr(f"{key}.npy", _npy(arrays[kind]))
-        if key == "vertices":
-            archive.writestr("triangles.npy", _npy(np.array([[0, 1, 2]], np.int64)))
+        for name, array in companions.items():
+            archive.writestr(f"{name}.npy", _npy(array))
     return buffer.getvalue(), kind
 
 
@@ -253,8 +258,13 @@ def mutate_mesh(rng, folder):
     target = rng.choice(["obj", "ply", "npz_mesh", "transforms"])
     if target == "obj":
         lines = (meshes / "block.obj").read_text().splitlines()
-        kind = rng.choice(["bad_index", "huge_index", "nan", "huge_coord", "bytes", "few", "empty"])
-        if kind == "bad_index":
+        kind = rng.choice(["bad_index", "huge_index", "nan", "huge_coord", "bytes", "few", "empty", "benign"])
+        if kind == "benign":  # still valid: comments, groups, normals and texture indices the reader ignores
+            lines = ["# fuzz", "o block", "s off", "vn 0 0 1"] + [
+                line if not line.startswith("f ") else "f " + " ".join(f"{t}/{t}/1" for t in line.split()[1:])
+                for line in lines
+            ]  # fmt: skip
+        elif kind == "bad_index":
             lines.append(f"f 1 2 {rng.choice(['-999', '0', 'x', '99999999999999999999'])}")
         elif kind == "huge_index":
             lines.append("f 1 2 " + "9" * 5000)
@@ -279,8 +289,14 @@ def mutate_mesh(rng, folder):
         end = data.index(b"end_header\n") + len(b"end_header\n")
         header, body = data[:end].decode(), data[end:]
         kind = rng.choice(["count_-1", "count_huge", "list_-1", "list_huge", "type", "body_flip", "truncate",
-                           "format", "dup_prop"])  # fmt: skip
-        if kind == "count_-1":
+                           "format", "dup_prop", "benign_ascii"])  # fmt: skip
+        if kind == "benign_ascii":  # the same mesh as ascii PLY with a comment: valid
+            vertices = np.frombuffer(body[: 8 * 24], "<f8").reshape(8, 3)
+            faces = np.frombuffer(body[8 * 24 :], dtype=[("n", "u1"), ("i", "<i4", (3,))])["i"]
+            header = header.replace("binary_little_endian", "ascii").replace("comment", "comment fuzz\ncomment")
+            body = ("\n".join(" ".join(repr(float(x)) for x in v) for v in vertices) + "\n"
+                    + "\n".join("3 " + " ".join(str(int(i)) for i in f) for f in faces) + "\n").encode()
+        elif kind == "count_-1":
             header = header.replace("element vertex 8", "element vertex -1")
         elif kind == "count_huge":
             header = header.replace("element face 12", "element face " + rng.choice(["99999999999", "9" * 5000]))
@@ -308,8 +324,9 @@ def mutate_mesh(rng, folder):
         (meshes / "rock.ply").write_bytes(header.encode() + body)
         return f"ply {kind}"
     if target == "npz_mesh":
-        good = np.load(meshes / "paddle.npz")["vertices"]
-        data, kind = nasty_npz(rng, "vertices", good)
+        with np.load(meshes / "paddle.npz") as archive:
+            good, triangles = archive["vertices"], archive["triangles"]
+        data, kind = nasty_npz(rng, "vertices", good, {"triangles": triangles})
         (meshes / "paddle.npz").write_bytes(data)
         return f"npz mesh {kind}"
     good = np.load(meshes / "paddle_t.npz")["matrices"]
