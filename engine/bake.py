@@ -26,8 +26,10 @@ import threading
 import time
 from pathlib import Path
 
+import numpy as np
+
 from . import energy
-from .cache import MANIFEST_NAME, CacheWriter, open_cache
+from .cache import MANIFEST_NAME, CacheWriter, checkpoint_matches_frame, open_cache, verify_frames
 from .errors import CacheError, SolverError, SplashdraftError, UsageError
 from .progress import SilentProgress
 from .state import state_from_arrays, state_to_arrays
@@ -48,6 +50,8 @@ class BakeResult:
         particles: particles in the last written frame.
         seconds: wall-clock seconds of this call.
         is_cancelled: stopped early by a signal or ``should_stop``.
+        notes: what the bake found and did about it (frames baked again after a failed check,
+            a cache left incomplete), one sentence each.
     """
 
     cache_dir: str
@@ -59,6 +63,7 @@ class BakeResult:
     particles: int
     seconds: float
     is_cancelled: bool
+    notes: tuple = ()
 
 
 def load_scene_any(scene):
@@ -88,6 +93,23 @@ def make_solver(name):
 
         return LearnedSolver()
     raise UsageError(f"solver {name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
+
+
+#: Weakest gravity (m/s^2) the learned preview accepts: its features and step scale with sqrt(d / g).
+LEARNED_MIN_GRAVITY = 0.01
+
+
+def check_scene_for_solver(scene, solver_name):
+    """Raise SceneError when ``scene`` cannot be baked by ``solver_name`` (checked before anything is built)."""
+    from .errors import SceneError
+
+    gravity = float(np.linalg.norm(scene.gravity))
+    if solver_name == "learned" and not gravity >= LEARNED_MIN_GRAVITY:
+        raise SceneError(
+            f"scene {scene.name!r}: gravity has length {gravity:g} m/s^2; the learned preview needs gravity of at "
+            f"least {LEARNED_MIN_GRAVITY:g} m/s^2 (it scales by sqrt(spacing / g)); give the scene gravity or "
+            "bake it with --solver sph"
+        )
 
 
 def frame_time(scene, frame):
@@ -154,8 +176,6 @@ def _reloaded(state):
 
 
 def _check_state(state, frame):
-    import numpy as np
-
     if state.count and not (np.isfinite(state.positions).all() and np.isfinite(state.velocities).all()):
         raise SolverError(
             f"frame {frame}: the solver produced non-finite positions or velocities; "
@@ -234,9 +254,12 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
     first, last = resolve_frames(scene, frames)
     if solver_name not in SOLVER_NAMES:
         make_solver(solver_name)  # raises the UsageError naming the choices
+    check_scene_for_solver(scene, solver_name)
     hash_hex = scene_hash(scene)
 
     continue_from = None  # (state, frame) of an existing checkpoint
+    kept_frames = ()  # frames of the existing cache verified and kept
+    notes = []
     if resume or first > scene.frame_start:
         if not (out_dir / MANIFEST_NAME).is_file():
             why = "--resume" if resume else f"--frames {first}:{last}"
@@ -251,7 +274,7 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
                 f"{out_dir}: its cache was baked from a different version of scene {scene.name!r}; "
                 "bake again from the first frame (without --resume) or into another --out folder"
             )
-        if reader.manifest.get("solver", {}).get("name") != solver_name:
+        if reader.manifest["solver"]["name"] != solver_name:
             raise CacheError(
                 f"{out_dir}: its cache was baked with the {reader.manifest['solver'].get('name')!r} solver, "
                 f"not {solver_name!r}; resume with the same --solver or bake into another --out folder"
@@ -263,12 +286,26 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
             )
         if resume and frames is None:
             first = scene.frame_start
-        continue_from = (state, checkpoint_frame)
-        last_in_cache = reader.manifest.get("frame_end", last)
+        last_in_cache = reader.manifest["frame_end"]
+        good, problems = verify_frames(reader)
+        continue_frame = _continue_frame(reader, good, state, checkpoint_frame, scene.frame_start, problems)
+        if continue_frame is None:
+            # No verified state to continue from: bake again from the first frame (deterministic, so frames
+            # that were good come out bit-identical) rather than keep a cache with holes or a wrong state.
+            notes.append(f"the cache could not be continued ({'; '.join(problems[:3])}); "
+                         f"baked again from frame {scene.frame_start}")  # fmt: skip
+            first = scene.frame_start
+        else:
+            continue_from = (state, checkpoint_frame)
+            kept_frames = [f for f in good if f <= max(continue_frame, checkpoint_frame) or f > last]
+            if problems:
+                notes.append(f"frames baked again after checks: {'; '.join(problems[:3])}")
 
     if world is None:
+        from .estimate import check_work
         from .world import build_world
 
+        check_work(scene, max_particles)  # closed form, before any allocation
         world = build_world(scene)
     check_budget(scene, world, max_particles=max_particles)
     if solver is None:
@@ -285,7 +322,9 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
                 f"{out_dir}: the {solver_name} solver settings differ from the ones this cache was baked with; "
                 "bake again from the first frame (without --resume)"
             )
-    writer = CacheWriter(out_dir, header, keep_frames=continue_from is not None, overwrite=overwrite)
+    writer = CacheWriter(out_dir, header, keep_frames=kept_frames if continue_from is not None else False,
+                         overwrite=overwrite or bool(notes))  # fmt: skip
+    writer.write_scene_copy(scene)
 
     stop = StopFlag()
     if use_signals:
@@ -334,8 +373,12 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
         is_cancelled = last_written is None or last_written < last
         if is_cancelled:
             progress.cancelled(last_frame=last_written)
+        elif not writer.mark_complete(True):
+            missing = writer.missing_frames()
+            notes.append(f"{len(missing)} frames of {header['frame_start']}..{header['frame_end']} are not in the "
+                         f"cache (first {missing[0]}); it stays incomplete: bake them with --resume")  # fmt: skip
+            progress.finished(frames=written, cache=str(out_dir), seconds=time.monotonic() - started)
         else:
-            writer.mark_complete(True)
             progress.finished(frames=written, cache=str(out_dir), seconds=time.monotonic() - started)
     except KeyboardInterrupt:
         # A second Ctrl-C: stop at once; finished frames are safe on disk.
@@ -346,8 +389,32 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
     return BakeResult(
         cache_dir=str(out_dir), solver=solver.name, first_frame=first, last_frame=last,
         last_written=last_written, frames_written=written, particles=particles,
-        seconds=time.monotonic() - started, is_cancelled=is_cancelled,
+        seconds=time.monotonic() - started, is_cancelled=is_cancelled, notes=tuple(notes),
     )  # fmt: skip
+
+
+def _continue_frame(reader, good, state, checkpoint_frame, frame_start, problems):
+    """The frame a resume may continue from, or None when it must bake from the first frame.
+
+    The checkpoint is usable when every frame from the first to the checkpoint's is present and
+    verified (checksum, count, name and time; ``verify_frames``) and the checkpoint holds exactly the
+    particles of its own frame file (count, ids in order, positions and velocities).
+    """
+    good_set = set(good)
+    prefix = frame_start - 1
+    while prefix + 1 in good_set:
+        prefix += 1
+    if checkpoint_frame > prefix:
+        missing = prefix + 1
+        problems.append(f"the checkpoint is at frame {checkpoint_frame} but frame {missing} is missing or bad")
+        return None
+    if not checkpoint_matches_frame(state, reader.read_frame(checkpoint_frame)):
+        problems.append(f"the checkpoint does not hold the particles of frame {checkpoint_frame}")
+        return None
+    if abs(state.time - (checkpoint_frame - frame_start) / reader.manifest["fps"]) > 1e-9 * max(1.0, state.time):
+        problems.append(f"the checkpoint's time {state.time:g} s is not the time of frame {checkpoint_frame}")
+        return None
+    return prefix
 
 
 def _solver_record(stats):

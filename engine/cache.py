@@ -23,19 +23,23 @@ import hashlib
 import io
 import json
 import os
-import zipfile
+import re
 from pathlib import Path
 
 import numpy as np
 
 from . import __version__
 from .errors import CacheError
+from .inputs import LIMITS, finite_number, path_inside, read_json, read_npz, whole_number
 from .state import state_from_arrays, state_to_arrays
 
 CACHE_FORMAT = "splashdraft-cache"
 CACHE_VERSION = 1
 MANIFEST_NAME = "manifest.json"
 CHECKPOINT_NAME = "checkpoint.npz"
+#: The copy of the baked scene kept in the cache folder (meshes and motion beside it as npz).
+SCENE_FOLDER = "scene"
+SCENE_COPY = SCENE_FOLDER + "/scene.json"
 
 #: PLY properties of a frame, in file order: (name, PLY type). Units: m, m/s, -, kg/m^3, Pa.
 PLY_PROPERTIES = (
@@ -161,7 +165,7 @@ def _parse_header(data, source):
                 raise CacheError(f"{source}: header line {number} has a bad element count {words[2]!r}")
             elements.append([words[1], count, []])
         elif words[0] == "property" and elements:
-            if words[1] == "list" or len(words) != 3 or words[1] not in _PLY_TYPES:
+            if len(words) != 3 or words[1] not in _PLY_TYPES:
                 raise CacheError(
                     f"{source}: header line {number} {line!r} is not a scalar property this reader knows"
                 )
@@ -173,6 +177,9 @@ def _parse_header(data, source):
     if not elements or elements[0][0] != "vertex":
         raise CacheError(f"{source}: PLY has no leading 'element vertex'; not a point cache frame")
     _, count, props = elements[0]
+    names = [p for p, _ in props]
+    if len(set(names)) != len(names):
+        raise CacheError(f"{source}: PLY vertex declares a property twice; not a splashdraft frame")
     missing = [name for name, _ in PLY_PROPERTIES if name not in [p for p, _ in props]]
     if missing:
         raise CacheError(f"{source}: PLY vertex lacks properties {', '.join(missing)}; not a splashdraft frame")
@@ -251,32 +258,96 @@ def _now():
     return datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
 
 
+#: Frame file names this engine writes (and the only ones it ever deletes): points_ + 4+ digits + .ply.
+FRAME_FILE_RE = re.compile(r"points_(-?\d{4,})\.ply")
+#: Temporary names of ``write_atomic``: ``.<name>.tmp-<pid>``.
+TEMPORARY_RE = re.compile(r"\.(.+)\.tmp-(\d+)")
+#: Array files of the stored scene copy.
+SCENE_ARRAY_RE = re.compile(r"(emitter|collider)\d+_(mesh|transforms|vertices)\.npz")
+_SHA256_RE = re.compile(r"[0-9a-f]{64}")
+
+
 def _load_manifest(folder):
     path = Path(folder) / MANIFEST_NAME
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError as exc:
-        raise CacheError(f"{path}: no manifest; {folder} is not a bake folder (bake into it first)") from exc
-    except OSError as exc:
-        raise CacheError(f"{path}: cannot read the manifest ({exc.strerror}); check its permissions") from exc
-    try:
-        manifest = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise CacheError(f"{path}: manifest is not valid JSON ({exc}); bake the cache again") from exc
+    if not path.is_file():
+        raise CacheError(f"{path}: no manifest; {folder} is not a bake folder (bake into it first)")
+    manifest = read_json(path, CacheError, "manifest", "bake the cache again")
+    return validate_manifest(manifest, path)
+
+
+def validate_manifest(manifest, path):
+    """Check a parsed manifest as strictly as a scene; returns it unchanged or raises CacheError.
+
+    Every field this engine reads must have its documented type and range
+    (the scene's ranges for fps, frames, spacing and density); each frame
+    entry must name exactly its own file (``points_<frame>.ply``), with a
+    sha256, a particle count, and the time of its frame. Keys this engine does
+    not read are left alone.
+    """
+    def fail(field, problem):
+        raise CacheError(f"{path}: {field}: {problem}; bake the cache again")
+
     if not isinstance(manifest, dict) or manifest.get("format") != CACHE_FORMAT:
         raise CacheError(f"{path}: format is not {CACHE_FORMAT!r}; this is not a splashdraft cache")
-    if manifest.get("version") != CACHE_VERSION:
+    if manifest.get("version") != CACHE_VERSION or isinstance(manifest.get("version"), bool):
         raise CacheError(
             f"{path}: cache version {manifest.get('version')!r}, this engine reads version {CACHE_VERSION}; "
             "bake the cache again"
         )
+    for key in ("scene_name", "scene_hash"):
+        if not isinstance(manifest.get(key), str) or len(manifest[key]) > 1000:
+            fail(key, f"expected a string, got {_short(manifest.get(key))}")
+    solver = manifest.get("solver")
+    if not isinstance(solver, dict) or solver.get("name") not in ("sph", "learned"):
+        fail("solver", f"expected {{\"name\": \"sph\" | \"learned\", \"settings\": {{...}}}}, got {_short(solver)}")
+    if not isinstance(solver.get("settings", {}), dict):
+        fail("solver.settings", f"expected an object, got {_short(solver.get('settings'))}")
+    if finite_number(manifest.get("fps"), *LIMITS["fps"]) is None:
+        fail("fps", f"expected a number in {LIMITS['fps']}, got {_short(manifest.get('fps'))}")
+    for key in ("frame_start", "frame_end"):
+        if whole_number(manifest.get(key), *LIMITS["frame"]) is None:
+            fail(key, f"expected a whole number in {LIMITS['frame']}, got {_short(manifest.get(key))}")
+    if manifest["frame_end"] < manifest["frame_start"]:
+        fail("frame_end", f"{manifest['frame_end']} is before frame_start {manifest['frame_start']}")
+    for key, limit in (("particle_spacing", "particle_spacing"), ("rest_density", "rest_density")):
+        if finite_number(manifest.get(key), *LIMITS[limit]) is None:
+            fail(key, f"expected a number in {LIMITS[limit]}, got {_short(manifest.get(key))}")
+    if not isinstance(manifest.get("complete", False), bool):
+        fail("complete", f"expected true or false, got {_short(manifest.get('complete'))}")
+    if "scene_file" in manifest and not isinstance(manifest["scene_file"], str):
+        fail("scene_file", f"expected a path string, got {_short(manifest['scene_file'])}")
     frames = manifest.get("frames")
     if not isinstance(frames, dict):
-        raise CacheError(f"{path}: 'frames' is missing or not an object; bake the cache again")
+        fail("frames", "missing or not an object")
+    fps, start, end = float(manifest["fps"]), manifest["frame_start"], manifest["frame_end"]
     for key, entry in frames.items():
-        if not key.lstrip("-").isdigit() or not isinstance(entry, dict) or not {"file", "sha256"} <= set(entry):
-            raise CacheError(f"{path}: frame entry {key!r} is malformed; bake the cache again")
+        where = f"frame entry {key!r}"
+        try:
+            frame = int(key) if len(key) <= 12 else None
+        except ValueError:
+            frame = None
+        if frame is None or str(frame) != key or not start <= frame <= end:
+            fail(where, f"not a frame number from {start} to {end}")
+        if not isinstance(entry, dict):
+            fail(where, f"expected an object, got {_short(entry)}")
+        if entry.get("file") != frame_file_name(frame):
+            fail(where, f"file {_short(entry.get('file'))} is not this frame's file {frame_file_name(frame)!r}")
+        if not isinstance(entry.get("sha256"), str) or not _SHA256_RE.fullmatch(entry["sha256"]):
+            fail(where, f"sha256 {_short(entry.get('sha256'))} is not 64 hex digits")
+        if whole_number(entry.get("particles"), 0, LIMITS["max_particles"][1]) is None:
+            fail(where, f"particles {_short(entry.get('particles'))} is not a whole number >= 0")
+        time = finite_number(entry.get("time"))
+        if time is None or abs(time - (frame - start) / fps) > 1e-6 * max(1.0, abs(time)):
+            fail(where, f"time {_short(entry.get('time'))} is not the time of frame {frame} at {fps:g} fps")
+        for name in ("substeps", "seconds"):
+            if name in entry and finite_number(entry[name], 0) is None:
+                fail(where, f"{name} {_short(entry[name])} is not a number >= 0")
     return manifest
+
+
+def _short(value):
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
 
 
 class CacheReader:
@@ -299,7 +370,7 @@ class CacheReader:
 
     def frame_path(self, frame):
         """Path of frame ``frame``'s PLY file (it is listed in the manifest)."""
-        return self.folder / self._entry(frame)["file"]
+        return path_inside(self.folder, self._entry(frame)["file"], CacheError, "frame file")
 
     def read_frame(self, frame):
         """Read frame ``frame``, verifying its sha256; returns the dict of ``parse_frame``.
@@ -309,7 +380,7 @@ class CacheReader:
             checksum or layout is wrong.
         """
         entry = self._entry(frame)
-        path = self.folder / entry["file"]
+        path = self.frame_path(frame)
         try:
             data = path.read_bytes()
         except FileNotFoundError as exc:
@@ -330,16 +401,19 @@ class CacheReader:
         return read_checkpoint(self.folder / CHECKPOINT_NAME)
 
     def disk_bytes(self):
-        """Bytes on disk of the manifest, the listed frames and the checkpoint."""
+        """Bytes on disk of the manifest, the listed frames, the checkpoint and the stored scene copy."""
         paths = [self.folder / MANIFEST_NAME, self.folder / CHECKPOINT_NAME]
-        paths += [self.folder / entry["file"] for entry in self.manifest["frames"].values()]
-        return sum(p.stat().st_size for p in paths if p.exists())
+        paths += [self.frame_path(frame) for frame in self.frames]
+        scene_folder = self.folder / SCENE_FOLDER
+        if scene_folder.is_dir() and not scene_folder.is_symlink():
+            paths += [p for p in scene_folder.iterdir() if p.name == "scene.json" or SCENE_ARRAY_RE.fullmatch(p.name)]
+        return sum(p.stat().st_size for p in paths if p.is_file())
 
 
 def open_cache(folder):
     """Open a bake folder for reading; raises CacheError naming what is wrong."""
     folder = Path(folder)
-    if not folder.is_dir():
+    if "\x00" in str(folder) or not folder.is_dir():
         raise CacheError(f"{folder}: cache folder does not exist; bake into it first or check the path")
     return CacheReader(folder)
 
@@ -351,18 +425,54 @@ def read_checkpoint(path):
         CacheError when the file is missing or not a valid checkpoint.
     """
     path = Path(path)
-    try:
-        with np.load(path, allow_pickle=False) as archive:
-            arrays = {key: archive[key] for key in archive.files}
-    except FileNotFoundError as exc:
-        raise CacheError(f"{path}: no checkpoint to resume from; bake without --resume") from exc
-    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
-        raise CacheError(f"{path}: checkpoint is unreadable ({exc}); delete it and bake without --resume") from exc
-    if "checkpoint__frame" not in arrays:
-        raise CacheError(f"{path}: checkpoint has no frame number; delete it and bake without --resume")
+    if not path.is_file():
+        raise CacheError(f"{path}: no checkpoint to resume from; bake without --resume")
+    fix = "delete it and bake without --resume"
+    arrays = read_npz(path, None, CacheError, f"{path}: checkpoint", fix, text_keys=("checkpoint__scene_hash",))
+    frame = arrays.get("checkpoint__frame")
+    if frame is None or frame.shape != () or frame.dtype.kind not in "iu":
+        raise CacheError(f"{path}: checkpoint has no frame number; {fix}")
+    frame = int(frame)
+    if whole_number(frame, *LIMITS["frame"]) is None:
+        raise CacheError(f"{path}: checkpoint frame {frame} is outside {LIMITS['frame']}; {fix}")
+    for key, value in arrays.items():
+        if key != "checkpoint__scene_hash" and value.dtype.kind == "f" and not np.all(np.isfinite(value)):
+            raise CacheError(f"{path}: checkpoint array {key!r} holds NaN or infinite values; {fix}")
     state = state_from_arrays(arrays, source=str(path))
     scene_hash = str(arrays["checkpoint__scene_hash"]) if "checkpoint__scene_hash" in arrays else ""
-    return state, int(arrays["checkpoint__frame"]), scene_hash
+    return state, frame, scene_hash
+
+
+def verify_frames(reader):
+    """Read every listed frame of an open cache and check it against its manifest entry.
+
+    A frame is good when its file exists, its sha256 matches, and its PLY
+    parses with the entry's particle count (its name and time were checked
+    with the manifest). Returns (sorted good frames, list of problems as text).
+    """
+    good, problems = [], []
+    for frame in reader.frames:
+        try:
+            arrays = reader.read_frame(frame)
+        except CacheError as exc:
+            problems.append(str(exc))
+            continue
+        expected = reader.manifest["frames"][str(frame)]["particles"]
+        if len(arrays["ids"]) != expected:
+            problems.append(f"frame {frame}: {len(arrays['ids'])} particles, the manifest lists {expected}")
+            continue
+        good.append(frame)
+    return good, problems
+
+
+def checkpoint_matches_frame(state, arrays):
+    """True when a checkpoint State is the state a frame file was written from (count, ids, positions)."""
+    return (
+        len(state.ids) == len(arrays["ids"])
+        and np.array_equal(state.ids.astype(np.int64), arrays["ids"].astype(np.int64))
+        and np.array_equal(state.positions.astype(np.float32), arrays["positions"])
+        and np.array_equal(state.velocities.astype(np.float32), arrays["velocities"])
+    )
 
 
 def checkpoint_bytes(state, frame, scene_hash):
@@ -383,13 +493,20 @@ class CacheWriter:
         header: manifest fields fixed for the bake: ``scene_name``, ``scene_hash``,
             ``solver`` ({name, settings}), ``fps``, ``frame_start``, ``frame_end``,
             ``particle_spacing``, ``rest_density``.
-        keep_frames: keep the frames already listed in an existing manifest
-            (resume or subrange); otherwise the bake starts a fresh manifest.
-        overwrite: allow replacing a cache of a different scene or solver.
+        keep_frames: frames of the existing manifest to keep (resume or subrange;
+            ``True`` keeps all of them); otherwise the bake starts a fresh manifest
+            and removes the old bake's frame files and checkpoint.
+        overwrite: allow replacing a cache of a different scene or solver, or one
+            whose manifest cannot be read.
+
+    Only files inside ``folder`` whose names this engine writes are ever
+    removed or replaced (``points_<frame>.ply``, ``checkpoint.npz``,
+    ``manifest.json`` and their temporary names); stale temporary files left by
+    a killed bake are removed here.
 
     Raises:
         CacheError: the folder cannot be created or written, or holds another
-            scene's cache and ``overwrite`` is false.
+            scene's cache (or an unreadable manifest) and ``overwrite`` is false.
     """
 
     def __init__(self, folder, header, keep_frames=False, overwrite=False):
@@ -400,11 +517,21 @@ class CacheWriter:
             raise CacheError(
                 f"output folder {self.folder}: cannot create it ({exc.strerror}); choose a writable --out folder"
             ) from exc
-        if not os.access(self.folder, os.W_OK | os.X_OK):
+        if not self.folder.is_dir() or not os.access(self.folder, os.W_OK | os.X_OK):
             raise CacheError(f"output folder {self.folder}: not writable; choose a writable --out folder")
+        remove_stale_temporaries(self.folder)
         previous = None
-        if (self.folder / MANIFEST_NAME).exists():
-            previous = _load_manifest(self.folder)
+        has_manifest = (self.folder / MANIFEST_NAME).exists()
+        if has_manifest:
+            try:
+                previous = _load_manifest(self.folder)
+            except CacheError as exc:
+                if keep_frames or not overwrite:
+                    raise CacheError(
+                        f"output folder {self.folder}: holds a cache that cannot be read ({exc}); "
+                        "choose another --out folder or pass --overwrite to replace it"
+                    ) from None
+        if previous is not None:
             same = (
                 previous.get("scene_hash") == header["scene_hash"]
                 and previous.get("solver", {}).get("name") == header["solver"]["name"]
@@ -426,32 +553,36 @@ class CacheWriter:
         self.manifest["attributes"] = [name for name, _ in PLY_PROPERTIES]
         self.manifest["frames"] = {}
         if previous is not None and keep_frames:
-            self.manifest["frames"] = dict(previous["frames"])
+            kept = previous["frames"]
+            if keep_frames is not True:
+                kept = {key: entry for key, entry in kept.items() if int(key) in set(keep_frames)}
+            self.manifest["frames"] = dict(kept)
             created = previous.get("created", created)
-        elif previous is not None:
-            self._remove_listed_frames(previous)
+        elif has_manifest:
+            self._remove_old_bake()
         self.manifest["created"] = created
         self.manifest["complete"] = False
         self._write_manifest()
 
-    def _remove_listed_frames(self, previous):
-        # A fresh bake replaces the old one; old frames must not linger as if current.
-        for entry in previous["frames"].values():
-            try:
-                (self.folder / entry["file"]).unlink()
-            except FileNotFoundError:
-                pass
-        try:
-            (self.folder / CHECKPOINT_NAME).unlink()
-        except FileNotFoundError:
-            pass
+    def _remove_old_bake(self):
+        # A fresh bake replaces the old one; old frames must not linger as if current. Only names this
+        # engine writes, found in this folder itself, are removed: never a path read from the old manifest.
+        for path in self.folder.iterdir():
+            if FRAME_FILE_RE.fullmatch(path.name) or path.name == CHECKPOINT_NAME:
+                try:
+                    if path.is_file() or path.is_symlink():
+                        path.unlink()
+                except FileNotFoundError:
+                    pass
 
     def _write_manifest(self):
         self.manifest["updated"] = _now()
         text = json.dumps(self.manifest, indent=1, sort_keys=False) + "\n"
-        self._write(self.folder / MANIFEST_NAME, text.encode("utf-8"))
+        self._write(MANIFEST_NAME, text.encode("utf-8"))
 
-    def _write(self, path, data):
+    def _write(self, name, data):
+        # Every file of the bake goes through here: its name is resolved and must stay inside the folder.
+        path = path_inside(self.folder, name, CacheError, "file")
         try:
             write_atomic(path, data)
         except OSError as exc:
@@ -473,7 +604,7 @@ class CacheWriter:
         names = ("positions", "velocities", "ids", "density", "pressure")
         data = frame_bytes(*(arrays[name] for name in names))
         name = frame_file_name(frame)
-        self._write(self.folder / name, data)
+        self._write(name, data)
         self.manifest["frames"][str(int(frame))] = {
             "file": name,
             "particles": int(len(arrays["ids"])),
@@ -489,8 +620,96 @@ class CacheWriter:
     def write_checkpoint(self, state, frame):
         """Save the state after frame ``frame`` for --resume (atomically)."""
         data = checkpoint_bytes(state, frame, self.manifest["scene_hash"])
-        self._write(self.folder / CHECKPOINT_NAME, data)
+        self._write(CHECKPOINT_NAME, data)
+
+    def write_scene_copy(self, scene):
+        """Store the scene being baked in ``scene/`` of the cache folder (``engine.compare`` reads it).
+
+        Every mesh and motion array is written as npz under a name made from its object's index
+        (``emitter0_mesh.npz``, ``collider1_transforms.npz``), so the copy is self-contained, names
+        only files inside the folder, and loads with the same ``scene_hash``.
+        """
+        from .scene import scene_to_dict
+
+        folder = path_inside(self.folder, SCENE_FOLDER, CacheError, "scene folder")
+        try:
+            folder.mkdir(exist_ok=True)
+        except OSError as exc:
+            raise CacheError(f"{folder}: cannot create it ({exc.strerror}); choose a writable --out folder") from exc
+        remove_stale_temporaries(folder)
+        data = scene_to_dict(scene)
+        objects = [("emitter", i, item, obj) for i, (item, obj) in enumerate(zip(data["emitters"], scene.emitters))]
+        objects += [("collider", i, item, obj) for i, (item, obj) in enumerate(zip(data["colliders"], scene.colliders))]
+        for kind, index, item, obj in objects:
+            arrays = {"mesh": {"vertices": getattr(obj, "vertices", None), "triangles": getattr(obj, "triangles", None)},
+                      "transforms": {"matrices": getattr(obj, "transforms", None)},
+                      "vertices": {"vertices": getattr(obj, "frame_vertices", None)}}  # fmt: skip
+            for field, content in arrays.items():
+                if field not in item or item[field] is None or any(v is None for v in content.values()):
+                    continue
+                name = f"{kind}{index}_{field}.npz"
+                buffer = io.BytesIO()
+                np.savez(buffer, **{key: np.asarray(value) for key, value in content.items()})
+                self._write(f"{SCENE_FOLDER}/{name}", buffer.getvalue())
+                item[field] = name
+        text = json.dumps(data, indent=1) + "\n"
+        self._write(SCENE_COPY, text.encode("utf-8"))
+        written = {v for item in data["emitters"] + data["colliders"] for v in item.values() if isinstance(v, str)}
+        for path in folder.iterdir():  # arrays of objects an older scene had
+            if SCENE_ARRAY_RE.fullmatch(path.name) and path.name not in written and path.is_file():
+                path.unlink()
+
+    def missing_frames(self):
+        """Frames from frame_start to frame_end that the manifest does not list."""
+        listed = {int(key) for key in self.manifest["frames"]}
+        span = range(int(self.manifest["frame_start"]), int(self.manifest["frame_end"]) + 1)
+        return [frame for frame in span if frame not in listed]
 
     def mark_complete(self, is_complete=True):
-        self.manifest["complete"] = bool(is_complete)
+        """Mark the cache complete; it stays incomplete while any frame of its range is missing."""
+        self.manifest["complete"] = bool(is_complete) and not self.missing_frames()
         self._write_manifest()
+        return self.manifest["complete"]
+
+
+def remove_stale_temporaries(folder):
+    """Remove temporary files of ``write_atomic`` in ``folder`` left by a process that no longer runs.
+
+    Only ``.<name>.tmp-<pid>`` files whose ``<name>`` this engine writes are
+    touched. Returns the names removed.
+    """
+    removed = []
+    try:
+        entries = list(Path(folder).iterdir())
+    except OSError:
+        return removed
+    ours = (MANIFEST_NAME, CHECKPOINT_NAME, "scene.json")
+    for path in entries:
+        match = TEMPORARY_RE.fullmatch(path.name)
+        name = match.group(1) if match else ""
+        if not (name in ours or FRAME_FILE_RE.fullmatch(name) or SCENE_ARRAY_RE.fullmatch(name)):
+            continue
+        if _process_is_running(int(match.group(2))):
+            continue
+        try:
+            path.unlink()
+            removed.append(path.name)
+        except OSError:
+            pass
+    return removed
+
+
+def _process_is_running(pid):
+    if pid == os.getpid():
+        return True
+    if os.name != "posix":
+        return False  # os.kill(pid, 0) would end the process on Windows; a killed bake is the usual case
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError):
+        return True
+    except OSError:
+        return False
+    return True

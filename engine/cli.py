@@ -8,6 +8,7 @@ with 64. Every command ends with a one-line summary on stderr.
 
 import argparse
 import json
+import os
 import sys
 import time
 from pathlib import Path
@@ -17,6 +18,7 @@ from .progress import PROGRESS_KINDS, format_duration, make_progress
 
 USAGE_EXIT = 64
 CANCELLED_EXIT = 130
+PIPE_CLOSED_EXIT = 141
 
 
 def _exit_code_epilog():
@@ -154,6 +156,8 @@ def _run_bake(scene, solver, out, frames, resume, progress, max_particles, overw
         scene, solver, out, frames=frames, resume=resume, progress=make_progress(progress),
         max_particles=max_particles, overwrite=overwrite,
     )  # fmt: skip
+    for note in result.notes:
+        _say(f"note: {note}")
     done = "cancelled" if result.is_cancelled else "baked"
     last = "none" if result.last_written is None else result.last_written
     _say(
@@ -179,6 +183,10 @@ def describe_cache(folder, verify=False):
     if verify:
         for frame in cache.frames:
             cache.read_frame(frame)
+    # "complete" is what the manifest claims, and only while every frame it lists is still on disk.
+    span = range(manifest["frame_start"], manifest["frame_end"] + 1)
+    is_complete = (manifest.get("complete") is True and all(str(f) in manifest["frames"] for f in span)
+                   and all(cache.frame_path(f).is_file() for f in cache.frames))  # fmt: skip
     return {
         "cache": str(folder),
         "scene_name": manifest.get("scene_name"),
@@ -190,7 +198,7 @@ def describe_cache(folder, verify=False):
         "frames": len(cache.frames),
         "first_frame": cache.frames[0] if cache.frames else None,
         "last_frame": cache.frames[-1] if cache.frames else None,
-        "complete": bool(manifest.get("complete")),
+        "complete": is_complete,
         "particles": {
             "min": min(counts) if counts else 0,
             "max": max(counts) if counts else 0,
@@ -249,10 +257,11 @@ def command_info(args):
 
 
 def command_estimate(args):
-    from .bake import load_scene_any
+    from .bake import check_scene_for_solver, load_scene_any
     from .estimate import estimate_scene, format_bytes
 
     scene = load_scene_any(args.scene)
+    check_scene_for_solver(scene, args.solver)
     result = estimate_scene(scene, solver=args.solver, max_particles=args.max_particles)
     if args.json:
         _print_json(result.as_dict())
@@ -367,8 +376,32 @@ COMMANDS = {
 
 
 def main(argv=None):
-    """Run the command line; returns the exit status (see ``EXIT_CODES``)."""
+    """Run the command line; returns the exit status (see ``EXIT_CODES``).
+
+    Every error is printed once, as one ``error: ...`` line on stderr, and never as a traceback;
+    a reader that closes stdout early (``info --json | head``) ends the command quietly.
+    """
     argv = list(sys.argv[1:] if argv is None else argv)
+    try:
+        return _dispatch(argv)
+    except BrokenPipeError:
+        return _closed_pipe()
+    except SplashdraftError as exc:
+        _say(f"error: {exc}")
+        return exc.exit_code
+    except MemoryError:
+        _say("error: out of memory; use a coarser particle_spacing or a smaller scene (see 'estimate')")
+        return 3
+    except KeyboardInterrupt:
+        _say("error: interrupted")
+        return CANCELLED_EXIT
+    except (RecursionError, ArithmeticError, ValueError, TypeError, LookupError, OSError) as exc:
+        # Not an error the engine raises on purpose: a defect. Named as one, without a traceback.
+        _say(f"error: internal error ({type(exc).__name__}: {exc}); please report it with the command and its inputs")
+        return 1
+
+
+def _dispatch(argv):
     if argv and argv[0] == "compare":
         # Owned by engine.compare (fidelity metrics of one bake against another).
         from .compare import main_compare
@@ -379,14 +412,14 @@ def main(argv=None):
         args = parser.parse_args(argv)
     except SystemExit as exc:
         return 0 if exc.code in (0, None) else USAGE_EXIT
+    return COMMANDS[args.command](args)
+
+
+def _closed_pipe():
+    """The reader of stdout went away (``info --json | head``): end quietly, as a pipe writer does."""
     try:
-        return COMMANDS[args.command](args)
-    except SplashdraftError as exc:
-        _say(f"error: {exc}")
-        return exc.exit_code
-    except MemoryError:
-        _say("error: out of memory; use a coarser particle_spacing or a smaller scene (see 'estimate')")
-        return 3
-    except KeyboardInterrupt:
-        _say("error: interrupted")
-        return CANCELLED_EXIT
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())  # so the interpreter's final flush cannot fail again
+    except (OSError, ValueError):
+        pass
+    return PIPE_CLOSED_EXIT

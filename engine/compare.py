@@ -169,22 +169,46 @@ def count_penetrating(positions, world, time):
     return int(np.count_nonzero(inside))
 
 
-def _world_from(scene_path, manifest):
-    """Rebuild the World from an explicit scene path or one named in the manifest; None if impossible."""
-    candidates = [scene_path] if scene_path else []
-    for key in ("scene_file", "scene_path"):
-        if manifest.get(key):
-            candidates.append(manifest[key])
-    for candidate in candidates:
-        path = Path(candidate)
-        if not path.is_file():
-            if scene_path and candidate == scene_path:
-                raise SplashdraftError(f"compare: scene file {path} does not exist; pass an existing --scene")
-            continue
-        from .scene import load_scene
-        from .world import build_world
+def _world_from(scene_path, dir_b, manifest):
+    """Rebuild the World of bake B; returns (World or None, what was used, in words).
 
-        return build_world(load_scene(path)), str(path)
+    In order: an explicit ``--scene`` (refused unless its hash is B's ``scene_hash``); the copy of
+    the scene stored in B's folder at bake time (``engine.cache.SCENE_COPY``); the scene file
+    named in B's manifest, only when its hash still matches. Otherwise None: the scene B was
+    baked from is not available, and the result says so.
+    """
+    from .cache import SCENE_COPY
+    from .scene import load_scene, scene_hash
+    from .world import build_world
+
+    expected = manifest.get("scene_hash")
+    if scene_path:
+        path = Path(scene_path)
+        if not path.is_file():
+            raise SplashdraftError(f"compare: scene file {path} does not exist; pass an existing --scene")
+        scene = load_scene(path)
+        if scene_hash(scene) != expected:
+            raise SplashdraftError(
+                f"compare: --scene {path} is not the scene {dir_b} was baked from (its hash differs); "
+                "pass that scene, or leave --scene out to use the copy stored in the cache"
+            )
+        return build_world(scene), f"{path} (--scene)"
+    stored = Path(dir_b) / SCENE_COPY
+    if stored.is_file():
+        scene = load_scene(stored)
+        if scene_hash(scene) != expected:
+            raise SplashdraftError(
+                f"compare: the scene copy {stored} does not match its cache's scene_hash; bake {dir_b} again"
+            )
+        return build_world(scene), f"{stored} (the copy stored in cache B)"
+    named = manifest.get("scene_file")
+    if isinstance(named, str) and "\x00" not in named and Path(named).is_file():
+        try:
+            scene = load_scene(named)
+        except SplashdraftError:
+            return None, None
+        if scene_hash(scene) == expected:
+            return build_world(scene), f"{named} (named in cache B's manifest; its hash matches)"
     return None, None
 
 
@@ -233,7 +257,7 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
         common = wanted
     if not common:
         raise SplashdraftError(f"compare: {dir_a} and {dir_b} share no frame; bake the same frame range")
-    world, scene_used = _world_from(scene, cache_b.manifest)
+    world, scene_used = _world_from(scene, dir_b, cache_b.manifest)
     fps = float(cache_b.manifest.get("fps", 24))
     frame_start = int(cache_b.manifest.get("frame_start", common[0]))
     rows = []
@@ -405,8 +429,11 @@ def main_compare(argv=None):
         if args.frames:
             try:
                 first, last = (int(x) for x in args.frames.split(":"))
+                if not 0 <= last - first < 100_000:
+                    raise ValueError
             except ValueError:
-                print(f"compare: --frames {args.frames!r} is not A:B with integers; e.g. --frames 1:48", file=sys.stderr)
+                print(f"compare: --frames {args.frames!r} is not A:B with integers, A <= B, at most 100,000 frames; "
+                      "e.g. --frames 1:48", file=sys.stderr)  # fmt: skip
                 return 64
             frames = range(first, last + 1)
         result = compare_caches(args.dir_a, args.dir_b, frames=frames, scene=args.scene)

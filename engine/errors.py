@@ -71,4 +71,5 @@ EXIT_CODES = {
     7: "validation outside tolerance",
     64: "command-line usage error",
     130: "interrupted; finished frames were kept (resume with --resume)",
+    141: "the reader of the output closed the pipe (e.g. '| head'); nothing else went wrong",
 }

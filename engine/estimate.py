@@ -30,6 +30,8 @@ import json
 import math
 from pathlib import Path
 
+import numpy as np
+
 from .cache import FRAME_DTYPE, ply_header
 from .errors import BudgetError
 
@@ -146,6 +148,81 @@ def check_budget(scene, world, max_particles=None, particles=None):
     return particles
 
 
+#: Work bounds checked before anything is allocated (see ``check_work``): lattice candidates of the
+#: fill meshes' boxes and boundary samples, each at most this many per budget particle, and an
+#: absolute ceiling that keeps the largest allocation under about 2 GB.
+WORK_PER_BUDGET_PARTICLE = 8
+WORK_CEILING = 50_000_000
+
+
+def work_bound(scene):
+    """Closed-form counts of the work a scene asks for, from the scene alone (nothing is built).
+
+    Returns a dict:
+        ``fluid``: fill volume / spacing^3 (each fill clipped to the bounds' volume) plus every stream's
+        layer lattice size times its layer count; the built world's exact count is within a few surface
+        cells of it. ``layers``: the most layers one stream emits. ``fill_candidates``: lattice points in
+        the fill meshes' bounding boxes (what volume sampling allocates). ``boundary``: wall area and
+        collider area / spacing^2 (what boundary sampling allocates, about).
+    """
+    from .geometry import check_mesh
+
+    spacing = scene.particle_spacing
+    extent = scene.bounds.upper - scene.bounds.lower
+    bounds_volume = float(np.prod(extent))
+    fluid = 0.0
+    fill_candidates = 0.0
+    for emitter in scene.fill_emitters:
+        report = check_mesh(emitter.vertices, emitter.triangles)
+        fluid += min(abs(report.volume), bounds_volume) / spacing**3
+        box = emitter.vertices.max(axis=0) - emitter.vertices.min(axis=0)
+        fill_candidates += float(np.prod(box / spacing + 2.0))
+    layers = 0.0
+    for stream in scene.stream_emitters:
+        duration = (stream.frame_end + 1 - stream.frame_start) / scene.fps
+        count = math.ceil(duration * stream.speed / spacing) + 1
+        if stream.shape == "disc":
+            points = (2 * math.floor(stream.radius / spacing) + 1) ** 2 * math.pi / 4
+        else:
+            points = check_mesh(stream.vertices, stream.triangles).area / spacing**2 + 1
+        fluid += points * count
+        layers = max(layers, count)
+    boundary = 2.0 * (extent[0] * extent[1] + extent[1] * extent[2] + extent[0] * extent[2]) / spacing**2
+    for collider in scene.colliders:
+        boundary += check_mesh(collider.vertices, collider.triangles).area / spacing**2
+    return {"fluid": fluid, "layers": layers, "fill_candidates": fill_candidates, "boundary": float(boundary)}
+
+
+def check_work(scene, max_particles=None):
+    """Raise BudgetError before building anything when the scene's closed-form work exceeds the budget.
+
+    The fluid count may exceed the budget four times here (it counts whole fill volumes and stream
+    layers, an upper estimate; the exact check runs on the built world); lattice candidates and boundary samples by ``WORK_PER_BUDGET_PARTICLE``
+    times, up to ``WORK_CEILING``. Stream layers are bounded by the fluid count (every layer holds
+    at least one particle).
+    """
+    limit = budget_limit(scene, max_particles)
+    work = work_bound(scene)
+    spacing = scene.particle_spacing
+    ceiling = min(WORK_PER_BUDGET_PARTICLE * limit + 1_000_000, WORK_CEILING)
+    checks = (
+        ("particles", work["fluid"], 4 * limit + 1_000_000, "raise particle_spacing or budget.max_particles", 1.0 / 3.0),
+        ("stream layers", work["layers"], 4 * limit + 1_000_000, "shorten the streams' frame windows or lower their speed", 1.0),
+        ("fill lattice points (the fill meshes' bounding boxes)", work["fill_candidates"], ceiling,
+         "make the fill meshes smaller or raise particle_spacing", 1.0 / 3.0),
+        ("boundary samples (bounds walls and colliders)", work["boundary"], ceiling,
+         "shrink the bounds or colliders to the shot, or raise particle_spacing", 1.0 / 2.0),
+    )  # fmt: skip
+    for what, count, allowed, fix, power in checks:
+        if count > allowed:
+            coarser = spacing * (count / allowed) ** power
+            raise BudgetError(
+                f"scene {scene.name!r}: about {count:,.0f} {what} at spacing {spacing:g} m exceed what a budget of "
+                f"{limit:,} particles allows ({allowed:,.0f}); {fix} (a spacing of at least {coarser:.3g} m)"
+            )
+    return work
+
+
 def learned_steps_per_frame(scene):
     """Learned steps per frame: ceil(frame interval / the shipped model's longest step).
 
@@ -176,6 +253,7 @@ def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=N
     if world is None:
         from .world import build_world
 
+        check_work(scene, max_particles)
         world = build_world(scene)
     particles, boundary = count_particles(world)
     check_budget(scene, world, max_particles=max_particles, particles=particles)

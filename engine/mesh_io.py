@@ -60,6 +60,10 @@ def read_mesh(path):
             vertices, triangles = _read_npz(path)
     except OSError as exc:
         raise MeshError(f"{path}: cannot read the mesh file ({exc.strerror or exc}); check its permissions") from exc
+    except (ValueError, TypeError, IndexError, KeyError, OverflowError, MemoryError) as exc:
+        # Whatever slipped past the format checks above is still a malformed file, named as such.
+        raise MeshError(f"{path}: malformed {suffix[1:].upper()} mesh ({type(exc).__name__}: {exc}); "
+                        "re-export the mesh") from None  # fmt: skip
     return _checked_arrays(path, vertices, triangles)
 
 
@@ -162,6 +166,9 @@ def _read_ply(path):
                 elements.append([parts[1], int(parts[2]), []])
             except (IndexError, ValueError) as exc:
                 raise MeshError(f"{path}: header line {number}: bad element line {line!r}") from exc
+            if not 0 <= elements[-1][1] <= len(data):
+                raise MeshError(f"{path}: header line {number}: element count {elements[-1][1]} does not fit a "
+                                f"{len(data):,}-byte file; re-export the mesh")  # fmt: skip
         elif parts[0] == "property":
             if not elements:
                 raise MeshError(f"{path}: header line {number}: property before any element")
@@ -218,6 +225,8 @@ def _ply_ascii_body(path, body, elements):
                 for prop in props:
                     if len(prop) == 3:
                         n = int(tokens[position])
+                        if n < 0:
+                            raise ValueError(f"list count {n}")
                         columns[prop[0]].append([float(t) for t in tokens[position + 1 : position + 1 + n]])
                         if len(columns[prop[0]][-1]) != n:
                             raise IndexError
@@ -257,6 +266,9 @@ def _ply_binary_body(path, data, offset, elements, order):
                         n = int(np.frombuffer(data, count_type, 1, offset)[0])
                         offset += count_type.itemsize
                         item_type = np.dtype(order + prop[2])
+                        if n < 0 or offset + item_type.itemsize * n > len(data):
+                            raise MeshError(f"{path}: element {name} row {row}: list count {n} does not fit the file; "
+                                            "re-export the mesh")  # fmt: skip
                         columns[prop[0]].append(np.frombuffer(data, item_type, n, offset))
                         offset += item_type.itemsize * n
                     else:
@@ -282,6 +294,8 @@ def _ply_uniform_lists(data, offset, count, props, order):
                 return None
             n = int(np.frombuffer(data, count_type, 1, position)[0])
             item_type = np.dtype(order + prop[2])
+            if n < 0 or position + item_type.itemsize * n > len(data):
+                return None  # the row-by-row reader names the bad row
             fields.append((prop[0] + "__n", count_type))
             fields.append((prop[0], item_type, (n,)))
             position += count_type.itemsize + item_type.itemsize * n
@@ -305,19 +319,11 @@ def _ply_uniform_lists(data, offset, count, props, order):
 
 
 def _read_npz(path):
-    try:
-        with np.load(path, allow_pickle=False) as archive:
-            missing = [k for k in ("vertices", "triangles") if k not in archive.files]
-            if missing:
-                raise MeshError(
-                    f"{path}: npz mesh lacks array {missing[0]!r} (has {sorted(archive.files)}); "
-                    "store arrays 'vertices' (V, 3) and 'triangles' (T, 3)"
-                )
-            return np.array(archive["vertices"]), np.array(archive["triangles"])
-    except MeshError:
-        raise
-    except (ValueError, OSError, EOFError) as exc:
-        raise MeshError(f"{path}: not a readable npz archive ({exc}); re-export the mesh") from exc
+    from .inputs import read_npz
+
+    arrays = read_npz(path, ("vertices", "triangles"), MeshError, f"{path}: npz mesh",
+                      "store arrays 'vertices' (V, 3) float and 'triangles' (T, 3) int")  # fmt: skip
+    return arrays["vertices"], arrays["triangles"]
 
 
 # --------------------------------------------------------------------------- writing

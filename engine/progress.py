@@ -129,7 +129,11 @@ class BarProgress(SilentProgress):
             self._line(text)
 
     def error(self, message):
-        self._line(f"bake stopped by an error: {message}")
+        # The command line prints the error itself, once; here the bar's line is only ended.
+        if self._drawn:
+            self.stream.write("\n")
+            self.stream.flush()
+            self._drawn = 0
 
     def finished(self, frames, cache, seconds):
         self._line(f"finished {frames} frames in {format_duration(seconds)}; cache in {cache}")

@@ -37,6 +37,7 @@ import numpy as np
 from .boundary import FACE_NAMES
 from .errors import MeshError, SceneError
 from .geometry import check_mesh
+from .inputs import LIMITS, MAX_ARRAY_ELEMENTS, read_json, read_npz, safe_name
 from .mesh_io import _checked_arrays, read_mesh, write_npz
 
 FORMAT = "splashdraft-scene"
@@ -200,7 +201,10 @@ class _Checker:
     def number(self, value, where, minimum=None, exclusive=False, maximum=None, hint=""):
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             self.fail(where, f"expected a number, got {_show(value)}", f"give a number{hint}")
-        value = float(value)
+        try:
+            value = float(value)
+        except OverflowError:
+            value = math.inf
         if not math.isfinite(value):
             self.fail(where, f"must be finite, got {value}", f"give a finite number{hint}")
         if minimum is not None and (value <= minimum if exclusive else value < minimum):
@@ -210,29 +214,44 @@ class _Checker:
             self.fail(where, f"must be <= {maximum:g}, got {value:g}", f"give a value <= {maximum:g}{hint}")
         return value
 
-    def integer(self, value, where, minimum=None):
+    def ranged(self, value, where, limit, hint=""):
+        """A number within ``LIMITS[limit]`` (see DEVELOPERS.md, scene reference)."""
+        low, high = LIMITS[limit]
+        return self.number(value, where, low, maximum=high, hint=hint)
+
+    def integer(self, value, where, minimum=None, maximum=None):
         if isinstance(value, bool) or not isinstance(value, int):
-            if isinstance(value, float) and value.is_integer():
+            if isinstance(value, float) and value.is_integer() and abs(value) <= 2**53:
                 value = int(value)
             else:
                 self.fail(where, f"expected a whole number, got {_show(value)}", "give an integer")
         if minimum is not None and value < minimum:
-            self.fail(where, f"must be >= {minimum}, got {value}", f"give an integer >= {minimum}")
+            self.fail(where, f"must be >= {minimum}, got {_show(value)}", f"give an integer >= {minimum}")
+        if maximum is not None and value > maximum:
+            self.fail(where, f"must be <= {maximum}, got {_show(value)}", f"give an integer <= {maximum}")
         return int(value)
 
-    def vector3(self, value, where, hint=""):
+    def vector3(self, value, where, hint="", limit=None):
         if not isinstance(value, (list, tuple, np.ndarray)) or len(value) != 3:
             self.fail(where, f"expected 3 numbers, got {_show(value)}", f"give [x, y, z]{hint}")
+        if limit is not None:
+            return np.array([self.ranged(v, f"{where}[{i}]", limit, hint=hint) for i, v in enumerate(value)], np.float64)
         return np.array([self.number(v, f"{where}[{i}]", hint=hint) for i, v in enumerate(value)], np.float64)
 
     def text(self, value, where):
-        if not isinstance(value, str) or not value.strip():
-            self.fail(where, f"expected a non-empty string, got {_show(value)}", "give a name")
+        if not safe_name(value):
+            self.fail(where, f"expected a name, got {_show(value)}",
+                      "give 1 to 100 printable characters without / or \\")
         return value
 
 
 def _show(value):
-    text = json.dumps(value) if isinstance(value, (dict, list, str, int, float, bool, type(None))) else repr(value)
+    if isinstance(value, int) and not isinstance(value, bool) and abs(value) > 10**30:
+        return "an integer of more than 30 digits"
+    try:
+        text = json.dumps(value) if isinstance(value, (dict, list, str, int, float, bool, type(None))) else repr(value)
+    except (ValueError, RecursionError):
+        text = f"a {type(value).__name__}"
     return text if len(text) <= 60 else text[:57] + "..."
 
 
@@ -252,15 +271,9 @@ def load_scene(path):
         SceneError / MeshError naming the field or object and the fix.
     """
     path = os.fspath(path)
-    if not os.path.isfile(path):
+    if "\x00" in path or not os.path.isfile(path):
         raise SceneError(f"{path}: scene file not found; check the path")
-    try:
-        with open(path, "r", encoding="utf-8") as handle:
-            data = json.load(handle)
-    except json.JSONDecodeError as exc:
-        raise SceneError(f"{path}: not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg}); fix the syntax") from exc
-    except (OSError, UnicodeDecodeError) as exc:
-        raise SceneError(f"{path}: cannot read the scene file ({exc}); check its permissions and encoding") from exc
+    data = read_json(path, SceneError, "scene file", "fix the file (see the scene reference in DEVELOPERS.md)")
     return scene_from_dict(data, os.path.dirname(os.path.abspath(path)), source=path, allow_inline=False)
 
 
@@ -288,14 +301,19 @@ def scene_from_dict(data, base_dir=".", source=None, allow_inline=True):
         fix = "update Splashdraft" if version > VERSION else f"re-export the scene as version {VERSION}"
         check.fail("version", f"unsupported version {version} (this engine reads version {VERSION})", fix)
     fps = check.number(data["fps"], "fps", 0.0, exclusive=True, hint=" (frames per second)")
-    frame_start = check.integer(data["frame_start"], "frame_start")
-    frame_end = check.integer(data["frame_end"], "frame_end")
+    fps = check.ranged(fps, "fps", "fps", hint=" (frames per second)")
+    frame_start = check.integer(data["frame_start"], "frame_start", *LIMITS["frame"])
+    frame_end = check.integer(data["frame_end"], "frame_end", *LIMITS["frame"])
     if frame_end < frame_start:
         check.fail("frame_end", f"{frame_end} is before frame_start {frame_start}", "set frame_end >= frame_start")
+    if frame_end - frame_start + 1 > LIMITS["frames"][1]:
+        check.fail("frame_end", f"the shot has {frame_end - frame_start + 1:,} frames, more than {LIMITS['frames'][1]:,}",
+                   "bake a shorter frame range")
     spacing = check.number(data["particle_spacing"], "particle_spacing", 0.0, exclusive=True, hint=" in metres")
+    spacing = check.ranged(spacing, "particle_spacing", "particle_spacing", hint=" in metres")
     name = check.text(data.get("name", _default_name(source)), "name")
-    seed = check.integer(data.get("seed", 0), "seed", minimum=0)
-    gravity = check.vector3(data.get("gravity", list(DEFAULT_GRAVITY)), "gravity", hint=" in m/s^2")
+    seed = check.integer(data.get("seed", 0), "seed", *LIMITS["seed"])
+    gravity = check.vector3(data.get("gravity", list(DEFAULT_GRAVITY)), "gravity", hint=" in m/s^2", limit="gravity")
     fluid = _fluid(check, data.get("fluid", {}))
     bounds = _bounds(check, data["bounds"], spacing)
     solver = _solver(check, data.get("solver", {}))
@@ -343,7 +361,8 @@ def _fluid(check, value):
     check.mapping(value, "fluid")
     check.keys(value, ("rest_density", "viscosity"), "fluid")
     return Fluid(
-        rest_density=check.number(value.get("rest_density", 1000.0), "fluid.rest_density", 0.0, exclusive=True, hint=" in kg/m^3"),
+        rest_density=check.ranged(check.number(value.get("rest_density", 1000.0), "fluid.rest_density", 0.0, exclusive=True),
+                                  "fluid.rest_density", "rest_density", hint=" in kg/m^3"),
         viscosity=check.number(value.get("viscosity", 0.02), "fluid.viscosity", 0.0, maximum=1.0, hint=" (XSPH coefficient, 0.01-0.05 is usual)"),
     )
 
@@ -351,8 +370,8 @@ def _fluid(check, value):
 def _bounds(check, value, spacing):
     check.mapping(value, "bounds")
     check.keys(value, ("min", "max", "faces"), "bounds", ("min", "max"))
-    lower = check.vector3(value["min"], "bounds.min", hint=" in metres")
-    upper = check.vector3(value["max"], "bounds.max", hint=" in metres")
+    lower = check.vector3(value["min"], "bounds.min", hint=" in metres", limit="coordinate")
+    upper = check.vector3(value["max"], "bounds.max", hint=" in metres", limit="coordinate")
     for axis, label in enumerate("xyz"):
         if lower[axis] >= upper[axis]:
             check.fail("bounds", f"min {label} = {lower[axis]:g} is not below max {label} = {upper[axis]:g}",
@@ -377,12 +396,12 @@ def _solver(check, value):
     check.keys(value, names, "solver")
     d = SolverSettings()
     settings = SolverSettings(
-        cfl_factor=check.number(value.get("cfl_factor", d.cfl_factor), "solver.cfl_factor", 0.0, exclusive=True, maximum=1.0),
-        max_time_step=check.number(value.get("max_time_step", d.max_time_step), "solver.max_time_step", 0.0, exclusive=True, hint=" in seconds"),
-        min_time_step=check.number(value.get("min_time_step", d.min_time_step), "solver.min_time_step", 0.0, exclusive=True, hint=" in seconds"),
-        density_tolerance=check.number(value.get("density_tolerance", d.density_tolerance), "solver.density_tolerance", 0.0, exclusive=True),
-        divergence_tolerance=check.number(value.get("divergence_tolerance", d.divergence_tolerance), "solver.divergence_tolerance", 0.0, exclusive=True),
-        max_iterations=check.integer(value.get("max_iterations", d.max_iterations), "solver.max_iterations", minimum=1),
+        cfl_factor=check.ranged(value.get("cfl_factor", d.cfl_factor), "solver.cfl_factor", "cfl_factor"),
+        max_time_step=check.ranged(value.get("max_time_step", d.max_time_step), "solver.max_time_step", "time_step", hint=" in seconds"),
+        min_time_step=check.ranged(value.get("min_time_step", d.min_time_step), "solver.min_time_step", "time_step", hint=" in seconds"),
+        density_tolerance=check.ranged(value.get("density_tolerance", d.density_tolerance), "solver.density_tolerance", "tolerance"),
+        divergence_tolerance=check.ranged(value.get("divergence_tolerance", d.divergence_tolerance), "solver.divergence_tolerance", "tolerance"),
+        max_iterations=check.integer(value.get("max_iterations", d.max_iterations), "solver.max_iterations", *LIMITS["max_iterations"]),
     )
     if settings.min_time_step > settings.max_time_step:
         check.fail("solver.min_time_step", f"{settings.min_time_step:g} s exceeds max_time_step {settings.max_time_step:g} s",
@@ -393,7 +412,7 @@ def _solver(check, value):
 def _budget(check, value):
     check.mapping(value, "budget")
     check.keys(value, ("max_particles",), "budget")
-    return Budget(max_particles=check.integer(value.get("max_particles", Budget.max_particles), "budget.max_particles", minimum=1))
+    return Budget(max_particles=check.integer(value.get("max_particles", Budget.max_particles), "budget.max_particles", *LIMITS["max_particles"]))
 
 
 @dataclass(frozen=True)
@@ -425,7 +444,7 @@ def _emitter(context, item, where):
         if report.volume < 0:
             triangles = triangles[:, ::-1].copy()
         jitter = check.number(item.get("jitter", 0.0), f"{label}: jitter", 0.0, maximum=0.49, hint=" (fraction of the spacing)")
-        velocity = check.vector3(item.get("velocity", [0.0, 0.0, 0.0]), f"{label}: velocity", hint=" in m/s")
+        velocity = check.vector3(item.get("velocity", [0.0, 0.0, 0.0]), f"{label}: velocity", hint=" in m/s", limit="velocity")
         return FillEmitter(name=name, vertices=vertices, triangles=triangles, velocity=velocity, jitter=jitter, mesh_file=mesh_file)
     if kind != "stream":
         check.fail(f"{label}: type", f"expected \"fill\" or \"stream\", got {_show(kind)}", "use \"fill\" (a volume at the start) or \"stream\"")
@@ -436,21 +455,25 @@ def _emitter(context, item, where):
         check.keys(item, DISC_KEYS, label, ("center", "direction", "radius", "speed"))
     else:
         check.keys(item, MESH_STREAM_KEYS, label, ("mesh", "direction", "speed"))
-    direction = check.vector3(item["direction"], f"{label}: direction")
+    direction = check.vector3(item["direction"], f"{label}: direction", limit="direction")
     length = float(np.linalg.norm(direction))
-    if length < 1e-12:
-        check.fail(f"{label}: direction", "is the zero vector", "give the direction the liquid leaves in, e.g. [0, 0, -1]")
+    if length < 1e-6:
+        problem = "is the zero vector" if length == 0 else f"has length {length:g}, too short to give a direction"
+        check.fail(f"{label}: direction", problem,
+                   "give the direction the liquid leaves in, e.g. [0, 0, -1]")
     speed = check.number(item["speed"], f"{label}: speed", 0.0, exclusive=True, hint=" in m/s")
-    frame_start = check.integer(item.get("frame_start", context.frame_start), f"{label}: frame_start")
-    frame_end = check.integer(item.get("frame_end", context.frame_end), f"{label}: frame_end")
+    speed = check.ranged(speed, f"{label}: speed", "speed", hint=" in m/s")
+    frame_start = check.integer(item.get("frame_start", context.frame_start), f"{label}: frame_start", *LIMITS["frame"])
+    frame_end = check.integer(item.get("frame_end", context.frame_end), f"{label}: frame_end", *LIMITS["frame"])
     if frame_end < frame_start:
         check.fail(f"{label}: frame_end", f"{frame_end} is before frame_start {frame_start}", "set frame_end >= frame_start")
     transforms, transforms_file = _transforms(context, item.get("transforms"), label)
     fields = dict(name=name, shape=shape, direction=direction / length, speed=speed, frame_start=frame_start,
                   frame_end=frame_end, transforms=transforms, transforms_file=transforms_file)
     if shape == "disc":
-        fields["center"] = check.vector3(item["center"], f"{label}: center", hint=" in metres")
-        fields["radius"] = check.number(item["radius"], f"{label}: radius", 0.0, exclusive=True, hint=" in metres")
+        fields["center"] = check.vector3(item["center"], f"{label}: center", hint=" in metres", limit="coordinate")
+        radius = check.number(item["radius"], f"{label}: radius", 0.0, exclusive=True, hint=" in metres")
+        fields["radius"] = check.ranged(radius, f"{label}: radius", "radius", hint=" in metres")
     else:
         vertices, triangles, mesh_file = _mesh(context, item["mesh"], label)
         report = check_mesh(vertices, triangles)
@@ -501,7 +524,7 @@ def _collider(context, item, where):
 
 def _resolve(context, value, label, what):
     check = context.check
-    if not isinstance(value, str) or not value:
+    if not isinstance(value, str) or not value or "\x00" in value or len(value) > 4096:
         check.fail(label, f"{what} must be a file path, got {_show(value)}", "give a path relative to the scene file")
     return os.path.join(context.base_dir, value)
 
@@ -514,7 +537,7 @@ def _mesh(context, value, label):
         try:
             vertices = np.array(value["vertices"], np.float64)
             triangles = np.array(value["triangles"])
-        except (TypeError, ValueError) as exc:
+        except (TypeError, ValueError, OverflowError) as exc:
             check.fail(f"{label}: mesh", f"inline arrays are not numeric ({exc})", "give vertices (V, 3) and triangles (T, 3)", MeshError)
         mesh_file = None
         try:
@@ -533,6 +556,11 @@ def _mesh(context, value, label):
     bad = int(np.sum(~np.all(np.isfinite(vertices), axis=1)))
     if bad:
         check.fail(label, f"mesh has {bad} vertices with NaN or infinite coordinates", "fix or delete those vertices", MeshError)
+    low, high = LIMITS["coordinate"]
+    far = int(np.sum(np.any((vertices < low) | (vertices > high), axis=1)))
+    if far:
+        check.fail(label, f"mesh has {far} vertices farther than {high:g} m from the origin",
+                   "model the shot near the origin in metres (apply the object's scale)", MeshError)
     if len(triangles) == 0:
         check.fail(label, "mesh has no faces", "give a mesh with triangles or polygons", MeshError)
     return vertices, triangles, mesh_file
@@ -546,16 +574,17 @@ def _array_source(context, value, label, key, what):
         if not os.path.isfile(path):
             check.fail(label, f'{what} file "{value}" not found (looked for {path})', "export it there or fix the path")
         try:
-            with np.load(path, allow_pickle=False) as archive:
-                if key not in archive.files:
-                    check.fail(label, f'{what} file "{value}" has no array "{key}" (has {sorted(archive.files)})',
-                               f'store the array under the name "{key}"')
-                array = np.array(archive[key])
-        except (ValueError, OSError, EOFError) as exc:
-            check.fail(label, f'{what} file "{value}" is not a readable npz archive ({exc})', "re-export it")
+            array = read_npz(path, (key,), SceneError, f'{what} file "{value}"', f'store the array under the name "{key}"')[key]
+        except SceneError as exc:
+            raise SceneError(f"{check.source}: {label}: {exc}") from None
         source = value
     elif context.allow_inline and isinstance(value, (list, tuple, np.ndarray)):
-        array, source = np.asarray(value), None
+        try:
+            array, source = np.asarray(value), None
+        except (ValueError, TypeError) as exc:
+            check.fail(label, f"{what} array is not numeric ({exc})", "give an array of floats")
+        if array.size > MAX_ARRAY_ELEMENTS:
+            check.fail(label, f"{what} array has {array.size:,} values", f"give at most {MAX_ARRAY_ELEMENTS:,}")
     else:
         check.fail(label, f"{what} must be an npz path, got {_show(value)}", "give a path relative to the scene file")
     if not np.issubdtype(array.dtype, np.number) or np.issubdtype(array.dtype, np.complexfloating):
@@ -571,9 +600,15 @@ def _transforms(context, value, label):
     if matrices.ndim != 3 or matrices.shape[1:] != (4, 4) or len(matrices) == 0:
         check.fail(label, f"transforms have shape {matrices.shape}, expected (F, 4, 4) with F >= 1",
                    "store one 4x4 world matrix per frame from the scene's frame_start")
+    if len(matrices) > LIMITS["frames"][1]:
+        check.fail(label, f"transforms hold {len(matrices):,} frames, more than {LIMITS['frames'][1]:,}", "store one per frame")
     if not np.all(np.isfinite(matrices)):
         frame = int(np.argmax(~np.all(np.isfinite(matrices), axis=(1, 2))))
         check.fail(label, f"transform {frame} has NaN or infinite entries", "re-export the motion")
+    low, high = LIMITS["matrix"]
+    if np.any((matrices < low) | (matrices > high)):
+        frame = int(np.argmax(np.any((matrices < low) | (matrices > high), axis=(1, 2))))
+        check.fail(label, f"transform {frame} has an entry beyond {high:g}", "keep translations and scales within the shot")
     bottom = np.abs(matrices[:, 3, :] - np.array([0.0, 0.0, 0.0, 1.0])).max(axis=1)
     if np.any(bottom > 1e-9):
         frame = int(np.argmax(bottom > 1e-9))
@@ -596,9 +631,16 @@ def _frame_vertices(context, value, label, vertex_count):
     if frames.shape[1] != vertex_count:
         check.fail(label, f"per-frame vertices have {frames.shape[1]} vertices but the mesh has {vertex_count}",
                    "export the per-frame vertices from the same mesh (same topology)")
+    if len(frames) > LIMITS["frames"][1]:
+        check.fail(label, f"per-frame vertices hold {len(frames):,} frames, more than {LIMITS['frames'][1]:,}", "store one per frame")
     if not np.all(np.isfinite(frames)):
         frame = int(np.argmax(~np.all(np.isfinite(frames), axis=(1, 2))))
         check.fail(label, f"per-frame vertices of frame {frame} hold NaN or infinite values", "re-export the motion")
+    low, high = LIMITS["coordinate"]
+    if np.any((frames < low) | (frames > high)):
+        frame = int(np.argmax(np.any((frames < low) | (frames > high), axis=(1, 2))))
+        check.fail(label, f"per-frame vertices of frame {frame} lie farther than {high:g} m from the origin",
+                   "model the shot near the origin in metres")
     return frames, source
 
 

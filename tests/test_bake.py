@@ -275,6 +275,7 @@ def test_killed_cli_bake_leaves_a_readable_cache(tmp_path, how):
     )  # fmt: skip
     assert resumed.returncode == 0, resumed.stderr
     assert open_cache(out).frames[-1] >= target
+    assert [p.name for p in out.rglob("*") if ".tmp-" in p.name] == [], "the resumed bake removes stale temporaries"
 
 
 def test_progress_bar_redraws_in_place_on_a_terminal_and_prints_lines_otherwise():

@@ -47,7 +47,7 @@ def test_info_text_and_json(tmp_path, capsys):
     info = json.loads(out)
     assert info["frames"] == 6 and info["first_frame"] == 1 and info["last_frame"] == 6 and info["complete"]
     assert info["solver"] == "sph" and info["settings"] == ToySolver().settings()
-    assert info["disk_bytes"] == sum(p.stat().st_size for p in (tmp_path / "bake").iterdir())
+    assert info["disk_bytes"] == sum(p.stat().st_size for p in (tmp_path / "bake").rglob("*") if p.is_file())
     from engine.cache import read_ply
 
     counts = [len(read_ply(tmp_path / "bake" / f"points_{f:04d}.ply")["ids"]) for f in range(1, 7)]

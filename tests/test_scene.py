@@ -252,7 +252,7 @@ def test_file_level_errors(tmp_path):
         load_scene(tmp_path / "nowhere.json")
     broken = tmp_path / "broken.json"
     broken.write_text('{"format": "splashdraft-scene",\n "version": 1,,}')
-    with pytest.raises(SceneError, match=r"broken\.json: not valid JSON \(line 2, column"):
+    with pytest.raises(SceneError, match=r"broken\.json: scene file is not valid JSON \(line 2, column"):
         load_scene(broken)
 
 

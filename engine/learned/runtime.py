@@ -31,7 +31,14 @@ DEFAULT_TILE_PARTICLES = 12500
 
 
 def make_session(onnx_path, threads=2):
-    """An onnxruntime InferenceSession for the CPU; ModelError if the file is not a loadable model."""
+    """An onnxruntime InferenceSession for the CPU; ModelError if the file is not a loadable model.
+
+    onnxruntime 1.32 writes a device id and a telemetry database under ``~/.cache/Microsoft`` when
+    it starts, unless ``ORT_DISABLE_TELEMETRY`` is set before it is first imported; it is set here
+    (a caller's own value wins), so a bake writes nothing outside its output folder. A process that
+    imported onnxruntime earlier without it keeps onnxruntime's default.
+    """
+    os.environ.setdefault("ORT_DISABLE_TELEMETRY", "1")
     import onnxruntime as ort
 
     options = ort.SessionOptions()
