@@ -20,10 +20,10 @@ import pytest
 
 from engine.cache import CacheWriter, checkpoint_bytes, open_cache, read_checkpoint
 from engine.cli import main
-from engine.errors import BudgetError, CacheError, MeshError, SceneError
+from engine.errors import BudgetError, MeshError, SceneError
 from engine.mesh_io import read_mesh
 from engine.scene import load_scene, scene_hash
-from test_bake import ToySolver, checksums, run, write_tiny_scene
+from test_bake import checksums, run, write_tiny_scene
 
 ROOT = Path(__file__).resolve().parents[1]
 
