@@ -488,3 +488,10 @@ def test_malformed_model_contract_fields_are_model_errors(tmp_path, key, value, 
     path.with_suffix(".json").write_text(json.dumps(contract))
     with pytest.raises(ModelError, match=message):
         LearnedSolver(model=path)
+
+
+def test_zero_particle_budget_on_the_command_line_is_a_usage_error(tmp_path, capsys):
+    """Old code: ``--max-particles 0`` ended in a ZeroDivisionError traceback."""
+    scene = write_tiny_scene(tmp_path)
+    code, _, err = run_cli(["estimate", scene, "--max-particles", 0], capsys)
+    assert code == 64 and "argument --max-particles: 0 is outside 1 .. 100,000,000" in err
