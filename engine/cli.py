@@ -44,9 +44,23 @@ def _add_progress(parser):
     )  # fmt: skip
 
 
+def _particle_budget(text):
+    """argparse type of --max-particles: a whole number within the scene's budget range."""
+    from .inputs import LIMITS
+
+    low, high = LIMITS["max_particles"]
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if not low <= value <= high:
+        raise argparse.ArgumentTypeError(f"{value} is outside {low:,} .. {high:,}")
+    return value
+
+
 def _add_budget(parser):
     parser.add_argument(
-        "--max-particles", type=int, metavar="N",
+        "--max-particles", type=_particle_budget, metavar="N",
         help="Refuse scenes with more than N particles. Default: the scene's budget.max_particles.",
     )
 

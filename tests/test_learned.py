@@ -310,7 +310,7 @@ def test_bad_normalisation_and_invalid_json_are_model_errors(tmp_path):
     with pytest.raises(ModelError, match="normalisation.node_std"):
         LearnedSolver(model=path)
     path.with_suffix(".json").write_text("{not json")
-    with pytest.raises(ModelError, match="not JSON"):
+    with pytest.raises(ModelError, match="model contract is not valid JSON"):
         LearnedSolver(model=path)
 
 

@@ -20,10 +20,10 @@ import pytest
 
 from engine.cache import CacheWriter, checkpoint_bytes, open_cache, read_checkpoint
 from engine.cli import main
-from engine.errors import BudgetError, CacheError, MeshError, SceneError
+from engine.errors import BudgetError, MeshError, SceneError
 from engine.mesh_io import read_mesh
 from engine.scene import load_scene, scene_hash
-from test_bake import ToySolver, checksums, run, write_tiny_scene
+from test_bake import checksums, run, write_tiny_scene
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -469,3 +469,29 @@ def test_budget_error_is_named_for_stream_layers(tmp_path):
     scene = load_scene(_scene_with(tmp_path, _stream(speed=1000.0, frame_end=20000)))
     with pytest.raises(BudgetError, match=r"particles at spacing 0.025 m exceed what a budget"):
         check_work(scene)
+
+
+@pytest.mark.parametrize("key, value, message", [
+    ("inputs", "all of them", r"inputs is not a JSON list"),  # AttributeError before
+    ("normalisation", [1, 2], r"normalisation is not a JSON dict"),  # AttributeError before
+    ("onnx_file", "../elsewhere.onnx", r"onnx_file must be a file name beside it"),  # ValueError before
+    ("rounds", 10**9, r"rounds = 1000000000 is not a whole number from 1 to 100"),  # accepted before
+])  # fmt: skip
+def test_malformed_model_contract_fields_are_model_errors(tmp_path, key, value, message):
+    from engine.errors import ModelError
+    from engine.learned import LearnedSolver
+    from test_learned import copy_model
+
+    path = copy_model(tmp_path)
+    contract = json.loads(path.with_suffix(".json").read_text())
+    contract[key] = value
+    path.with_suffix(".json").write_text(json.dumps(contract))
+    with pytest.raises(ModelError, match=message):
+        LearnedSolver(model=path)
+
+
+def test_zero_particle_budget_on_the_command_line_is_a_usage_error(tmp_path, capsys):
+    """Old code: ``--max-particles 0`` ended in a ZeroDivisionError traceback."""
+    scene = write_tiny_scene(tmp_path)
+    code, _, err = run_cli(["estimate", scene, "--max-particles", 0], capsys)
+    assert code == 64 and "argument --max-particles: 0 is outside 1 .. 100,000,000" in err

@@ -27,6 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import ModelError
+from ..inputs import finite_number, read_json, safe_name, whole_number
 from . import features
 
 CONTRACT_FORMAT = "splashdraft-model-contract"
@@ -129,10 +130,7 @@ def load_contract(model_path):
             f"model contract {path}: file not found; the learned preview needs the .json contract beside the "
             f".onnx model; restore both from models/ or {RETRAIN_HINT}"
         )
-    try:
-        contract = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise ModelError(f"model contract {path}: unreadable or not JSON ({exc}); restore it from models/ or {RETRAIN_HINT}") from exc
+    contract = read_json(path, ModelError, "model contract", f"restore it from models/ or {RETRAIN_HINT}")
     if not isinstance(contract, dict) or contract.get("format") != CONTRACT_FORMAT:
         raise ModelError(f"model contract {path}: format is not {CONTRACT_FORMAT!r}; point --model at a splashdraft model")
     if contract.get("version") != CONTRACT_VERSION:
@@ -153,6 +151,16 @@ def load_contract(model_path):
             f"model contract {path}: history_length {contract['history_length']} but this engine builds "
             f"{features.HISTORY_LENGTH}; {RETRAIN_HINT}"
         )
+    for key, kind in (("inputs", list), ("normalisation", dict), ("onnx_sha256", str)):
+        if not isinstance(contract[key], kind):
+            raise ModelError(f"model contract {path}: {key} is not a JSON {kind.__name__}; {RETRAIN_HINT}")
+    if not safe_name(contract["onnx_file"]) or not all(isinstance(i, dict) for i in contract["inputs"]):
+        raise ModelError(f"model contract {path}: onnx_file must be a file name beside it and inputs a list of "
+                         f"objects; {RETRAIN_HINT}")  # fmt: skip
+    for key, low, high in (("rounds", 1, 100), ("max_neighbours", 1, 100_000), ("max_boundary_neighbours", 1, 100_000)):
+        if whole_number(contract[key], low, high) is None:
+            raise ModelError(f"model contract {path}: {key} = {contract[key]!r} is not a whole number from {low} "
+                             f"to {high}; {RETRAIN_HINT}")  # fmt: skip
     expected_inputs = [[n, t, s] for n, t, s in INPUT_SPECS]
     given_inputs = [[i.get("name"), i.get("dtype"), i.get("shape")] for i in contract["inputs"]]
     if given_inputs != expected_inputs:
@@ -162,14 +170,16 @@ def load_contract(model_path):
         )
     for key in ("radius_spacings", "density_support_spacings", "step_froude", "step_froude_min"):
         value = contract[key]
-        if not isinstance(value, (int, float)) or not 0 < value < 100:
+        if finite_number(value) is None or not 0 < value < 100:
             raise ModelError(f"model contract {path}: {key} = {value!r} is not a positive number; {RETRAIN_HINT}")
     if contract["step_froude_min"] > contract["step_froude"]:
         raise ModelError(f"model contract {path}: step_froude_min {contract['step_froude_min']} is larger than "
                          f"step_froude {contract['step_froude']}; {RETRAIN_HINT}")
     stats = {}
     for key, size in _STAT_SIZES.items():
-        values = np.asarray(contract["normalisation"].get(key, []), np.float64)
+        raw = contract["normalisation"].get(key, [])
+        numbers = isinstance(raw, list) and all(finite_number(v) is not None for v in raw)
+        values = np.asarray(raw if numbers else [], np.float64)
         if values.shape != (size,) or not np.all(np.isfinite(values)):
             raise ModelError(
                 f"model contract {path}: normalisation.{key} must be {size} finite numbers, got "
