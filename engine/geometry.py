@@ -450,7 +450,7 @@ class PushResult(NamedTuple):
 
 
 def push_out(points, sample_points, sample_normals, margin, *, vertices=None, triangles=None,
-             two_sided=False, reach=None, tree=None):
+             two_sided=False, reach=None, tree=None, previous=None):
     """Move points out of a collider to at least ``margin`` in front of its surface.
 
     The signed distance is approximated by the plane of the nearest surface
@@ -475,6 +475,12 @@ def push_out(points, sample_points, sample_normals, margin, *, vertices=None, tr
             (default: all points for closed colliders, one margin + the sample
             gap estimate for sheets is up to the caller).
         tree: optional cKDTree of ``sample_points`` (reuse for static colliders).
+        previous: optional (N, 3) positions the points moved from in this step. A point
+            is then sent back to the side it came from: a sheet crossed between the two
+            positions (its plane's sign changed) pushes the point back to the old side,
+            and a point inside a closed collider leaves by the sample nearest to where it
+            came from, not the one nearest to where it is (through a wall one spacing
+            thick, the nearest surface is often the far one).
 
     Returns:
         PushResult(points, pushed, sample_index).
@@ -494,26 +500,51 @@ def push_out(points, sample_points, sample_normals, margin, *, vertices=None, tr
     s = np.asarray(sample_points)[index]
     n = np.asarray(sample_normals)[index]
     d = np.einsum("ij,ij->i", points - s, n)
+    if previous is not None:
+        previous = np.asarray(previous, np.float64).reshape(-1, 3)
     if two_sided:
-        move = found & (np.abs(d) < margin)
         side = np.where(d >= 0.0, 1.0, -1.0)
+        move = found & (np.abs(d) < margin)
+        if previous is not None:
+            before = np.einsum("ij,ij->i", previous - s, n)
+            crossed = found & (np.sign(before) != np.sign(d)) & (before != 0.0)
+            side = np.where(crossed, np.where(before >= 0.0, 1.0, -1.0), side)
+            move |= crossed
         target = side * margin
         result[move] += ((target - d)[move])[:, None] * n[move]
         pushed[move] = True
         return PushResult(result, pushed, nearest)
     near = found & (d < margin)
     if vertices is not None and triangles is not None:
-        candidates = np.flatnonzero(found & ((d < margin) | (distance < margin)))
+        # With ``previous``, every point within a spacing-like distance (4 margins) of a sample is
+        # tested: in a thin wall's corner the nearest sample can be the floor's, with the point
+        # already inside the wall beside it.
+        close = 4.0 * margin if previous is not None else margin
+        candidates = np.flatnonzero(found & ((d < margin) | (distance < close)))
         inside = np.zeros(len(points), bool)
         if len(candidates):
             inside[candidates] = inside_mesh(points[candidates], vertices, triangles)
+        back = np.zeros(len(points), bool)
+        if previous is not None and inside.any():
+            # A point that entered in this step goes back to where it came from (outside), and
+            # leaves its velocity's normal part at the surface nearest to that spot.
+            rows = np.flatnonzero(inside)
+            came_from_outside = ~inside_mesh(previous[rows], vertices, triangles)
+            rows = rows[came_from_outside]
+            if len(rows):
+                _, entry = tree.query(previous[rows], k=1)
+                nearest[rows] = entry
+                result[rows] = previous[rows]
+                back[rows] = True
+                inside[rows] = False
         front = near & ~inside & (d >= 0.0)
         deep = inside & (d < margin)
         crease = inside & (d >= margin)
         move = front | deep
+        move &= ~back
         result[move] += ((margin - d)[move])[:, None] * n[move]
         result[crease] = s[crease] + margin * n[crease]
-        pushed[move | crease] = True
+        pushed[move | crease | back] = True
         return PushResult(result, pushed, nearest)
     result[near] += ((margin - d)[near])[:, None] * n[near]
     pushed[near] = True

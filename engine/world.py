@@ -47,6 +47,11 @@ from .state import State, append, select
 
 #: Fraction of the spacing that enforce_bounds keeps particles away from walls and collider surfaces.
 CONTACT_MARGIN = 0.25
+#: Spacings from its nearest surface sample within which a particle feels a sheet (open collider).
+#: Samples lie about one spacing apart, so a particle between them can be 0.7 spacings from the
+#: nearest one while touching the sheet; at 1.0 particles rested on sagging sheets unseen and
+#: slipped through (bench/splash_suite.py, sheet_drop).
+SHEET_REACH = 1.5
 #: Spacings a new stream particle keeps from every liquid particle; closer, the space is taken and
 #: the particle is not created (World.emit). A free stream's previous layer is one spacing or more
 #: away (gravity only stretches it), so only a blocked nozzle is affected.
@@ -433,8 +438,12 @@ class World:
 
     # -- constraints
 
-    def enforce_bounds(self, state):
+    def enforce_bounds(self, state, previous=None):
         """Apply the hard constraints at ``state.time``; returns a new State.
+
+        ``previous``: optional (N, 3) positions of the same particles before the step that
+        led here; with it, a particle that crossed a sheet or entered a thin collider wall
+        is sent back to the side it came from (``geometry.push_out``).
 
         1. Particles beyond an open bounds face are removed (counted in ``removed``).
         2. Particles inside a collider, or closer than ``contact_margin`` in front
@@ -459,10 +468,12 @@ class World:
         if removed:
             state = self._account_removed(state, outside)
             state = select(state, ~outside)
+            if previous is not None:
+                previous = previous[~outside]
         positions = state.positions.copy()
         velocities = state.velocities.copy()
         if self.colliders and len(positions):
-            self._push_out_of_colliders(positions, velocities, state.time)
+            self._push_out_of_colliders(positions, velocities, state.time, previous)
         margin = self.contact_margin
         clamped = np.zeros(len(positions), bool)
         for axis in range(3):
@@ -494,7 +505,7 @@ class World:
             scalars[energy.OVER_REMOVED] = scalars.get(energy.OVER_REMOVED, 0.0) + float(np.count_nonzero(flags[leaving]))
         return dataclasses.replace(state, scalars=scalars)
 
-    def _push_out_of_colliders(self, positions, velocities, t):
+    def _push_out_of_colliders(self, positions, velocities, t, previous=None):
         """In place: push particle positions out of every collider at time t, fix velocities."""
         self.boundary_at(t)
         _, per_collider = self._cache["colliders"]
@@ -513,11 +524,14 @@ class World:
             near = np.flatnonzero(np.all((positions >= lo) & (positions <= hi), axis=1))
             if len(near) == 0:
                 continue
+            before = None if previous is None else previous[near]
             if collider.is_closed:
                 vertices = collider_vertices_at(collider, t, self.fps)[0]
-                result = push_out(positions[near], sp, sn, margin, vertices=vertices, triangles=collider.triangles)
+                result = push_out(positions[near], sp, sn, margin, vertices=vertices, triangles=collider.triangles,
+                                  previous=before)
             else:
-                result = push_out(positions[near], sp, sn, margin, two_sided=True, reach=self.particle_spacing)
+                result = push_out(positions[near], sp, sn, margin, two_sided=True, reach=SHEET_REACH * self.particle_spacing,
+                                  previous=before)
             moved = near[result.pushed]
             if len(moved) == 0:
                 continue

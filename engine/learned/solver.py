@@ -200,6 +200,7 @@ class LearnedSolver:
             state = dataclasses.replace(state, particle_arrays=arrays)
         for k in range(count):
             t_next = t_end if k == count - 1 else t + dt
+            before = state.positions
             if state.count:
                 started = time.perf_counter()
                 accelerations, graph = self.step_acceleration(state, world, units, t_next - t)
@@ -227,7 +228,7 @@ class LearnedSolver:
             else:
                 state = dataclasses.replace(state, time=t_next)
             started = time.perf_counter()
-            state = world.enforce_bounds(state)
+            state = world.enforce_bounds(state, previous=before)
             first_new = state.next_id
             state = world.emit(state, t, t_next)
             if state.next_id > first_new:
