@@ -139,8 +139,19 @@ class SPLASHDRAFT_PG_shot(bpy.types.PropertyGroup):
                 "renders run no Python and need no add-on, only the cache folder at the same path")),
         default="AUTO", update=_redraw_display)
     use_surface: BoolProperty(
-        name="Surface preview", description="Show a meshed liquid surface built from the points instead of spheres",
+        name="Liquid surface", description="Show one joined, smoothed liquid surface built from the points "
+        "instead of a sphere per particle (Geometry Nodes; renders need no add-on)",
         default=False, update=_redraw_display)
+    surface_reach: FloatProperty(
+        name="Reach", description="How far each particle reaches into the surface, in particle spacings; "
+        "at least 0.9 so that neighbours join, larger merges more spray into the body",
+        default=1.0, min=0.9, max=3.0, update=_redraw_display)
+    surface_detail: FloatProperty(
+        name="Voxel size", description="Size of the volume cells the surface is built from, in particle spacings; "
+        "smaller is finer and slower", default=0.6, min=0.2, max=2.0, update=_redraw_display)
+    surface_smoothing: IntProperty(
+        name="Smoothing", description="Relaxation passes over the surface; more rounds off the particle bumps "
+        "and thins small droplets", default=3, min=0, max=30, update=_redraw_display)
     # Estimate and bake state (written by the operators, shown by the panel)
     estimate_text: StringProperty(name="Estimate", description="Summary of the last estimate")
     is_over_budget: BoolProperty(name="Over budget", description="The last estimate exceeded the budget")
