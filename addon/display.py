@@ -21,9 +21,12 @@ Two ways to play back (the shot's ``playback`` setting; ``AUTO``, the default, p
   ``speed``, ``id`` attributes), so no Python runs while rendering and the
   .blend renders without the add-on; the base mesh stays empty.
 
-The frame handler never raises into Blender: a missing or corrupt frame shows
-as empty and is reported once per version. In ``NODES`` mode a missing file
-shows as empty with the importer's warning on the modifier.
+The frame handlers never raise into Blender: a missing, truncated or corrupt
+frame (checked against the manifest's checksum) shows as empty under
+``REFILL`` and is named in the panel and once on the console; under ``NODES``
+a ``frame_change_post`` handler checks the shown frame the same way (the
+reader node itself shows what the file holds), and a finished bake is checked
+whole.
 """
 
 from pathlib import Path
@@ -67,6 +70,7 @@ def clear_warnings():
     _warned.clear()
     _reported.clear()
     _last_shown.clear()
+    _checked.clear()
 
 
 def reader_for(folder):
@@ -140,15 +144,16 @@ def frame_arrays(folder, frame):
     """Arrays of ``frame`` in the bake ``folder``, or an empty frame (warned once) when it cannot be read."""
     try:
         reader = reader_for(folder)
-    except CacheError as exc:
-        warn_once((folder, "open"), str(exc))
+    except CacheError:
+        warn_once((folder, "open"), f"version {Path(folder).name}: no readable manifest.json; "
+                  "bake this version again")
         return empty_frame()
     if str(int(frame)) not in reader.manifest["frames"]:
         return empty_frame()  # outside the baked range (or not baked yet): nothing to show, nothing wrong
     try:
         return reader.read_frame(frame)
-    except CacheError as exc:
-        warn_once((folder, "frame"), f"{exc} (showing nothing on frames that fail like this)")
+    except CacheError:
+        warn_once((folder, "frame", int(frame)), f"{frame_problem(folder, frame)} (shown empty)")
         return empty_frame()
 
 
@@ -196,6 +201,71 @@ def on_frame_change(scene, depsgraph=None):
         show_frame(scene)
     except Exception as exc:  # noqa: BLE001 - a handler must not break playback or rendering
         warn_once(("handler", type(exc).__name__), f"could not show frame {scene.frame_current}: {exc}")
+
+
+_checked = {}       # frame file path -> ((size, mtime_ns), problem text or None)
+
+
+def frame_problem(folder, frame):
+    """Why a listed frame of the bake ``folder`` cannot be shown as baked, or None when it is sound.
+
+    Missing, truncated or altered files are found by the manifest's checksum (and the PLY parse),
+    each file once per size and modification time. Frames the manifest does not list are not
+    problems (outside the baked range). The text is short, names the version, frame and file,
+    and says what to do.
+    """
+    try:
+        reader = reader_for(folder)
+    except CacheError:
+        return f"version {Path(folder).name}: its manifest.json is missing or damaged; bake this version again"
+    if str(int(frame)) not in reader.manifest["frames"]:
+        return None
+    path = reader.frame_path(frame)
+    version = Path(folder).name
+    try:
+        stat = path.stat()
+    except OSError:
+        return f"version {version}: frame {frame} ({path.name}) is missing; bake this version again"
+    key = (stat.st_size, stat.st_mtime_ns)
+    cached = _checked.get(str(path))
+    if cached is not None and cached[0] == key:
+        return cached[1]
+    try:
+        reader.read_frame(frame)
+        problem = None
+    except CacheError:
+        problem = f"version {version}: frame {frame} ({path.name}) is damaged; bake this version again"
+    _checked[str(path)] = (key, problem)
+    return problem
+
+
+def check_version(folder):
+    """Problems of every listed frame of ``folder`` (list of str; empty when all are sound)."""
+    try:
+        frames = reader_for(folder).frames
+    except CacheError:
+        return [frame_problem(folder, 0)]
+    return [problem for problem in (frame_problem(folder, frame) for frame in frames) if problem]
+
+
+@bpy.app.handlers.persistent
+def on_frame_checked(scene, depsgraph=None):
+    """frame_change_post handler: in NODES playback, check the shown frame (REFILL checks as it reads).
+
+    The file-reader node shows whatever the file holds; this names a damaged or missing frame in the
+    panel and once on the console. Renders of the .blend without the add-on simply skip the check.
+    """
+    try:
+        if scene.splashdraft.display_object is None or not reads_in_nodes(scene):
+            return
+        version = current_version(scene)
+        if version is None:
+            return
+        problem = frame_problem(version.folder, scene.frame_current)
+        if problem:
+            warn_once((version.folder, "frame", scene.frame_current), problem)
+    except Exception as exc:  # noqa: BLE001 - a handler must not break playback or rendering
+        warn_once(("check", type(exc).__name__), f"could not check frame {scene.frame_current}: {exc}")
 
 
 @bpy.app.handlers.persistent
@@ -574,12 +644,15 @@ def refresh(scene):
 def register():
     if on_frame_change not in bpy.app.handlers.frame_change_pre:
         bpy.app.handlers.frame_change_pre.append(on_frame_change)
+    if on_frame_checked not in bpy.app.handlers.frame_change_post:
+        bpy.app.handlers.frame_change_post.append(on_frame_checked)
     if on_file_loaded not in bpy.app.handlers.load_post:
         bpy.app.handlers.load_post.append(on_file_loaded)
 
 
 def unregister():
     for handlers, function in ((bpy.app.handlers.frame_change_pre, on_frame_change),
+                               (bpy.app.handlers.frame_change_post, on_frame_checked),
                                (bpy.app.handlers.load_post, on_file_loaded)):
         for existing in list(handlers):
             if getattr(existing, "__name__", "") == function.__name__ and \

@@ -43,6 +43,7 @@ class SPLASHDRAFT_PT_shot(_SidebarPanel, bpy.types.Panel):
         if paths.is_learned_available():
             col.prop(shot, "solver")
         col.prop(shot, "max_particles")
+        col.prop(shot, "confirm_minutes")
         col.prop(shot, "cache_dir")
 
         box = layout.box()
