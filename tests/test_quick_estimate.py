@@ -52,12 +52,12 @@ def test_half_outside_and_wholly_outside_fills_are_counted_as_dropped():
 
 def test_a_fine_spacing_is_counted_on_a_coarser_lattice_within_a_few_percent():
     """At 2 mm the cube holds 200^3 = 8,000,000 particles; sampling stays at ~20k points and the
-    count for the half outside (4,000,000) is within 3 % (a 100k-point lattice has ~46 cells per axis,
-    so a face may shift by one cell: 1/46 ~ 2 %)."""
+    count for the half outside (4,000,000) is within 4 % (a 40k-point lattice has ~34 cells per axis,
+    so a face may shift by one cell: 1/34 ~ 3 %)."""
     scene = box_scene((0.8, 0.2, 0.2), (1.2, 0.6, 0.6), spacing=0.002)
     outside = fill_outside_bounds(scene)["water"]
-    assert outside["inside_mesh"] == pytest.approx(8_000_000, rel=0.03)
-    assert outside["outside_bounds"] == pytest.approx(4_000_000, rel=0.03)
+    assert outside["inside_mesh"] == pytest.approx(8_000_000, rel=0.04)
+    assert outside["outside_bounds"] == pytest.approx(4_000_000, rel=0.04)
 
 
 def test_demo_shot_count_is_within_five_percent_of_the_built_world(tmp_path):
