@@ -358,10 +358,10 @@ def surface_group(material):
 
     Steps: every point becomes a sphere of ``Radius`` in a volume of ``Voxel Size`` (Points to
     Volume); the union is meshed (Volume to Mesh), so neighbouring particles join into one
-    closed surface; the mesh is relaxed ``Smoothing`` times (Blur Attribute on positions,
-    which rounds the sphere bumps); then every vertex moves ``Shrink`` inwards along its
-    normal, so a flat face of the liquid sits about half a spacing beyond the outer particles
-    (where the particles' own volume ends). A lone droplet keeps a sphere of about
+    closed surface; every vertex moves ``Shrink`` inwards along its normal, so a flat face of
+    the liquid sits about half a spacing beyond the outer particles (where the particles' own
+    volume ends); then the mesh is relaxed ``Smoothing`` times (Blur Attribute on positions,
+    which rounds the sphere bumps). A lone droplet keeps a sphere of about
     ``Radius - Shrink`` and a one-particle sheet a thickness of about twice that, so spray and
     thin sheets stay visible. Each vertex takes ``velocity`` and ``speed`` of its nearest
     particle, for shading and motion blur. Every input is a length in Blender units (set
@@ -395,7 +395,6 @@ def surface_group(material):
     links.new(position.outputs["Position"], blur.inputs["Value"])
     links.new(source.outputs["Smoothing"], blur.inputs["Iterations"])
     relax = nodes.new("GeometryNodeSetPosition")
-    links.new(to_mesh.outputs["Mesh"], relax.inputs["Geometry"])
     links.new(blur.outputs["Value"], relax.inputs["Position"])
     # Move the surface in, from the sphere union to where the particles' volume ends.
     normal = nodes.new("GeometryNodeInputNormal")
@@ -408,13 +407,16 @@ def surface_group(material):
     links.new(source.outputs["Shrink"], negate.inputs[0])
     links.new(negate.outputs["Value"], inward.inputs["Scale"])
     shrink = nodes.new("GeometryNodeSetPosition")
-    links.new(relax.outputs["Geometry"], shrink.inputs["Geometry"])
+    links.new(to_mesh.outputs["Mesh"], shrink.inputs["Geometry"])
     links.new(inward.outputs["Vector"], shrink.inputs["Offset"])
+    # Shrink first, relax after: relaxing a droplet's small sphere first would leave the shrink
+    # nothing to take from (it would vanish); this way a lone droplet keeps about half a spacing.
+    links.new(shrink.outputs["Geometry"], relax.inputs["Geometry"])
     # Velocity and speed of the nearest particle, for shading and motion blur.
     nearest = nodes.new("GeometryNodeSampleNearest")
     nearest.domain = "POINT"
     links.new(to_points.outputs["Points"], nearest.inputs["Geometry"])
-    geometry = shrink.outputs["Geometry"]
+    geometry = relax.outputs["Geometry"]
     for attribute, kind in (("velocity", "FLOAT_VECTOR"), ("speed", "FLOAT")):
         read = nodes.new("GeometryNodeInputNamedAttribute")
         read.data_type = kind
