@@ -7,7 +7,8 @@ points: ``velocity`` (Blender units/s, what motion blur reads), ``speed``
 
 Rendering: a Geometry Nodes modifier turns the vertices into spheres
 (Mesh to Points, radius = point size x spacing) and sets a material coloured by
-speed; an optional second modifier meshes a surface (points -> volume -> mesh).
+speed; a second modifier, switched by ``use_surface``, builds one joined liquid surface instead
+(``surface_group``).
 
 Two ways to play back (the shot's ``playback`` setting; ``AUTO``, the default, picks
 ``NODES`` where Blender has the file-import nodes and ``REFILL`` elsewhere):
@@ -20,9 +21,12 @@ Two ways to play back (the shot's ``playback`` setting; ``AUTO``, the default, p
   ``speed``, ``id`` attributes), so no Python runs while rendering and the
   .blend renders without the add-on; the base mesh stays empty.
 
-The frame handler never raises into Blender: a missing or corrupt frame shows
-as empty and is reported once per version. In ``NODES`` mode a missing file
-shows as empty with the importer's warning on the modifier.
+The frame handlers never raise into Blender: a missing, truncated or corrupt
+frame (checked against the manifest's checksum) shows as empty under
+``REFILL`` and is named in the panel and once on the console; under ``NODES``
+a ``frame_change_post`` handler checks the shown frame the same way (the
+reader node itself shows what the file holds), and a finished bake is checked
+whole.
 """
 
 from pathlib import Path
@@ -34,14 +38,13 @@ from ..engine.cache import FRAME_FILE_PATTERN, open_cache
 from ..engine.errors import CacheError
 
 POINTS_GROUP = "Splashdraft points"
-SURFACE_GROUP = "Splashdraft surface"
+SURFACE_GROUP = "Splashdraft liquid surface"
 PASS_GROUP = "Splashdraft pass-through"
 READER_GROUP = "Splashdraft file reader"
 READER_MODIFIER = "Splashdraft file reader"
 POINTS_MODIFIER = "Splashdraft spheres"
 SURFACE_MODIFIER = "Splashdraft surface"
 MATERIAL_NAME = "Splashdraft liquid"
-SPEED_FOR_WHITE = 3.0  # m/s: speeds at and above this show the lightest colour of the ramp
 
 _readers = {}       # folder -> (manifest mtime_ns, CacheReader)
 _warned = set()     # (folder, kind) already reported
@@ -67,6 +70,7 @@ def clear_warnings():
     _warned.clear()
     _reported.clear()
     _last_shown.clear()
+    _checked.clear()
 
 
 def reader_for(folder):
@@ -140,15 +144,16 @@ def frame_arrays(folder, frame):
     """Arrays of ``frame`` in the bake ``folder``, or an empty frame (warned once) when it cannot be read."""
     try:
         reader = reader_for(folder)
-    except CacheError as exc:
-        warn_once((folder, "open"), str(exc))
+    except CacheError:
+        warn_once((folder, "open"), f"version {Path(folder).name}: no readable manifest.json; "
+                  "bake this version again")
         return empty_frame()
     if str(int(frame)) not in reader.manifest["frames"]:
         return empty_frame()  # outside the baked range (or not baked yet): nothing to show, nothing wrong
     try:
         return reader.read_frame(frame)
-    except CacheError as exc:
-        warn_once((folder, "frame"), f"{exc} (showing nothing on frames that fail like this)")
+    except CacheError:
+        warn_once((folder, "frame", int(frame)), f"{frame_problem(folder, frame)} (shown empty)")
         return empty_frame()
 
 
@@ -198,6 +203,71 @@ def on_frame_change(scene, depsgraph=None):
         warn_once(("handler", type(exc).__name__), f"could not show frame {scene.frame_current}: {exc}")
 
 
+_checked = {}       # frame file path -> ((size, mtime_ns), problem text or None)
+
+
+def frame_problem(folder, frame):
+    """Why a listed frame of the bake ``folder`` cannot be shown as baked, or None when it is sound.
+
+    Missing, truncated or altered files are found by the manifest's checksum (and the PLY parse),
+    each file once per size and modification time. Frames the manifest does not list are not
+    problems (outside the baked range). The text is short, names the version, frame and file,
+    and says what to do.
+    """
+    try:
+        reader = reader_for(folder)
+    except CacheError:
+        return f"version {Path(folder).name}: its manifest.json is missing or damaged; bake this version again"
+    if str(int(frame)) not in reader.manifest["frames"]:
+        return None
+    path = reader.frame_path(frame)
+    version = Path(folder).name
+    try:
+        stat = path.stat()
+    except OSError:
+        return f"version {version}: frame {frame} ({path.name}) is missing; bake this version again"
+    key = (stat.st_size, stat.st_mtime_ns)
+    cached = _checked.get(str(path))
+    if cached is not None and cached[0] == key:
+        return cached[1]
+    try:
+        reader.read_frame(frame)
+        problem = None
+    except CacheError:
+        problem = f"version {version}: frame {frame} ({path.name}) is damaged; bake this version again"
+    _checked[str(path)] = (key, problem)
+    return problem
+
+
+def check_version(folder):
+    """Problems of every listed frame of ``folder`` (list of str; empty when all are sound)."""
+    try:
+        frames = reader_for(folder).frames
+    except CacheError:
+        return [frame_problem(folder, 0)]
+    return [problem for problem in (frame_problem(folder, frame) for frame in frames) if problem]
+
+
+@bpy.app.handlers.persistent
+def on_frame_checked(scene, depsgraph=None):
+    """frame_change_post handler: in NODES playback, check the shown frame (REFILL checks as it reads).
+
+    The file-reader node shows whatever the file holds; this names a damaged or missing frame in the
+    panel and once on the console. Renders of the .blend without the add-on simply skip the check.
+    """
+    try:
+        if scene.splashdraft.display_object is None or not reads_in_nodes(scene):
+            return
+        version = current_version(scene)
+        if version is None:
+            return
+        problem = frame_problem(version.folder, scene.frame_current)
+        if problem:
+            warn_once((version.folder, "frame", scene.frame_current), problem)
+    except Exception as exc:  # noqa: BLE001 - a handler must not break playback or rendering
+        warn_once(("check", type(exc).__name__), f"could not check frame {scene.frame_current}: {exc}")
+
+
 @bpy.app.handlers.persistent
 def on_file_loaded(*_args):
     """load_post handler: forget readers and warnings of the previous file."""
@@ -225,8 +295,17 @@ def _input_socket(group, name, socket_type, default, minimum=0.0):
     return socket
 
 
+#: The speed colouring (our own): colour follows the height a still drop would have to fall to move
+#: as fast, h = speed^2 / (2 g), from 0 (resting) to ``FALL_HEIGHT_FOR_TOP`` metres and above.
+#: Being quadratic in speed, slow flow stays dark and only the energetic splash lights up.
+FALL_HEIGHT_FOR_TOP = 0.45  # m; a free fall of 45 cm ends at about 3 m/s
+STANDARD_GRAVITY = 9.80665  # m/s^2
+#: Ramp stops (position, linear RGBA): deep teal at rest, jade when moving, amber in the fast splash.
+SPEED_RAMP = ((0.0, (0.015, 0.12, 0.13, 1.0)), (0.45, (0.05, 0.48, 0.42, 1.0)), (1.0, (0.96, 0.66, 0.24, 1.0)))
+
+
 def liquid_material():
-    """Material coloured by the ``speed`` attribute: deep blue when still, near white when fast."""
+    """Material coloured by the ``speed`` attribute through the fall-height ramp above."""
     material = bpy.data.materials.get(MATERIAL_NAME)
     if material is not None:
         return material
@@ -237,16 +316,22 @@ def liquid_material():
     shader = next(n for n in nodes if n.type == "BSDF_PRINCIPLED")
     attribute = nodes.new("ShaderNodeAttribute")
     attribute.attribute_name = "speed"
+    height = nodes.new("ShaderNodeMath")  # speed^2 / (2 g), in metres
+    height.operation = "MULTIPLY"
+    links.new(attribute.outputs["Fac"], height.inputs[0])
+    links.new(attribute.outputs["Fac"], height.inputs[1])
     scale = nodes.new("ShaderNodeMapRange")
-    scale.inputs["From Max"].default_value = SPEED_FOR_WHITE
+    scale.inputs["From Max"].default_value = FALL_HEIGHT_FOR_TOP * 2.0 * STANDARD_GRAVITY
+    links.new(height.outputs["Value"], scale.inputs["Value"])
     ramp = nodes.new("ShaderNodeValToRGB")
-    ramp.color_ramp.elements[0].color = (0.02, 0.10, 0.35, 1.0)
-    ramp.color_ramp.elements[1].color = (0.85, 0.95, 1.0, 1.0)
-    links.new(attribute.outputs["Fac"], scale.inputs["Value"])
+    elements = ramp.color_ramp.elements
+    elements.new(0.5)
+    for element, (position, colour) in zip(elements, SPEED_RAMP):
+        element.position, element.color = position, colour
     links.new(scale.outputs["Result"], ramp.inputs["Fac"])
     links.new(ramp.outputs["Color"], shader.inputs["Base Color"])
-    shader.inputs["Roughness"].default_value = 0.15
-    material.diffuse_color = (0.1, 0.3, 0.8, 1.0)
+    shader.inputs["Roughness"].default_value = 0.12
+    material.diffuse_color = SPEED_RAMP[1][1]
     return material
 
 
@@ -269,33 +354,115 @@ def points_group(material):
 
 
 def surface_group(material):
-    """Points -> volume (radius, voxel size inputs) -> mesh, smooth shaded, with the liquid material."""
+    """Points -> joined, smoothed liquid surface carrying ``velocity`` and ``speed`` (Blender 4.2 and newer).
+
+    Steps: every point becomes a sphere of ``Radius`` in a volume of ``Voxel Size`` (Points to
+    Volume); the union is meshed (Volume to Mesh), so neighbouring particles join into one
+    closed surface; every vertex moves ``Shrink`` inwards along its normal, so a flat face of
+    the liquid sits about half a spacing beyond the outer particles (where the particles' own
+    volume ends); then the mesh is relaxed ``Smoothing`` times (Blur Attribute on positions,
+    which rounds the sphere bumps). A lone droplet keeps a sphere of about
+    ``Radius - Shrink`` and a one-particle sheet a thickness of about twice that, so spray and
+    thin sheets stay visible. Each vertex takes ``velocity`` and ``speed`` of its nearest
+    particle, for shading and motion blur. Every input is a length in Blender units (set
+    from the particle spacing by ``apply_display_settings``).
+    """
     group, is_new = _new_group(SURFACE_GROUP)
     if not is_new:
         return group
     _input_socket(group, "Radius", "NodeSocketFloat", 0.02)
     _input_socket(group, "Voxel Size", "NodeSocketFloat", 0.01, minimum=1e-4)
+    _input_socket(group, "Shrink", "NodeSocketFloat", 0.01)
+    _input_socket(group, "Smoothing", "NodeSocketInt", 2, minimum=0)
     nodes, links = group.nodes, group.links
     source, sink = nodes.new("NodeGroupInput"), nodes.new("NodeGroupOutput")
     to_points = nodes.new("GeometryNodeMeshToPoints")
+    links.new(source.outputs["Geometry"], to_points.inputs["Mesh"])
     to_volume = nodes.new("GeometryNodePointsToVolume")
-    to_mesh = nodes.new("GeometryNodeVolumeToMesh")
-    smooth = nodes.new("GeometryNodeSetShadeSmooth")
-    set_material = nodes.new("GeometryNodeSetMaterial")
-    set_material.inputs["Material"].default_value = material
     to_volume.inputs["Density"].default_value = 1.0
     _set_voxel_size_mode(to_volume)
-    _set_voxel_size_mode(to_mesh)
-    links.new(source.outputs["Geometry"], to_points.inputs["Mesh"])
     links.new(to_points.outputs["Points"], to_volume.inputs["Points"])
     links.new(source.outputs["Radius"], to_volume.inputs["Radius"])
     links.new(source.outputs["Voxel Size"], to_volume.inputs["Voxel Size"])
+    to_mesh = nodes.new("GeometryNodeVolumeToMesh")
+    _set_voxel_size_mode(to_mesh)
     links.new(to_volume.outputs["Volume"], to_mesh.inputs["Volume"])
     links.new(source.outputs["Voxel Size"], to_mesh.inputs["Voxel Size"])
-    links.new(to_mesh.outputs["Mesh"], smooth.inputs[0])
+    # Relax the sphere bumps: average each vertex with its neighbours (Smoothing times).
+    position = nodes.new("GeometryNodeInputPosition")
+    blur = nodes.new("GeometryNodeBlurAttribute")
+    blur.data_type = "FLOAT_VECTOR"
+    links.new(position.outputs["Position"], blur.inputs["Value"])
+    links.new(source.outputs["Smoothing"], blur.inputs["Iterations"])
+    relax = nodes.new("GeometryNodeSetPosition")
+    links.new(blur.outputs["Value"], relax.inputs["Position"])
+    # Move the surface in, from the sphere union to where the particles' volume ends.
+    normal = nodes.new("GeometryNodeInputNormal")
+    inward = nodes.new("ShaderNodeVectorMath")
+    inward.operation = "SCALE"
+    links.new(normal.outputs["Normal"], inward.inputs[0])
+    negate = nodes.new("ShaderNodeMath")
+    negate.operation = "MULTIPLY"
+    negate.inputs[1].default_value = -1.0
+    links.new(source.outputs["Shrink"], negate.inputs[0])
+    links.new(negate.outputs["Value"], inward.inputs["Scale"])
+    shrink = nodes.new("GeometryNodeSetPosition")
+    links.new(to_mesh.outputs["Mesh"], shrink.inputs["Geometry"])
+    links.new(inward.outputs["Vector"], shrink.inputs["Offset"])
+    # Shrink first, relax after: relaxing a droplet's small sphere first would leave the shrink
+    # nothing to take from (it would vanish); this way a lone droplet keeps about half a spacing.
+    links.new(shrink.outputs["Geometry"], relax.inputs["Geometry"])
+    # Velocity and speed of the nearest particle, for shading and motion blur.
+    nearest = nodes.new("GeometryNodeSampleNearest")
+    nearest.domain = "POINT"
+    links.new(to_points.outputs["Points"], nearest.inputs["Geometry"])
+    geometry = relax.outputs["Geometry"]
+    for attribute, kind in (("velocity", "FLOAT_VECTOR"), ("speed", "FLOAT")):
+        read = nodes.new("GeometryNodeInputNamedAttribute")
+        read.data_type = kind
+        read.inputs["Name"].default_value = attribute
+        sample = nodes.new("GeometryNodeSampleIndex")
+        sample.data_type = kind
+        sample.domain = "POINT"
+        links.new(to_points.outputs["Points"], sample.inputs["Geometry"])
+        links.new(read.outputs["Attribute"], sample.inputs["Value"])
+        links.new(nearest.outputs["Index"], sample.inputs["Index"])
+        store = nodes.new("GeometryNodeStoreNamedAttribute")
+        store.data_type = kind
+        store.domain = "POINT"
+        store.inputs["Name"].default_value = attribute
+        links.new(geometry, store.inputs["Geometry"])
+        links.new(sample.outputs[0], store.inputs["Value"])
+        geometry = store.outputs["Geometry"]
+    smooth = nodes.new("GeometryNodeSetShadeSmooth")
+    links.new(geometry, smooth.inputs[0])
+    set_material = nodes.new("GeometryNodeSetMaterial")
+    set_material.inputs["Material"].default_value = material
     links.new(smooth.outputs[0], set_material.inputs["Geometry"])
     links.new(set_material.outputs["Geometry"], sink.inputs["Geometry"])
     return group
+
+
+#: Where a flat face of the surface should sit beyond the outermost particle centres, in spacings:
+#: half a spacing is where the particles' own volume (spacing^3 each) ends; the extra 0.05 makes up
+#: for the fog threshold of Volume to Mesh and the smoothing (measured on lattice blocks).
+FACE_OFFSET = 0.55
+
+
+def surface_inputs(spacing, reach=1.0, detail=0.6, smoothing=3):
+    """Inputs of the surface node group, in Blender units, from settings in particle spacings.
+
+    Args:
+        spacing: particle spacing in Blender units.
+        reach: sphere radius per particle, in spacings (>= 0.9: on a cubic lattice the farthest point
+            from every particle is sqrt(3)/2 = 0.87 spacings away, so smaller radii leave holes).
+        detail: voxel size, in spacings. smoothing: relaxation passes.
+
+    Returns:
+        dict of the group's inputs: Radius, Voxel Size, Shrink, Smoothing.
+    """
+    return {"Radius": spacing * reach, "Voxel Size": spacing * detail,
+            "Shrink": spacing * max(reach - FACE_OFFSET, 0.0), "Smoothing": int(smoothing)}
 
 
 def _set_voxel_size_mode(node):
@@ -429,9 +596,9 @@ def ensure_display_object(scene):
         obj.data.materials.append(material)
     if POINTS_MODIFIER not in obj.modifiers:
         obj.modifiers.new(POINTS_MODIFIER, "NODES").node_group = points_group(material)
-    if SURFACE_MODIFIER not in obj.modifiers:
-        modifier = obj.modifiers.new(SURFACE_MODIFIER, "NODES")
-        modifier.node_group = surface_group(material)
+    surface = obj.modifiers.get(SURFACE_MODIFIER) or obj.modifiers.new(SURFACE_MODIFIER, "NODES")
+    if surface.node_group is None or surface.node_group.name != SURFACE_GROUP:
+        surface.node_group = surface_group(material)  # also replaces the blob surface of older files
     apply_display_settings(scene)
     return obj
 
@@ -459,8 +626,9 @@ def apply_display_settings(scene):
         points.show_viewport = points.show_render = not shot.use_surface
     surface = obj.modifiers.get(SURFACE_MODIFIER)
     if surface is not None and surface.node_group is not None:
-        surface[_socket_id(surface.node_group, "Radius")] = spacing * 1.0
-        surface[_socket_id(surface.node_group, "Voxel Size")] = spacing * 0.5
+        for name, value in surface_inputs(spacing, shot.surface_reach, shot.surface_detail,
+                                          shot.surface_smoothing).items():
+            surface[_socket_id(surface.node_group, name)] = value
         surface.show_viewport = surface.show_render = bool(shot.use_surface)
     obj.data.update()
 
@@ -478,12 +646,15 @@ def refresh(scene):
 def register():
     if on_frame_change not in bpy.app.handlers.frame_change_pre:
         bpy.app.handlers.frame_change_pre.append(on_frame_change)
+    if on_frame_checked not in bpy.app.handlers.frame_change_post:
+        bpy.app.handlers.frame_change_post.append(on_frame_checked)
     if on_file_loaded not in bpy.app.handlers.load_post:
         bpy.app.handlers.load_post.append(on_file_loaded)
 
 
 def unregister():
     for handlers, function in ((bpy.app.handlers.frame_change_pre, on_frame_change),
+                               (bpy.app.handlers.frame_change_post, on_frame_checked),
                                (bpy.app.handlers.load_post, on_file_loaded)):
         for existing in list(handlers):
             if getattr(existing, "__name__", "") == function.__name__ and \

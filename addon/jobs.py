@@ -132,8 +132,13 @@ class BakeProgress:
             eta = f", about {format_seconds(self.eta)} left" if self.eta is not None else ""
             tail = " (stopping after this frame)" if self.state == "cancelling" else ""
             return head + f"frame {self.frame if self.frame is not None else '-'} ({self.done}/{self.total}), " \
-                f"{self.particles} particles{eta}{tail}"
+                f"{plural(self.particles, 'particle')}{eta}{tail}"
         return head + self.message
+
+
+def plural(count, word):
+    """'1 particle', '2 particles', '1,210 particles' (English plural by -s)."""
+    return f"{count:,} {word}" if count == 1 else f"{count:,} {word}s"
 
 
 def format_seconds(seconds):
@@ -181,7 +186,7 @@ def apply_event(progress, event):
     elif kind == "finished":
         progress.state = "finished"
         seconds = float(event.get("seconds", 0.0))
-        progress.message = f"baked {event.get('frames', progress.done)} frames in {format_seconds(seconds)}"
+        progress.message = f"baked {plural(int(event.get('frames', progress.done)), 'frame')} in {format_seconds(seconds)}"
     elif kind == "cancelled":
         progress.state = "cancelled"
         last = event.get("last_frame")
@@ -376,7 +381,7 @@ def run_estimate(argv, timeout=300.0, env=None):
 
 def summarize_estimate(estimate):
     """One line for the panel: particles, memory, disk and time of an estimate dict."""
-    parts = [f"{int(estimate.get('particles', 0)):,} particles"]
+    parts = [plural(int(estimate.get("particles", 0)), "particle")]
     if "memory_bytes" in estimate:
         parts.append(f"memory ~{format_bytes(estimate['memory_bytes'])}")
     if "disk_bytes" in estimate:

@@ -13,6 +13,7 @@ from pathlib import Path
 import bpy
 from bpy.props import BoolProperty, EnumProperty, StringProperty
 
+from ..engine.errors import CacheError
 from . import display, export, jobs, paths
 from .errors_ui import AddonError
 from .versions import INPUT_FOLDER, list_versions, next_version_dir
@@ -56,25 +57,74 @@ def sync_versions(scene, select=None):
         display.refresh(scene)
 
 
+def _short(message, input_dir):
+    """An engine message for the sidebar: no temporary export paths (the object names the mesh)."""
+    for folder in {str(Path(input_dir)), str(Path(input_dir).resolve())}:
+        message = message.replace(folder + "/meshes/", "").replace(folder + "/", "")
+    return message
+
+
 def estimate_scene(scene, input_dir):
-    """Export the shot to ``input_dir`` and run the engine's estimate.
+    """Export the shot to ``input_dir`` and estimate it in closed form (nothing is built).
 
     Returns:
-        (estimate dict or None, message, scene path).
+        (Estimate, warnings, scene path); ``warnings`` are short texts about liquid the bake will
+        drop (outside the shot bounds).
+
+    Raises:
+        AddonError: the shot cannot be exported, is over the budget, or holds no liquid to bake.
     """
-    scene_path, _ = export.build_scene(scene, input_dir)
-    argv = jobs.estimate_command(scene_path=scene_path, solver=scene.splashdraft.solver, **_worker_args())
-    estimate, message = jobs.run_estimate(argv)
+    from ..engine.errors import BudgetError, SplashdraftError
+    from ..engine.estimate import quick_estimate, work_bound
+    from ..engine.scene import load_scene
+
     shot = scene.splashdraft
-    if estimate is not None:
-        shot.estimate_text = jobs.summarize_estimate(estimate)
-        shot.is_over_budget = False
-    else:
-        shot.is_over_budget = "budget" in message.lower()
-        if shot.is_over_budget:
-            message += "; in the Splashdraft tab, raise Particle spacing or the Particle budget"
-        shot.estimate_text = message
-    return estimate, message, scene_path
+    shot.estimate_text, shot.is_over_budget = "", False  # never leave an earlier estimate on show
+    scene_path, data = export.build_scene(scene, input_dir)
+    try:
+        loaded = load_scene(scene_path)
+        estimate, outside = quick_estimate(loaded, solver=shot.solver)
+    except BudgetError:
+        shot.is_over_budget = True
+        try:
+            count = work_bound(loaded)["fluid"]
+        except SplashdraftError:
+            count = float("nan")
+        limit = int(shot.max_particles)
+        coarser = float(shot.particle_spacing) * max(count / limit, 1.0) ** (1.0 / 3.0)
+        shot.estimate_text = (f"about {count:,.0f} particles, over the budget of {limit:,}; "
+                              f"set Particle spacing to {coarser:.3g} or more, or raise the budget")
+        raise AddonError(shot.estimate_text) from None
+    except SplashdraftError as exc:
+        shot.estimate_text = _short(str(exc), input_dir)
+        raise AddonError(shot.estimate_text) from None
+    bounds = next((o.name for o in scene.objects if o.splashdraft.role == "BOUNDS"), "the shot bounds")
+    warnings = [f'{jobs.plural(entry["outside_bounds"], "particle")} of "{name}" lie outside "{bounds}" '
+                "and are dropped" for name, entry in outside.items() if entry["outside_bounds"]]
+    if estimate.particles == 0:
+        raise AddonError(f'nothing to bake: the liquid lies outside "{bounds}" or against its walls; '
+                         "move the liquid fills inside the bounds")
+    shot.estimate_text = jobs.summarize_estimate(estimate.as_dict())
+    if warnings:
+        shot.estimate_text += "; " + "; ".join(warnings)
+    return estimate, warnings, scene_path
+
+
+def needs_confirmation(estimate_seconds, confirm_minutes):
+    """True when a bake estimated at ``estimate_seconds`` should be confirmed first (0 minutes: never ask)."""
+    return confirm_minutes > 0 and estimate_seconds > 60.0 * confirm_minutes
+
+
+def _failure_text(exc, what):
+    """One sidebar line for an OSError or engine error met while doing ``what`` (no traceback)."""
+    from ..engine.errors import SplashdraftError
+
+    if isinstance(exc, (AddonError, SplashdraftError)):
+        return str(exc)
+    name = getattr(exc, "filename", None)
+    reason = getattr(exc, "strerror", None) or type(exc).__name__
+    target = f' "{name}"' if name else ""
+    return f"{what}: cannot use{target} ({reason}); choose another folder or fix its permissions"
 
 
 def _check_solver(scene):
@@ -91,19 +141,18 @@ class SPLASHDRAFT_OT_estimate(bpy.types.Operator):
     bl_options = {"REGISTER"}
 
     def execute(self, context):
+        from ..engine.errors import SplashdraftError
+
         scene = context.scene
         folder = Path(tempfile.mkdtemp(prefix="splashdraft_estimate_"))
         try:
-            estimate, message, _ = estimate_scene(scene, folder)
-        except AddonError as exc:
-            self.report({"ERROR"}, str(exc))
+            _, warnings, _ = estimate_scene(scene, folder)
+        except (AddonError, SplashdraftError, OSError) as exc:
+            self.report({"ERROR"}, _failure_text(exc, "estimate"))
             return {"CANCELLED"}
         finally:
             shutil.rmtree(folder, ignore_errors=True)
-        if estimate is None:
-            self.report({"ERROR"}, message)
-            return {"CANCELLED"}
-        self.report({"INFO"}, "Estimate: " + scene.splashdraft.estimate_text)
+        self.report({"WARNING"} if warnings else {"INFO"}, "Estimate: " + scene.splashdraft.estimate_text)
         return {"FINISHED"}
 
 
@@ -149,6 +198,14 @@ class _BakeUI:
         if scene is not None:
             sync_versions(scene, select=self.version_name)
             scene.splashdraft.bake_message = progress.status_text()
+            folder = _job_context.get("folder")
+            if folder and progress.state == "finished":
+                problems = display.check_version(folder)
+                for problem in problems:
+                    display.warn_once((folder, "check", problem), problem)
+                if problems:
+                    self.report({"WARNING"}, problems[0] + (f" (and {len(problems) - 1} more)"
+                                                            if len(problems) > 1 else ""))
         if self.workspace is not None:
             self.workspace.status_text_set(None)
         self.window_manager.progress_end()
@@ -178,16 +235,23 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
         global _job
         scene = context.scene
         _check_solver(scene)
-        version_dir = next_version_dir(paths.shot_dir(scene), scene.splashdraft.solver)
-        version_dir.mkdir(parents=True, exist_ok=False)
+        shot_dir = paths.shot_dir(scene)
+        version_dir = next_version_dir(shot_dir, scene.splashdraft.solver)
         try:
-            estimate, message, scene_path = estimate_scene(scene, version_dir / INPUT_FOLDER)
-            if estimate is None:
-                raise AddonError(f"bake refused: {message}")
-        except BaseException:
+            version_dir.mkdir(parents=True, exist_ok=False)
+        except OSError as exc:
+            raise AddonError(f'Cache folder "{shot_dir.parent}": cannot make a bake folder there '
+                             f"({exc.strerror or type(exc).__name__}); choose a folder you can write to") from None
+        try:
+            _, warnings, scene_path = estimate_scene(scene, version_dir / INPUT_FOLDER)
+        except AddonError as exc:
             shutil.rmtree(version_dir, ignore_errors=True)  # nothing was baked: leave no empty version behind
+            raise AddonError(f"bake refused: {exc}") from None
+        except BaseException:
+            shutil.rmtree(version_dir, ignore_errors=True)
             raise
-        self.report({"INFO"}, f"Baking {version_dir.name}: {scene.splashdraft.estimate_text}")
+        self.report({"WARNING"} if warnings else {"INFO"},
+                    f"Baking {version_dir.name}: {scene.splashdraft.estimate_text}")
         argv = jobs.bake_command(scene_path=scene_path, out_dir=version_dir, solver=scene.splashdraft.solver,
                                  **_worker_args())
         _job = jobs.BakeJob(argv, cwd=str(version_dir))
@@ -198,11 +262,32 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
         display.ensure_display_object(scene)
         return _ui_for(context, self)
 
+    def invoke(self, context, event):
+        # Ask before a long bake (the estimate is closed-form, so this costs well under a second).
+        from ..engine.errors import SplashdraftError
+
+        shot = context.scene.splashdraft
+        folder = Path(tempfile.mkdtemp(prefix="splashdraft_estimate_"))
+        try:
+            estimate, _, _ = estimate_scene(context.scene, folder)
+        except (AddonError, SplashdraftError, OSError):
+            return self.execute(context)  # execute reports the same failure
+        finally:
+            shutil.rmtree(folder, ignore_errors=True)
+        if context.window is None or not needs_confirmation(estimate.seconds, shot.confirm_minutes):
+            return self.execute(context)
+        from .jobs import format_seconds
+        return context.window_manager.invoke_confirm(
+            self, event, title="Long bake", message=f"This bake may take about {format_seconds(estimate.seconds)} "
+            f"({shot.estimate_text}). Start it?", confirm_text="Bake")
+
     def execute(self, context):
+        from ..engine.errors import SplashdraftError
+
         try:
             ui = self._start(context)
-        except AddonError as exc:
-            self.report({"ERROR"}, str(exc))
+        except (AddonError, SplashdraftError, OSError) as exc:
+            self.report({"ERROR"}, _failure_text(exc, "bake"))
             return {"CANCELLED"}
         context.window_manager.progress_begin(0, 100)
         if bpy.app.background or self.wait or context.window is None:
@@ -311,10 +396,12 @@ class SPLASHDRAFT_OT_export_liquid(bpy.types.Operator):
         if not self.filepath:
             self.report({"ERROR"}, "export: no file chosen; set File")
             return {"CANCELLED"}
+        from ..engine.errors import SplashdraftError
+
         try:
             written = export_liquid(context.scene, bpy.path.abspath(self.filepath), self.file_format)
-        except AddonError as exc:
-            self.report({"ERROR"}, str(exc))
+        except (AddonError, SplashdraftError, OSError) as exc:
+            self.report({"ERROR"}, _failure_text(exc, "export"))
             return {"CANCELLED"}
         self.report({"INFO"}, f"Exported {written}")
         return {"FINISHED"}
@@ -332,7 +419,11 @@ def export_liquid(scene, filepath, file_format):
     version = display.current_version(scene)
     if obj is None or version is None:
         raise AddonError("export: nothing to export; bake the shot and show a version first")
-    reader = display.reader_for(version.folder)
+    try:
+        reader = display.reader_for(version.folder)
+    except CacheError:
+        raise AddonError(f"export: version {version.name} has no readable manifest.json; "
+                         "bake it again or show another version") from None
     if not reader.frames:
         raise AddonError(f"export: version {version.name} has no finished frames; bake it first")
     start, end = reader.frames[0], reader.frames[-1]
@@ -392,8 +483,11 @@ class SPLASHDRAFT_OT_copy_points(bpy.types.Operator):
         target = Path(bpy.path.abspath(self.directory))
         try:
             count = copy_points(version.folder, target)
+        except CacheError:
+            self.report({"ERROR"}, f"copy: version {version.name} has no readable manifest.json; bake it again")
+            return {"CANCELLED"}
         except (OSError, AddonError) as exc:
-            self.report({"ERROR"}, f"copy to {target}: {exc}")
+            self.report({"ERROR"}, _failure_text(exc, "copy"))
             return {"CANCELLED"}
         self.report({"INFO"}, f"Copied {count} PLY files to {target}")
         return {"FINISHED"}

@@ -27,6 +27,11 @@ FACE_ITEMS = (
 
 FACE_NAMES = ("x_min", "x_max", "y_min", "y_max", "z_min", "z_max")
 
+#: Blender 4.5 and newer warn about a "//" default unless the path property says it accepts one
+#: (the option does not exist in 4.2, where no warning is shown).
+_RELATIVE_PATH = ({"PATH_SUPPORTS_BLEND_RELATIVE"}
+                  if "is_path_supports_blend_relative" in bpy.types.Property.bl_rna.properties else set())
+
 
 def _redraw_display(self, context):
     # Imported here: display imports props' siblings and is only needed once the UI changes something.
@@ -106,7 +111,8 @@ class SPLASHDRAFT_PG_shot(bpy.types.PropertyGroup):
     solver: EnumProperty(name="Solver", description="How the liquid is computed", items=SOLVER_ITEMS, default="sph")
     cache_dir: StringProperty(
         name="Cache folder", description="Folder that receives one sub-folder per shot and one per bake "
-        "(// means next to the .blend file)", default="//splashdraft_cache/", subtype="DIR_PATH")
+        "(// means next to the .blend file)", default="//splashdraft_cache/", subtype="DIR_PATH",
+        options=_RELATIVE_PATH)
     max_particles: IntProperty(
         name="Particle budget", description="A bake that would need more particles than this is refused",
         default=400000, min=1, soft_max=5000000)
@@ -139,8 +145,22 @@ class SPLASHDRAFT_PG_shot(bpy.types.PropertyGroup):
                 "renders run no Python and need no add-on, only the cache folder at the same path")),
         default="AUTO", update=_redraw_display)
     use_surface: BoolProperty(
-        name="Surface preview", description="Show a meshed liquid surface built from the points instead of spheres",
+        name="Liquid surface", description="Show one joined, smoothed liquid surface built from the points "
+        "instead of a sphere per particle (Geometry Nodes; renders need no add-on)",
         default=False, update=_redraw_display)
+    surface_reach: FloatProperty(
+        name="Reach", description="How far each particle reaches into the surface, in particle spacings; "
+        "at least 0.9 so that neighbours join, larger merges more spray into the body",
+        default=1.0, min=0.9, max=3.0, update=_redraw_display)
+    surface_detail: FloatProperty(
+        name="Voxel size", description="Size of the volume cells the surface is built from, in particle spacings; "
+        "smaller is finer and slower", default=0.6, min=0.2, max=2.0, update=_redraw_display)
+    surface_smoothing: IntProperty(
+        name="Smoothing", description="Relaxation passes over the surface; more rounds off the particle bumps "
+        "and thins small droplets", default=3, min=0, max=30, update=_redraw_display)
+    confirm_minutes: FloatProperty(
+        name="Ask above", description="Ask before starting a bake estimated to take longer than this many minutes",
+        default=10.0, min=0.0, soft_max=240.0)
     # Estimate and bake state (written by the operators, shown by the panel)
     estimate_text: StringProperty(name="Estimate", description="Summary of the last estimate")
     is_over_budget: BoolProperty(name="Over budget", description="The last estimate exceeded the budget")

@@ -43,6 +43,7 @@ class SPLASHDRAFT_PT_shot(_SidebarPanel, bpy.types.Panel):
         if paths.is_learned_available():
             col.prop(shot, "solver")
         col.prop(shot, "max_particles")
+        col.prop(shot, "confirm_minutes")
         col.prop(shot, "cache_dir")
 
         box = layout.box()
@@ -127,8 +128,14 @@ class SPLASHDRAFT_PT_versions(_SidebarPanel, bpy.types.Panel):
         layout.use_property_split = True
         layout.prop(shot, "display_object")
         layout.operator("splashdraft.add_liquid_object", icon="OUTLINER_OB_POINTCLOUD")
-        layout.prop(shot, "point_size")
         layout.prop(shot, "use_surface")
+        if shot.use_surface:
+            col = layout.column(align=True)
+            col.prop(shot, "surface_reach")
+            col.prop(shot, "surface_detail")
+            col.prop(shot, "surface_smoothing")
+        else:
+            layout.prop(shot, "point_size")
         layout.prop(shot, "playback")
         warnings = display.reported_warnings()
         if warnings:

@@ -241,3 +241,15 @@ def test_estimate_reports_figures_and_refuses_over_budget(tmp_path):
     refused = write_block_scene(tmp_path / "small_budget", frame_end=3, budget=10)
     estimate, message = jobs.run_estimate(jobs.estimate_command(scene_path=refused, **worker_args()))
     assert estimate is None and "budget" in message and "particle_spacing" in message
+
+
+def test_counts_read_as_english_in_status_lines():
+    """'1 particle', '2 particles', thousands separated (English grammar, common practice)."""
+    assert jobs.plural(1, "particle") == "1 particle"
+    assert jobs.plural(0, "particle") == "0 particles"
+    assert jobs.plural(1210, "frame") == "1,210 frames"
+    progress = jobs.apply_event(jobs.BakeProgress(), {"event": "frame", "frame": 1, "done": 1, "total": 1,
+                                                      "particles": 1})
+    assert progress.status_text().endswith("1 particle")
+    done = jobs.apply_event(jobs.BakeProgress(), {"event": "finished", "frames": 1, "seconds": 2})
+    assert done.status_text() == "Splashdraft: baked 1 frame in 2 s"

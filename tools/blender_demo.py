@@ -5,6 +5,7 @@ Usage (the bpy module is in the venv, so this runs with the venv's Python):
     .venv/bin/python tools/blender_demo.py                  # small preset, out/blender_demo/
     .venv/bin/python tools/blender_demo.py --preset full    # 25k particles, 60 frames (long)
     .venv/bin/python tools/blender_demo.py --solver learned # the learned preview instead
+    .venv/bin/python tools/blender_demo.py --surface        # render the joined liquid surface
 
 Steps: enable the add-on from this working tree in an isolated Blender user
 folder; build the demo shot of ``engine.demo`` (trough = shot bounds with an
@@ -12,6 +13,10 @@ open top, water block = liquid fill, rough boulder = collider) as Blender
 objects with add-on roles; bake with ``bpy.ops.splashdraft.bake()``; render
 several frames with Cycles (CPU) and tile them into
 ``out/blender_demo/contact_sheet.png``; save ``out/blender_demo/demo.blend``.
+With ``--surface`` the liquid renders as its joined surface and
+``out/blender_demo/surface.json`` lists, per rendered frame, the particles and
+the surface's vertices, faces, connected components, enclosed volume and
+particles x spacing^3.
 """
 
 import argparse
@@ -39,6 +44,8 @@ def parse_args(argv=None):
     parser.add_argument("--samples", type=int, default=16, help="Cycles samples per tile. Default: 16.")
     parser.add_argument("--solver", choices=("sph", "learned"), default="sph",
                         help="sph: the reference solver; learned: the shipped learned preview. Default: sph.")
+    parser.add_argument("--surface", action="store_true",
+                        help="Render the joined liquid surface instead of spheres and write surface.json.")
     return parser.parse_args(argv)
 
 
@@ -119,7 +126,41 @@ def build_demo_shot(scene, demo, mesh_io, spacing, frame_end, cache_dir):
     return {"bounds": trough, "fill": water, "collider": boulder}
 
 
-def render_contact_sheet(scene, frames, tile_size, samples, folder):
+def surface_stats(obj, particles, spacing):
+    """The evaluated liquid surface of ``obj`` at the current frame, as one row of surface.json.
+
+    Components: connected vertex sets (scipy.sparse.csgraph); enclosed volume: divergence theorem over
+    the triangles (sum of det[a, b, c] / 6).
+    """
+    import bpy
+    import numpy as np
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    evaluated = obj.evaluated_get(bpy.context.evaluated_depsgraph_get())
+    mesh = evaluated.to_mesh()
+    count = len(mesh.vertices)
+    positions = np.empty(count * 3, np.float32)
+    mesh.attributes["position"].data.foreach_get("vector", positions)
+    positions = positions.reshape(-1, 3).astype(np.float64)
+    mesh.calc_loop_triangles()
+    triangles = np.empty(len(mesh.loop_triangles) * 3, np.int32)
+    mesh.loop_triangles.foreach_get("vertices", triangles)
+    corners = positions[triangles.reshape(-1, 3)]
+    volume = float(np.einsum("ij,ij->i", corners[:, 0], np.cross(corners[:, 1], corners[:, 2])).sum() / 6.0)
+    edges = np.empty(len(mesh.edges) * 2, np.int32)
+    mesh.edges.foreach_get("vertices", edges)
+    edges = edges.reshape(-1, 2)
+    graph = coo_matrix((np.ones(len(edges)), (edges[:, 0], edges[:, 1])), shape=(count, count))
+    components = int(connected_components(graph, directed=False)[0]) if count else 0
+    row = {"frame": int(bpy.context.scene.frame_current), "particles": int(particles), "vertices": count,
+           "faces": len(mesh.polygons), "components": components, "enclosed_volume_m3": volume,
+           "particle_volume_m3": particles * spacing ** 3}
+    evaluated.to_mesh_clear()
+    return row
+
+
+def render_contact_sheet(scene, frames, tile_size, samples, folder, on_frame=None):
     """Render ``frames`` and tile them (rows of 3) into folder/contact_sheet.png; returns its path."""
     import bpy
     import numpy as np
@@ -137,6 +178,8 @@ def render_contact_sheet(scene, frames, tile_size, samples, folder):
     sheet = np.ones((rows * height, columns * width, 4), np.float32)
     for index, frame in enumerate(frames):
         scene.frame_set(frame)
+        if on_frame is not None:
+            on_frame(frame)
         path = folder / f"frame_{frame:04d}.png"
         scene.render.filepath = str(path)
         bpy.ops.render.render(write_still=True)
@@ -192,8 +235,31 @@ def main(argv=None):
           f"in {bake_seconds:.1f} s -> {version.folder}", flush=True)
     count = max(1, min(args.tiles, frame_end))
     frames = sorted({int(round(f)) for f in np.linspace(1, frame_end, count)}) if count > 1 else [1]
+    rows, on_frame = [], None
+    if args.surface:
+        import json
+
+        scene.splashdraft.use_surface = True
+        cache = importlib.import_module(module + ".engine.cache")
+        reader = cache.open_cache(version.folder)
+        scale = float(scene.unit_settings.scale_length) or 1.0
+        bake_spacing = float(reader.manifest["particle_spacing"])
+
+        def on_frame(frame):
+            particles = reader.manifest["frames"].get(str(frame), {}).get("particles", 0)
+            # Volumes in m^3: the surface is in Blender units (scale_length metres each).
+            row = surface_stats(scene.splashdraft.display_object, particles, bake_spacing)
+            row["enclosed_volume_m3"] *= scale ** 3
+            rows.append(row)
     render_start = time.perf_counter()
-    sheet = render_contact_sheet(scene, frames, tuple(args.size), args.samples, out)
+    sheet = render_contact_sheet(scene, frames, tuple(args.size), args.samples, out, on_frame)
+    if args.surface:
+        (out / "surface.json").write_text(json.dumps({"frames": rows}, indent=1) + "\n", encoding="utf-8")
+        for row in rows:
+            print(f"blender_demo: surface frame {row['frame']}: {row['particles']} particles, "
+                  f"{row['vertices']} vertices, {row['components']} components, enclosed "
+                  f"{row['enclosed_volume_m3']:.4f} m3 vs particles x spacing^3 {row['particle_volume_m3']:.4f} m3",
+                  flush=True)
     render_seconds = time.perf_counter() - render_start
     bpy.ops.wm.save_as_mainfile(filepath=str(out / "demo.blend"))
     print(f"blender_demo: contact sheet of frames {frames}: {sheet} (render {render_seconds:.1f} s); "
