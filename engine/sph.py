@@ -687,8 +687,11 @@ class SphSolver:
 
     def settings(self):
         """Solver settings for the cache manifest (resolved once ``start`` or ``advance`` ran)."""
-        out = {"method": "DFSPH (Bender & Koschier 2015)", "kernel": "cubic spline, H = 2 * spacing",
-               "boundary": "Akinci 2012 particles, pressure p_i/rho_i^2 only", "viscosity_model": "XSPH",
+        out = {"method": "DFSPH (Bender & Koschier 2015), density error corrected by position (drift solve)",
+               "kernel": "cubic spline, H = 2 * spacing",
+               "boundary": "Akinci 2012 particles, pressure p_i/rho_i^2 only; constraints return particles to "
+                           "the side they came from",
+               "viscosity_model": "XSPH, walls and colliders no-slip",
                "neighbour_skin": self._skin}
         if self._params is not None:
             p = self._params
