@@ -32,7 +32,8 @@ as the diagonal. One substep, with one neighbour search:
 
 Both solves are the SCA paper's Jacobi iterations with compression-only increments
 (``_projected_solve(..., monotone=True)``): kappa_i += alpha_i max(r_i, 0) / dt^2. The
-drift solve starts cold, and its shift is capped at ``DRIFT_SHIFT_CAP`` spacings per substep (the
+drift solve starts from ``DRIFT_WARM_START`` of its previous coefficient, runs at most
+``DRIFT_ITERATIONS`` iterations, and its shift is capped at ``DRIFT_SHIFT_CAP`` spacings per substep (the
 rest waits for the next substep). A projected variant that also lowers kappa (IISPH's
 relaxed Jacobi, OMEGA = 0.5) is kept in ``_projected_solve``; measured 2026-12-04 it
 converged too slowly in deep columns (over 100 iterations at the hydrostatic tank's
@@ -159,6 +160,17 @@ WARM_START_FACTOR = 0.5
 #: 3-layer dam-break slab through its one-layer walls (476 of 3,200 outside); at 0.02 and 0.05 none.
 DRIFT_SHIFT_CAP = 0.05
 
+
+#: Most iterations of the drift solve per substep; what it leaves is taken up in the next substeps
+#: (it moves positions only, so stopping it early costs no energy). Measured 2026-12-04 on the 20k
+#: settling cube (bench/bench_reference.py): uncapped it took 60 iterations per substep (86k
+#: particle-substeps/s against 146k before the drift solve); at 40 with the warm start below,
+#: 110k; at 10 or 20 the hydrostatic tank stayed 0.3-1.4 % compressed (tolerance 0.1 %).
+DRIFT_ITERATIONS = 40
+
+#: Fraction of the previous substep's drift coefficient the drift solve starts from: a compression
+#: that persists (the bottom of a resting column) needs about the same shift each substep.
+DRIFT_WARM_START = 0.5
 
 #: Weight of the wall term of XSPH relative to the fluid term (1: walls smooth like fluid at rest).
 WALL_SMOOTHING = 1.0
@@ -508,8 +520,8 @@ def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, p
         positions, velocities: (N, 3) float64 at time t (m, m/s).
         kappa: (N,) float64 warm start of the velocity solve (m^2/s^2), already scaled
             for this step (``warm_start_kappa``).
-        kappa_v: unused (the drift solve starts cold each substep: a warm-started drift
-            kept pushing after the compression was gone); kept so callers pass the state arrays.
+        kappa_v: (N,) float64 the previous substep's drift coefficient; the drift solve
+            starts from ``DRIFT_WARM_START`` of it.
         boundary: object with ``positions`` (B, 3), ``velocities`` (B, 3) and
             ``volumes`` (B,) (e.g. ``engine.boundary.BoundaryParticles``), or None.
         params: SphParams.
@@ -549,7 +561,9 @@ def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, p
     # 2. Drift solve: a position shift (pseudo-velocity) that brings compressed particles back to
     #    rest density; it moves particles but is not kept in their velocity.
     corrected, drift, drift_iterations, error, worst, drift_ok = _projected_solve(
-        ops, velocities, np.zeros(n), rho0, dt, params.density_tolerance, 1, params.max_iterations, monotone=True)
+        ops, velocities, DRIFT_WARM_START * np.asarray(kappa_v, np.float64), rho0, dt, params.density_tolerance, 1,
+        min(params.max_iterations, DRIFT_ITERATIONS),
+        monotone=True)
     shift = dt * (corrected - velocities)
     cap = DRIFT_SHIFT_CAP * params.particle_spacing
     length = np.sqrt(np.einsum("ij,ij->i", shift, shift))

@@ -65,13 +65,127 @@ def _overlaps(lower, upper, boxes, gap):
     return any(np.all(lower < b_hi + gap) and np.all(upper > b_lo - gap) for b_lo, b_hi in boxes)
 
 
+#: Training shot families, taken in turn by shot index (``training_scene``): the mixed tank of
+#: obstacles and sources, fast throws at a wall, tall collapsing columns, thin-walled containers
+#: (walls one spacing thick) filled and emptied by a thrown or falling body, and a box pushed
+#: through a pool (a rigid collider moving at constant speed).
+FAMILIES = ("mixed", "throw", "tall_column", "container", "pusher")
+
+
 def training_scene(index, seed=TRAIN_SEED, spacing=TRAINING_SPACING, duration_s=2.0, max_particles=4500,
                    frame_step=TARGET_STEP_FROUDE):
-    """Scene dict of training shot ``index`` (inline meshes; see the module docstring).
+    """Scene dict of training shot ``index`` (inline meshes; see the module docstring and ``FAMILIES``).
 
     ``frame_step`` (sqrt(d/g)) sets the fps only; the shot's content does not depend on it.
     """
+    family = FAMILIES[index % len(FAMILIES)]
     rng = np.random.default_rng([seed, index])
+    if family != "mixed":
+        return _family_scene(family, index, rng, seed, spacing, duration_s, max_particles, frame_step)
+    return _mixed_scene(index, rng, seed, spacing, duration_s, max_particles, frame_step)
+
+
+def _thin_box(lower, upper, wall):
+    """An open-topped container (closed mesh): outer box minus inner box, walls ``wall`` thick."""
+    lo, hi = np.asarray(lower, float), np.asarray(upper, float)
+    outer = mesh_io.box_mesh(lo, hi)
+    inner_lo, inner_hi = lo + [wall, wall, wall], hi - [wall, wall, 0.0]
+    ov, ot = outer
+    # Outer box with its top face replaced by a rim and the inner box inverted.
+    iv, it = mesh_io.box_mesh(inner_lo, inner_hi + [0.0, 0.0, 0.0])
+    vertices = np.concatenate([ov, iv])
+    top_outer = [k for k in range(len(ov)) if ov[k][2] == hi[2]]
+    top_inner = [k + len(ov) for k in range(len(iv)) if iv[k][2] == hi[2]]
+    keep_outer = [tri for tri in ot if not all(ov[v][2] == hi[2] for v in tri)]
+    keep_inner = [tri[::-1] + len(ov) for tri in it if not all(iv[v][2] == hi[2] for v in tri)]
+    centre = np.array([(lo[0] + hi[0]) / 2, (lo[1] + hi[1]) / 2])
+
+    def ring(ids):
+        return sorted(ids, key=lambda k: math.atan2(vertices[k][1] - centre[1], vertices[k][0] - centre[0]))
+
+    outer_ring, inner_ring = ring(top_outer), ring(top_inner)
+    rim = []
+    for a in range(4):
+        b = (a + 1) % 4
+        rim += [[outer_ring[a], outer_ring[b], inner_ring[b]], [outer_ring[a], inner_ring[b], inner_ring[a]]]
+    triangles = np.concatenate([np.asarray(keep_outer), np.asarray(keep_inner), np.asarray(rim)])
+    return vertices, triangles
+
+
+def _family_scene(family, index, rng, seed, spacing, duration_s, max_particles, frame_step):
+    d = spacing
+    if family == "throw":  # a ball or block thrown at a wall, 3 to 12 sqrt(g d)
+        size = np.array([rng.uniform(34, 44), rng.uniform(14, 22), rng.uniform(22, 30)])
+        scene = _base(f"train_{index:04d}", seed * 1000 + index, size * d, duration_s, spacing, frame_step)
+        r = rng.uniform(3.0, 5.5)
+        centre = np.array([rng.uniform(r + 1, 12), rng.uniform(r + 1, size[1] - r - 2), rng.uniform(r + 2, size[2] - r - 6)])
+        speed = rng.uniform(3.0, 12.0) * math.sqrt(GRAVITY * d)
+        direction = np.array([1.0, rng.uniform(-0.3, 0.3), rng.uniform(-0.4, 0.4)])
+        velocity = speed * direction / np.linalg.norm(direction)
+        if rng.random() < 0.6:
+            mesh = mesh_io.ico_sphere_mesh(centre * d, r * d, 3)
+        else:
+            mesh = mesh_io.box_mesh((centre - r * 0.8) * d, (centre + r * 0.8) * d)
+        scene["emitters"].append({"name": "thrown", "type": "fill", "mesh": _mesh(mesh),
+                                  "velocity": [float(v) for v in velocity]})
+        if rng.random() < 0.5:  # a shallow pool it lands in
+            pool = mesh_io.box_mesh((0.0, 0.0, 0.0), ((size[0] - 1) * d, (size[1] - 1) * d, rng.uniform(2, 4) * d))
+            scene["emitters"].append({"name": "pool", "type": "fill", "mesh": _mesh(pool)})
+        return scene
+    if family == "tall_column":  # a column 15 to 60 spacings tall collapsing along the tank
+        height = rng.uniform(15, 60)
+        width = rng.uniform(4, 9)
+        depth = rng.uniform(6, 12)
+        size = np.array([rng.uniform(40, 60), depth + 1, height + 6])
+        scene = _base(f"train_{index:04d}", seed * 1000 + index, size * d, duration_s, spacing, frame_step)
+        width = min(width, max_particles / (depth * height))
+        column = mesh_io.box_mesh((0.0, 0.0, 0.0), (width * d, depth * d, height * d))
+        scene["emitters"].append({"name": "column", "type": "fill", "mesh": _mesh(column)})
+        if rng.random() < 0.5:
+            lo = np.array([rng.uniform(width + 8, size[0] - 8), -0.5, -0.5])
+            hi = lo + [rng.uniform(2, 5), depth + 1, rng.uniform(2, 8)]
+            scene["colliders"].append({"name": "block", "mesh": _mesh(mesh_io.box_mesh(lo * d, hi * d)), "motion": "static"})
+        return scene
+    if family == "container":  # a thin-walled container that liquid falls or is thrown into
+        size = np.array([rng.uniform(28, 36), rng.uniform(20, 26), rng.uniform(28, 36)])
+        scene = _base(f"train_{index:04d}", seed * 1000 + index, size * d, duration_s, spacing, frame_step)
+        inner = np.array([rng.uniform(10, 16), rng.uniform(8, 14), rng.uniform(6, 12)])
+        lo = np.array([rng.uniform(1, size[0] - inner[0] - 3), rng.uniform(1, size[1] - inner[1] - 3), -0.5])
+        hi = lo + inner + [2.0, 2.0, 1.0]
+        box = _thin_box(lo * d, hi * d, d)
+        scene["colliders"].append({"name": "container", "mesh": _mesh(box), "motion": "static"})
+        centre = (lo + hi) / 2
+        r = rng.uniform(3.0, min(5.5, inner[0] / 2, inner[1] / 2))
+        height = hi[2] + r + rng.uniform(2, 8)
+        position = centre + [rng.uniform(-8, 8), 0.0, 0.0]
+        position[2] = min(height, size[2] - r - 2)
+        ball = mesh_io.ico_sphere_mesh(position * d, r * d, 3)
+        velocity = [float(rng.uniform(-1, 1) * math.sqrt(GRAVITY * d)), 0.0, float(-rng.uniform(0, 3) * math.sqrt(GRAVITY * d))]
+        scene["emitters"].append({"name": "falling", "type": "fill", "mesh": _mesh(ball), "velocity": velocity})
+        return scene
+    if family == "pusher":  # a box pushed through a pool at constant speed
+        size = np.array([rng.uniform(36, 48), rng.uniform(12, 18), rng.uniform(18, 24)])
+        scene = _base(f"train_{index:04d}", seed * 1000 + index, size * d, duration_s, spacing, frame_step)
+        depth = min(rng.uniform(4, 8), max_particles / ((size[0] - 1) * (size[1] - 1)))
+        pool = mesh_io.box_mesh((0.0, 0.0, 0.0), ((size[0] - 1) * d, (size[1] - 1) * d, depth * d))
+        scene["emitters"].append({"name": "pool", "type": "fill", "mesh": _mesh(pool)})
+        half = np.array([rng.uniform(1.0, 2.5), rng.uniform(3, (size[1] - 4) / 2), rng.uniform(4, 8)])
+        box = mesh_io.box_mesh(-half * d, half * d)
+        frames = scene["frame_end"] - scene["frame_start"] + 1
+        t = np.arange(frames) / scene["fps"]
+        speed = rng.uniform(1.0, 4.0) * math.sqrt(GRAVITY * d)
+        x = (4.0 + half[0]) * d + speed * np.minimum(t, 0.8 * (size[0] - 12) * d / speed)
+        matrices = np.tile(np.eye(4), (frames, 1, 1))
+        matrices[:, 0, 3] = x
+        matrices[:, 1, 3] = size[1] / 2 * d - 0.5 * d
+        matrices[:, 2, 3] = (half[2] - 0.5 + rng.uniform(0, 2)) * d
+        scene["colliders"].append({"name": "pusher", "mesh": _mesh(box), "motion": "rigid", "transforms": matrices})
+        return scene
+    raise ValueError(f"unknown training family {family!r}")
+
+
+def _mixed_scene(index, rng, seed, spacing, duration_s, max_particles, frame_step):
+    """The mixed family: a tank with 0-2 static obstacles and 1-3 sources (module docstring)."""
     d = spacing
     size = np.array([rng.uniform(22, 34), rng.uniform(12, 22), rng.uniform(24, 34)])  # in d
     scene = _base(f"train_{index:04d}", seed * 1000 + index, size * d, duration_s, spacing, frame_step)
