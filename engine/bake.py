@@ -313,6 +313,9 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
     # start() also resolves the solver's settings for the manifest; a resume discards its state.
     initial_state = solver.start(world)
     header = _manifest_header(scene, solver, last, hash_hex, source)
+    header["warnings"] = list(solver.range_warnings(world)) if hasattr(solver, "range_warnings") else []
+    for warning in header["warnings"]:
+        progress.note(f"warning: {warning}")
     if continue_from is not None:
         header["frame_end"] = max(last, int(last_in_cache))
     if continue_from is not None:

@@ -226,6 +226,7 @@ def describe_cache(folder, verify=False):
         "verified": bool(verify),
         "updated": manifest.get("updated"),
         "energy": _energy_summary(entries),
+        "warnings": [w for w in manifest.get("warnings", []) if isinstance(w, str)],
     }
 
 
@@ -257,6 +258,8 @@ def command_info(args):
     _say(f"  disk: {format_bytes(info['disk_bytes'])}; bake time {format_duration(info['bake_seconds'])}, "
          f"{info['substeps']} substeps")  # fmt: skip
     _say("  settings: " + json.dumps(info["settings"], sort_keys=True))
+    for warning in info["warnings"]:
+        _say(f"  warning: {warning}")
     energy = info["energy"]
     if energy is not None:
         ratio = energy["max_energy_ratio"]

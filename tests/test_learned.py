@@ -567,3 +567,24 @@ def test_halo_nodes_match_a_breadth_first_search_and_tiles_reproduce_the_whole_g
     whole = CoreRunner(onnx_path, contract["rounds"], tile_particles=0).run(inputs)
     tiled = CoreRunner(onnx_path, contract["rounds"], tile_particles=300, untiled_max=0).run(inputs, x / d, 4.0)
     np.testing.assert_allclose(tiled, whole, atol=1e-5 * np.abs(whole).max())
+
+
+def test_a_viscosity_the_model_was_not_trained_on_is_a_named_warning_in_the_manifest(tmp_path):
+    """The preview does not take the viscosity as an input, so a scene whose viscosity lies outside
+    the range its training bakes used gets a named warning in the manifest (and `info`); at the
+    trained value there is none."""
+    import json as _json
+
+    from engine.bake import bake as _bake
+    from engine.demo import write_demo_scene
+    from engine.scene import load_scene
+
+    path = write_demo_scene(tmp_path / "scene", preset="small", frame_end=2)
+    data = _json.loads(Path(path).read_text())
+    for viscosity, expected in ((0.02, 0), (0.1, 1)):
+        data["fluid"]["viscosity"] = viscosity
+        Path(path).write_text(_json.dumps(data))
+        out = tmp_path / f"cache_{viscosity}"
+        _bake(load_scene(path), "learned", out, use_signals=False)
+        warnings = _json.loads((out / "manifest.json").read_text())["warnings"]
+        assert len([w for w in warnings if w.startswith("viscosity-outside-training")]) == expected

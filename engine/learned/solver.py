@@ -146,6 +146,32 @@ class LearnedSolver:
             "pressure": "equation-of-state estimate c^2 max(rho - rho0, 0), c = 10 sqrt(g * bounds height); not solved",
         }
 
+    def range_warnings(self, world):
+        """Named warnings for inputs outside what the model was trained on (empty when none).
+
+        The model does not take the viscosity as an input: it moves like the reference bakes it
+        was trained on, whose viscosities the contract records (``training.viscosity_range``;
+        models without the record were trained at the scene default 0.02). Frame intervals
+        shorter than the trained step range are taken as one short step (``step_plan``).
+        """
+        warnings = []
+        trained = self.contract.get("training", {}).get("viscosity_range") or [0.02, 0.02]
+        viscosity = float(world.scene.fluid.viscosity)
+        if not (trained[0] - 1e-12 <= viscosity <= trained[1] + 1e-12):
+            warnings.append(
+                f"viscosity-outside-training: fluid.viscosity {viscosity:g} is outside the {trained[0]:g}-{trained[1]:g} "
+                f"the preview model {self.contract['name']} was trained on; the preview moves as at that viscosity "
+                "(bake with --solver sph to see the setting's effect)")
+        units = features.Units(world.particle_spacing, world.gravity)
+        interval = 1.0 / world.fps
+        step_min = self.contract["step_froude_min"] * units.time
+        if interval < (1 - 1e-9) * step_min:
+            warnings.append(
+                f"step-below-training: a frame lasts {interval / units.time:.3g} sqrt(d/g), shorter than the "
+                f"{self.contract['step_froude_min']:g} the model was trained from; raise the particle spacing or "
+                "lower the frame rate, or bake with --solver sph")
+        return warnings
+
     def start(self, world):
         state = world.initial_state()
         arrays = dict(state.particle_arrays)
