@@ -102,7 +102,14 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
             "density_within_3pct_fraction_all": float(np.mean([r["density_within_3pct_fraction_all"] for r in fidelity["frames"]])),
             "penetrating_particles": fidelity["penetrating_particles"],
             "reference_seconds_per_simulated_second": _seconds_per_sim(ref, fidelity_seconds),
+            "learned_seconds_per_simulated_second": _seconds_per_sim(open_cache(learned_dir), fidelity_seconds),
+            # Kinetic energy of the preview over the reference's, summed over the compared frames
+            # (the issue's target 0.75-1.33) and at each frame.
+            "kinetic_energy_ratio_summed": _ratio(sum(r["kinetic_energy_b_j"] for r in fidelity["frames"]),
+                                                  sum(r["kinetic_energy_a_j"] for r in fidelity["frames"])),
         })
+        speedup = _ratio(row["reference_seconds_per_simulated_second"], row["learned_seconds_per_simulated_second"])
+        row["speedup_over_reference"] = speedup
         # The same density measure on the reference bake itself: what an incompressible solver scores.
         itself = compare_caches(reference_dir, reference_dir, frames=frames, scene=scene_path)
         row["reference_density_within_3pct_fraction"] = itself["density_within_3pct_fraction"]
@@ -111,6 +118,10 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
         row["compare_error"] = str(exc)
     log(json.dumps(row))
     return row
+
+
+def _ratio(a, b):
+    return float(a) / float(b) if a is not None and b else None
 
 
 def _seconds_per_sim(reader, upto):
@@ -165,7 +176,7 @@ def main(argv=None):
         rows.append(evaluate_shot(f"demo_{args.demo_preset}", scene_path, reference_dir, out, args.model,
                                   args.seconds, args.fidelity_seconds, log, args.relax_iterations))
     head = (f"{'shot':<18} {'CD mean [d]':>11} {'CD max [d]':>10} {'rho 3%':>7} {'ref rho 3%':>10} {'inside':>6} "
-            f"{'10 s ok':>7} {'KE end/1s':>9} {'n0->n':>13}")
+            f"{'10 s ok':>7} {'KE end/1s':>9} {'n0->n':>13} {'KE/ref':>7} {'speedup':>7}")
     print(head)
     for r in rows:
         frac = r.get("density_within_3pct_fraction")
@@ -174,7 +185,8 @@ def main(argv=None):
               f"{(100 * frac if frac is not None else float('nan')):>6.1f}% {(100 * ref if ref is not None else float('nan')):>9.1f}% "
               f"{str(r.get('penetrating_particles')):>6} "
               f"{str(r.get('error') is None and r.get('finished', False)):>7} {r.get('kinetic_energy_end_over_first_second_max') or float('nan'):>9.3f} "
-              f"{str(r.get('particles_first')) + '->' + str(r.get('particles_last')):>13}")
+              f"{str(r.get('particles_first')) + '->' + str(r.get('particles_last')):>13} "
+              f"{r.get('kinetic_energy_ratio_summed') or float('nan'):>7.2f} {r.get('speedup_over_reference') or float('nan'):>7.1f}")
     results = ROOT / "bench" / "results"
     results.mkdir(parents=True, exist_ok=True)
     (out / "eval_learned.json").write_text(json.dumps({"rows": rows, "args": vars(args)}, indent=1) + "\n")
