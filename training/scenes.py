@@ -94,10 +94,11 @@ def _thin_box(lower, upper, wall):
     # Outer box with its top face replaced by a rim and the inner box inverted.
     iv, it = mesh_io.box_mesh(inner_lo, inner_hi + [0.0, 0.0, 0.0])
     vertices = np.concatenate([ov, iv])
-    top_outer = [k for k in range(len(ov)) if ov[k][2] == hi[2]]
-    top_inner = [k + len(ov) for k in range(len(iv)) if iv[k][2] == hi[2]]
-    keep_outer = [tri for tri in ot if not all(ov[v][2] == hi[2] for v in tri)]
-    keep_inner = [tri[::-1] + len(ov) for tri in it if not all(iv[v][2] == hi[2] for v in tri)]
+    tol = 1e-9 * max(1.0, abs(hi[2]))
+    top_outer = [k for k in range(len(ov)) if abs(ov[k][2] - hi[2]) <= tol]
+    top_inner = [k + len(ov) for k in range(len(iv)) if abs(iv[k][2] - hi[2]) <= tol]
+    keep_outer = [tri for tri in ot if not all(abs(ov[v][2] - hi[2]) <= tol for v in tri)]
+    keep_inner = [tri[::-1] + len(ov) for tri in it if not all(abs(iv[v][2] - hi[2]) <= tol for v in tri)]
     centre = np.array([(lo[0] + hi[0]) / 2, (lo[1] + hi[1]) / 2])
 
     def ring(ids):
