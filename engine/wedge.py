@@ -20,7 +20,8 @@ Folder layout (``splashdraft-wedge``, version 1)::
 ``wedge.json`` holds ``format``, ``version``, ``scene_file``, ``scene_hash`` (of the base scene),
 ``solver``, ``model`` (or null), ``frames`` ([a, b] or null), ``vary`` ([{``key``, ``values``}]),
 ``variants`` ([{``name``, ``settings`` {key: value}, ``scene_file``, ``cache``, ``state``
-(pending | running | partial | complete | failed | cancelled), ``frames_done``, ``frames_total``,
+(pending | running | partial | complete | failed), ``frames_done``, ``frames_total``, ``frames_written``
+(by the last bake of the variant: fewer than the shot's frames when it was resumed),
 ``particles``, ``seconds`` (bake wall time), ``worker``, ``error``}]), ``created``, ``updated``.
 
 Re-running the same command resumes: complete variants are skipped and partial ones continue from
@@ -309,7 +310,7 @@ def apply_report(entry, report, frames_total):
     done, _ = variant_progress(entry["cache"])
     state = {"skipped": "complete", "complete": "complete", "cancelled": "partial"}.get(report["state"], "failed")
     entry.update(state=state, frames_done=done, frames_total=frames_total, worker=report.get("worker"),
-                 error=report.get("error"))  # fmt: skip
+                 error=report.get("error"), frames_written=int(report.get("frames_written", 0)))  # fmt: skip
     if report["state"] != "skipped" or entry.get("seconds") is None:
         entry["seconds"] = round(float(report.get("seconds", 0.0)), 3)
     if report.get("particles"):
@@ -324,7 +325,8 @@ def summary_rows(manifest):
     rows = []
     for v in manifest["variants"]:
         rows.append({"variant": v["name"], "settings": v["settings"], "state": v["state"],
-                     "frames": v["frames_done"], "frames_total": v["frames_total"], "particles": v["particles"],
+                     "frames": v["frames_done"], "frames_total": v["frames_total"],
+                     "frames_written": v.get("frames_written", 0), "particles": v["particles"],
                      "seconds": v["seconds"], "worker": v["worker"], "cache": v["cache"], "error": v["error"]})  # fmt: skip
     return rows
 
