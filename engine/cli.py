@@ -180,6 +180,28 @@ def build_parser():
     wedge.add_argument("--json", action="store_true", help="Print the summary table as JSON on stdout.")
     _add_progress(wedge)
 
+    tune = commands.add_parser(
+        "tune", help="Fine-tune the learned preview on reference bakes (needs PyTorch).",
+        epilog=_exit_code_epilog(), formatter_class=formatter,
+        description="Continue training the learned preview's model on reference (--solver sph) bakes you "
+        "already have, holding back the last frames of each, and write a new model folder: the model, its "
+        "contract, and a card with the mean Chamfer distance and energy ratio on the held-back frames "
+        "before and after. Re-running the same command resumes from its checkpoint. Use the result with "
+        "'bake --solver learned --model MODEL_DIR'. Needs PyTorch (pip install -r requirements-train.txt).",
+    )  # fmt: skip
+    tune.add_argument("--bakes", nargs="+", required=True, metavar="DIR",
+                      help="Reference bake folders (cache folders baked with --solver sph, at a frame rate where "
+                      "one frame is at most the model's learned step).")  # fmt: skip
+    tune.add_argument("--base", metavar="MODEL", help="The model to start from. Default: the shipped model.")
+    tune.add_argument("--out", required=True, metavar="MODEL_DIR",
+                      help="The new model's folder; its name names the model.")
+    tune.add_argument("--minutes", type=float, metavar="M", help="Stop training after M minutes. Default: no limit.")
+    tune.add_argument("--iterations", type=int, metavar="N", help="Training iterations in all. Default: 300.")
+    tune.add_argument("--hold-back", type=float, metavar="SHARE",
+                      help="Share of each bake's last frames held back for the before/after figures. Default: 0.25.")
+    tune.add_argument("--checkpoint-every", type=int, metavar="N", help="Iterations between checkpoints. Default: 50.")
+    tune.add_argument("--json", action="store_true", help="Print the tune record as JSON on stdout.")
+
     # The compare command is handled by engine.compare.main_compare (see main); listed here for --help.
     commands.add_parser(
         "compare", help="Compare one bake against another (see 'compare --help').", add_help=False,
@@ -443,6 +465,35 @@ def command_wedge(args):
     return 0 if complete == len(rows) else 1
 
 
+def command_tune(args):
+    from .errors import DependencyError
+
+    if args.minutes is not None and not args.minutes > 0:
+        raise UsageError(f"--minutes {args.minutes}: give a positive number of minutes")
+    try:
+        from training.tune import tune
+    except ImportError as exc:
+        raise DependencyError(f"fine-tuning needs the training/ folder of the Splashdraft repository ({exc}); "
+                              "run python -m engine tune from the repository root") from None  # fmt: skip
+    command = "python -m engine " + " ".join(sys.argv[1:]) if sys.argv[1:2] == ["tune"] else \
+        "python -m engine tune " + " ".join(f"--bakes {' '.join(args.bakes)}".split()) + f" --out {args.out}"
+    record = tune(args.bakes, args.out, base=args.base, minutes=args.minutes, iterations=args.iterations,
+                  hold_back=args.hold_back, checkpoint_every=args.checkpoint_every, command=command, log=_say)
+    if args.json:
+        _print_json(record)
+    before, after = record["before"], record["after"]
+
+    def show(value):
+        return "-" if value is None else f"{value:.3f}"
+
+    _say(f"held-back frames: mean Chamfer {show(before['mean_chamfer_spacings'])} -> "
+         f"{show(after['mean_chamfer_spacings'])} spacings, energy ratio {show(before['energy_ratio'])} -> "
+         f"{show(after['energy_ratio'])}")  # fmt: skip
+    _say(f"tune: {record['iterations']} iterations, {format_duration(record['wall_seconds'])} wall time; "
+         f"model {record['model']} (card beside it); use it with bake --solver learned --model {args.out}")
+    return 0
+
+
 COMMANDS = {
     "bake": command_bake,
     "info": command_info,
@@ -450,6 +501,7 @@ COMMANDS = {
     "validate": command_validate,
     "demo": command_demo,
     "wedge": command_wedge,
+    "tune": command_tune,
 }
 
 
