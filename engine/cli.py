@@ -475,8 +475,12 @@ def command_tune(args):
     except ImportError as exc:
         raise DependencyError(f"fine-tuning needs the training/ folder of the Splashdraft repository ({exc}); "
                               "run python -m engine tune from the repository root") from None  # fmt: skip
-    command = "python -m engine " + " ".join(sys.argv[1:]) if sys.argv[1:2] == ["tune"] else \
-        "python -m engine tune " + " ".join(f"--bakes {' '.join(args.bakes)}".split()) + f" --out {args.out}"
+    words = ["python -m engine tune", "--bakes", *args.bakes, "--out", args.out]
+    for flag, value in (("--base", args.base), ("--minutes", args.minutes), ("--iterations", args.iterations),
+                        ("--hold-back", args.hold_back), ("--checkpoint-every", args.checkpoint_every)):
+        if value is not None:
+            words += [flag, str(value)]
+    command = " ".join(words)
     record = tune(args.bakes, args.out, base=args.base, minutes=args.minutes, iterations=args.iterations,
                   hold_back=args.hold_back, checkpoint_every=args.checkpoint_every, command=command, log=_say)
     if args.json:
