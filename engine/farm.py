@@ -203,9 +203,12 @@ def connect(scheduler=None, workers=None, timeout=30.0):
                              f"start some with `dask worker {scheduler}`") from None  # fmt: skip
         return client, None
     count = int(workers) if workers else local_worker_count()
+    # The reference solver runs its sparse products on a small thread pool (SPLASHDRAFT_THREADS); split the
+    # cores between the workers so that they do not fight over them. A value the user set wins.
+    threads = os.environ.get("SPLASHDRAFT_THREADS") or str(max(1, local_worker_count() // count))
     cluster = distributed.LocalCluster(
         n_workers=count, threads_per_worker=1, processes=True, dashboard_address=None,
-        silence_logs=logging.ERROR,
+        silence_logs=logging.ERROR, env={"SPLASHDRAFT_THREADS": threads},
     )  # fmt: skip
     client = distributed.Client(cluster, set_as_default=False)
     return client, cluster
@@ -258,7 +261,10 @@ def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_se
     except KeyboardInterrupt:
         stop.set()
         progress.note("stopping: each running variant finishes its current frame; re-run the same command to resume")
-        distributed.wait(list(pending), timeout=120, return_when="ALL_COMPLETED") if pending else None
+        try:
+            distributed.wait(list(pending), timeout=120, return_when="ALL_COMPLETED")
+        except TimeoutError:
+            progress.note("some variants did not stop within 120 s; their finished frames are kept")
         for future in pending:
             entry = _entry(manifest, futures[future]["name"])
             entry.update(state="partial", frames_done=variant_progress(entry["cache"])[0])
