@@ -317,9 +317,12 @@ def run_wedge(scene_file, vary, solver_name, out_dir, frames=None, model=None, w
     if sheet_frame is not None and not first <= int(sheet_frame) <= last:
         raise UsageError(f"--sheet-frame {sheet_frame}: outside the wedge's frames {first}..{last}; pick one inside")
     out_dir.mkdir(parents=True, exist_ok=True)
+    # Refuse another wedge's folder before writing anything into it.
+    old = check_same_wedge(out_dir, new_manifest(scene_file, solver_name, model_path, frames, vary, []))
     plan = plan_variants(scene_file, vary, out_dir, solver_name)
     manifest = new_manifest(scene_file, solver_name, model_path, frames, vary, plan)
-    old = check_same_wedge(out_dir, manifest)
+    if old is not None:
+        manifest["created"] = old.get("created", manifest["created"])
     frames_total = last - scene.frame_start + 1
     jobs = []
     for variant, entry in zip(plan, manifest["variants"]):

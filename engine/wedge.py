@@ -181,8 +181,10 @@ def plan_variants(scene_file, vary, out_dir, solver_name):
         except SplashdraftError as exc:
             raise type(exc)(f"wedge variant {name} ({label_of(settings)}): {exc}") from None
         target = out_dir / "scenes" / name / "scene.json"
-        save_scene(target, scene)
-        plan.append({"name": name, "settings": settings, "scene_file": str(target), "cache": str(out_dir / name)})
+        plan.append({"name": name, "settings": settings, "scene_file": str(target), "cache": str(out_dir / name),
+                     "scene": scene})  # fmt: skip
+    for variant in plan:  # written only once every variant is valid
+        save_scene(variant["scene_file"], variant.pop("scene"))
     return plan
 
 
@@ -348,7 +350,7 @@ def format_table(rows, keys):
 # --------------------------------------------------------------------------- contact sheet
 
 
-def render_tile(positions, velocities, lower, upper, size=(240, 180)):
+def render_tile(positions, velocities, lower, upper, size=(240, 180), spacing=None):
     """Side view (x right, z up) of particles as dots coloured by speed, inside the shot's bounds.
 
     An orthographic projection onto the x-z plane, drawn far to near in y so nearer particles
@@ -358,6 +360,7 @@ def render_tile(positions, velocities, lower, upper, size=(240, 180)):
         positions, velocities: (N, 3) float arrays (m, m/s).
         lower, upper: (3,) bounds corners (m).
         size: (width, height) pixels of the tile.
+        spacing: particle spacing (m); each particle is a square of about one spacing (2 to 6 pixels).
 
     Returns:
         (height, width, 3) uint8 image.
@@ -383,8 +386,10 @@ def render_tile(positions, velocities, lower, upper, size=(240, 180)):
         pz = np.clip((z0 - scale * (p[order, 2] - lower[2])).astype(int), 0, height - 2)
         s = share[order][:, None]
         colour = ((1 - s) * np.array([20, 70, 170]) + s * np.array([235, 245, 255])).astype(np.uint8)
-        for dx in (0, 1):
-            for dz in (0, 1):
+        dot = 2 if spacing is None else int(np.clip(round(scale * spacing), 2, 6))
+        px, pz = np.minimum(px, width - dot), np.minimum(pz, height - dot)
+        for dx in range(dot):
+            for dz in range(dot):
                 image[pz + dz, px + dx] = colour
     return image
 
@@ -406,14 +411,16 @@ def write_contact_sheet(manifest, frame, path, columns=None):
             data = cache.read_frame(frame)
             from .scene import load_scene
 
-            bounds = load_scene(v["scene_file"]).bounds
-            tile = render_tile(data["positions"], data["velocities"], bounds.lower, bounds.upper, (tile_w, tile_h))
+            scene = load_scene(v["scene_file"])
+            tile = render_tile(data["positions"], data["velocities"], scene.bounds.lower, scene.bounds.upper,
+                               (tile_w, tile_h), scene.particle_spacing)  # fmt: skip
             caption = f"{v['name'][:3]} f{frame} n{len(data['positions'])}"
         except SplashdraftError:
             tile = np.full((tile_h, tile_w, 3), 200, np.uint8)
             caption = f"{v['name'][:3]} no frame {frame}"
         sheet[y + label_h:y + label_h + tile_h, x:x + tile_w] = tile
         _text(sheet, x + 4, y + 3, caption[:38], colour=(0, 0, 0), scale=2)
-        _text(sheet, x + 4, y + 18, label_of(v["settings"])[:58], colour=(20, 20, 120), scale=1)
+        label = label_of(v["settings"])
+        _text(sheet, x + 4, y + 18, label[:58], colour=(20, 20, 120), scale=2 if len(label) <= 29 else 1)
     write_atomic(path, png_bytes(sheet))
     return Path(path)

@@ -140,6 +140,7 @@ def test_local_cluster_wedge_2x2_equals_serial_and_resumes(tmp_path, capsys):
     # Another set of values into the same wedge folder is refused by name.
     status = main(["wedge", str(scene), "--vary", "fluid.viscosity=0.02", "--out", str(farm), "--workers", "0"])
     assert status == 4 and "holds a wedge with another vary" in capsys.readouterr().err
+    assert not (farm / "scenes" / "v00_viscosity-0.02").exists()  # nothing written into the other wedge
 
 
 def test_partial_variant_is_resumed_not_restarted(tmp_path, capsys):
