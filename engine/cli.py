@@ -200,6 +200,7 @@ def build_parser():
     tune.add_argument("--hold-back", type=float, metavar="SHARE",
                       help="Share of each bake's last frames held back for the before/after figures. Default: 0.25.")
     tune.add_argument("--checkpoint-every", type=int, metavar="N", help="Iterations between checkpoints. Default: 50.")
+    tune.add_argument("--lr", type=float, metavar="RATE", help="Adam learning rate. Default: 3e-4.")
     tune.add_argument("--json", action="store_true", help="Print the tune record as JSON on stdout.")
 
     # The compare command is handled by engine.compare.main_compare (see main); listed here for --help.
@@ -477,12 +478,14 @@ def command_tune(args):
                               "run python -m engine tune from the repository root") from None  # fmt: skip
     words = ["python -m engine tune", "--bakes", *args.bakes, "--out", args.out]
     for flag, value in (("--base", args.base), ("--minutes", args.minutes), ("--iterations", args.iterations),
-                        ("--hold-back", args.hold_back), ("--checkpoint-every", args.checkpoint_every)):
+                        ("--hold-back", args.hold_back), ("--checkpoint-every", args.checkpoint_every),
+                        ("--lr", args.lr)):
         if value is not None:
             words += [flag, str(value)]
     command = " ".join(words)
     record = tune(args.bakes, args.out, base=args.base, minutes=args.minutes, iterations=args.iterations,
-                  hold_back=args.hold_back, checkpoint_every=args.checkpoint_every, command=command, log=_say)
+                  hold_back=args.hold_back, checkpoint_every=args.checkpoint_every, command=command, log=_say,
+                  lr=args.lr)
     if args.json:
         _print_json(record)
     before, after = record["before"], record["after"]

@@ -59,6 +59,7 @@ def test_tune_writes_a_model_that_passes_its_contract_and_bakes(reference_bake, 
     assert contract["training"]["base_model"] == "preview-gn4" and contract["training"]["iterations"] == 6
     assert find_model(out) == onnx_path
     assert record["export_check"]["passed"] and record["iterations"] == 6
+    assert record["is_better"] == (record["after"]["mean_chamfer_spacings"] < record["before"]["mean_chamfer_spacings"])
     for side in ("before", "after"):
         assert math.isfinite(record[side]["mean_chamfer_spacings"]) and record[side]["mean_chamfer_spacings"] >= 0
         assert math.isfinite(record[side]["energy_ratio"])

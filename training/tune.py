@@ -172,7 +172,7 @@ def _evaluate(shots, held, onnx_path, out_dir, label):
 
 
 def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, checkpoint_every=None, seed=None,
-         command=None, log=print):
+         command=None, log=print, lr=None):
     """Fine-tune ``base`` on ``bakes`` into the model folder ``out``; returns the tune record dict."""
     try:
         import torch
@@ -194,11 +194,13 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     base_contract, base_onnx = contract_module.load_contract(base_onnx)
     settings = dict(TUNE_DEFAULTS)
     for key, value in (("iterations", iterations), ("hold_back", hold_back), ("seed", seed),
-                       ("checkpoint_every", checkpoint_every)):  # fmt: skip
+                       ("checkpoint_every", checkpoint_every), ("lr", lr)):  # fmt: skip
         if value is not None:
             settings[key] = value
     if not 0.05 <= settings["hold_back"] <= 0.8:
         raise UsageError(f"--hold-back {settings['hold_back']}: give a share of frames from 0.05 to 0.8")
+    if not 0 < settings["lr"] <= 0.1:
+        raise UsageError(f"--lr {settings['lr']}: give a learning rate above 0 and at most 0.1")
     if int(settings["iterations"]) < 1:
         raise UsageError(f"--iterations {settings['iterations']}: give at least 1")
     shots = load_bakes(bakes, base_contract)
@@ -244,6 +246,8 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         payload = torch.load(checkpoint_path, weights_only=True)
         model.load_state_dict(payload["model"])
         optimiser.load_state_dict(payload["optimiser"])
+        for group in optimiser.param_groups:
+            group["lr"] = settings["lr"]  # this command's rate, not the checkpoint's
         iteration, seconds_before = int(payload["iteration"]), float(payload["seconds"])
         history = json.loads(payload["history"])
         rng.bit_generator.state = json.loads(payload["numpy_rng"])
@@ -311,6 +315,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         return float(np.mean(values)) if values else None
 
     record = {
+        "is_better": None,
         "model": str(final_onnx), "base_model": str(base_onnx), "iterations": iteration,
         "training_seconds": round(train_seconds, 1), "wall_seconds": round(time.monotonic() - started_wall, 1),
         "export_check": check, "command": command or "", "data": data_record, "settings": settings,
@@ -320,6 +325,12 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
                   "energy_ratio": mean(after, "energy_ratio"), "per_bake": after},
         "loss_first_last": [history[0][1], history[-1][1]] if history else None,
     }  # fmt: skip
+    before_cd, after_cd = record["before"]["mean_chamfer_spacings"], record["after"]["mean_chamfer_spacings"]
+    record["is_better"] = bool(after_cd < before_cd) if None not in (before_cd, after_cd) else None
+    if record["is_better"] is False:
+        log(f"tune: warning: the tuned model is further from the reference on the held-back frames than the base "
+            f"(mean Chamfer {before_cd:.3f} -> {after_cd:.3f} spacings); keep baking with the base model, or tune "
+            "again with more reference bakes, fewer iterations or a lower --lr")
     write_atomic(out / "tune.json", (json.dumps(record, indent=1) + "\n").encode())
     write_atomic(out / f"{name}.md", write_card(name, record).encode())
     return record
@@ -365,6 +376,8 @@ def write_card(name, record):
     lines.append(f"| **mean** | {show(record['before']['mean_chamfer_spacings'])} | "
                  f"{show(record['after']['mean_chamfer_spacings'])} | {show(record['before']['energy_ratio'])} | "
                  f"{show(record['after']['energy_ratio'])} |")  # fmt: skip
+    if record.get("is_better") is False:
+        lines += ["", "**Worse than the base model on the held-back frames: keep baking with the base model.**"]
     lines += ["", "Measured when the model was written; the figures are this run's own, on these bakes only.", ""]
     return "\n".join(lines)
 
