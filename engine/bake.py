@@ -82,15 +82,25 @@ def scene_hash(scene):
     return hash_of_scene(scene)
 
 
-def make_solver(name):
-    """A fresh solver called ``name`` ("sph" or "learned"), imported lazily."""
+def make_solver(name, model=None):
+    """A fresh solver called ``name`` ("sph" or "learned"), imported lazily.
+
+    ``model`` (learned only): a model folder, .onnx or .json (``engine.learned.contract.find_model``);
+    None is the shipped model.
+    """
     if name == "sph":
+        if model is not None:
+            raise UsageError(f"--model {model}: a model is for the learned preview; add --solver learned")
         from .sph import SphSolver
 
         return SphSolver()
     if name == "learned":
         from .learned import LearnedSolver
 
+        if model is not None:
+            from .learned.contract import find_model
+
+            return LearnedSolver(model=find_model(model))
         return LearnedSolver()
     raise UsageError(f"solver {name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
 

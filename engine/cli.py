@@ -93,6 +93,10 @@ def build_parser():
                       help="Continue an interrupted bake from its checkpoint. Default: start from the first frame.")
     bake.add_argument("--overwrite", action="store_true",
                       help="Allow replacing a cache of another scene or solver in --out. Default: refuse.")
+    bake.add_argument("--model", metavar="MODEL",
+                      help="With --solver learned: the model to use, a folder holding one model (e.g. from "
+                      "'tune') or an .onnx file with its .json contract beside it; it must pass its contract "
+                      "check. Default: the shipped model in models/.")  # fmt: skip
     _add_progress(bake)
     _add_budget(bake)
 
@@ -145,6 +149,60 @@ def build_parser():
     _add_progress(demo)
     _add_budget(demo)
 
+    wedge = commands.add_parser(
+        "wedge", help="Bake one scene once per combination of setting values.", epilog=_exit_code_epilog(),
+        formatter_class=formatter,
+        description="Bake a scene once per combination of --vary values, each variant into its own cache "
+        "folder under --out, on a local Dask cluster (default), an existing Dask scheduler, or serially "
+        "here (--workers 0). Re-running the same command resumes: complete variants are skipped, partial "
+        "ones continue from their last frame. Ends with a table of the variants and a contact sheet "
+        "(OUT/contact_sheet.png) of one frame per variant.",
+    )  # fmt: skip
+    wedge.add_argument("scene", help="The base scene file.")
+    wedge.add_argument("--vary", action="append", required=True, metavar="KEY=V1,V2,...",
+                       help="A scene field by its dotted path and the values to try, e.g. fluid.viscosity=0.01,0.05 "
+                       "or emitters.spout.speed=1,2 (emitters and colliders by name). Repeat for more fields; "
+                       "the wedge is every combination.")  # fmt: skip
+    wedge.add_argument("--solver", choices=("sph", "learned"), default="sph",
+                       help="The solver every variant is baked with. Default: sph.")
+    wedge.add_argument("--model", metavar="MODEL", help="With --solver learned: the model (as for 'bake --model').")
+    wedge.add_argument("--frames", metavar="A:B", help="Bake frames A to B of each variant. Default: the whole shot.")
+    wedge.add_argument("--out", required=True, help="The wedge folder (one cache folder per variant inside).")
+    where = wedge.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=int, metavar="N",
+                       help="Worker processes of the local Dask cluster; 0 bakes the variants one after another "
+                       "in this process. Default: one per CPU core (at most one per variant).")  # fmt: skip
+    where.add_argument("--scheduler", metavar="ADDRESS",
+                       help="Send the variants to the Dask scheduler at ADDRESS (e.g. tcp://farm:8786); --out, "
+                       "the scene and its meshes must be on storage every worker sees at the same path.")  # fmt: skip
+    wedge.add_argument("--sheet-frame", type=int, metavar="F",
+                       help="The frame shown for each variant in the contact sheet. Default: the last frame.")
+    wedge.add_argument("--json", action="store_true", help="Print the summary table as JSON on stdout.")
+    _add_progress(wedge)
+
+    tune = commands.add_parser(
+        "tune", help="Fine-tune the learned preview on reference bakes (needs PyTorch).",
+        epilog=_exit_code_epilog(), formatter_class=formatter,
+        description="Continue training the learned preview's model on reference (--solver sph) bakes you "
+        "already have, holding back the last frames of each, and write a new model folder: the model, its "
+        "contract, and a card with the mean Chamfer distance and energy ratio on the held-back frames "
+        "before and after. Re-running the same command resumes from its checkpoint. Use the result with "
+        "'bake --solver learned --model MODEL_DIR'. Needs PyTorch (pip install -r requirements-train.txt).",
+    )  # fmt: skip
+    tune.add_argument("--bakes", nargs="+", required=True, metavar="DIR",
+                      help="Reference bake folders (cache folders baked with --solver sph, at a frame rate where "
+                      "one frame is at most the model's learned step).")  # fmt: skip
+    tune.add_argument("--base", metavar="MODEL", help="The model to start from. Default: the shipped model.")
+    tune.add_argument("--out", required=True, metavar="MODEL_DIR",
+                      help="The new model's folder; its name names the model.")
+    tune.add_argument("--minutes", type=float, metavar="M", help="Stop training after M minutes. Default: no limit.")
+    tune.add_argument("--iterations", type=int, metavar="N", help="Training iterations in all. Default: 300.")
+    tune.add_argument("--hold-back", type=float, metavar="SHARE",
+                      help="Share of each bake's last frames held back for the before/after figures. Default: 0.25.")
+    tune.add_argument("--checkpoint-every", type=int, metavar="N", help="Iterations between checkpoints. Default: 50.")
+    tune.add_argument("--lr", type=float, metavar="RATE", help="Adam learning rate. Default: 3e-4.")
+    tune.add_argument("--json", action="store_true", help="Print the tune record as JSON on stdout.")
+
     # The compare command is handled by engine.compare.main_compare (see main); listed here for --help.
     commands.add_parser(
         "compare", help="Compare one bake against another (see 'compare --help').", add_help=False,
@@ -163,12 +221,13 @@ def _print_json(data):
 # --------------------------------------------------------------------------- commands
 
 
-def _run_bake(scene, solver, out, frames, resume, progress, max_particles, overwrite):
-    from .bake import bake
+def _run_bake(scene, solver, out, frames, resume, progress, max_particles, overwrite, model=None):
+    from .bake import bake, make_solver
 
+    solver_object = make_solver(solver, model) if model is not None else None
     result = bake(
         scene, solver, out, frames=frames, resume=resume, progress=make_progress(progress),
-        max_particles=max_particles, overwrite=overwrite,
+        max_particles=max_particles, overwrite=overwrite, solver=solver_object,
     )  # fmt: skip
     for note in result.notes:
         _say(f"note: {note}")
@@ -183,7 +242,7 @@ def _run_bake(scene, solver, out, frames, resume, progress, max_particles, overw
 
 def command_bake(args):
     return _run_bake(args.scene, args.solver, args.out, args.frames, args.resume, args.progress,
-                     args.max_particles, args.overwrite)  # fmt: skip
+                     args.max_particles, args.overwrite, args.model)  # fmt: skip
 
 
 def describe_cache(folder, verify=False):
@@ -383,12 +442,76 @@ def command_demo(args):
                      args.max_particles, True)  # fmt: skip
 
 
+def command_wedge(args):
+    from .farm import WedgeProgress, run_wedge
+    from .wedge import format_table, parse_vary, summary_rows
+
+    vary = [parse_vary(text) for text in args.vary]
+    manifest, sheet, cancelled = run_wedge(
+        args.scene, vary, args.solver, args.out, frames=args.frames, model=args.model, workers=args.workers,
+        scheduler=args.scheduler, progress=WedgeProgress(args.progress), sheet_frame=args.sheet_frame,
+    )  # fmt: skip
+    rows = summary_rows(manifest)
+    if args.json:
+        _print_json({"wedge": str(Path(args.out).resolve()), "contact_sheet": None if sheet is None else str(sheet),
+                     "variants": rows})  # fmt: skip
+    else:
+        print(format_table(rows, [key for key, _ in vary]))
+    for row in rows:
+        if row["error"]:
+            _say(f"variant {row['variant']}: {row['error']}")
+    complete = sum(r["state"] == "complete" for r in rows)
+    _say(f"wedge: {complete} of {len(rows)} variants complete; manifest {Path(args.out) / 'wedge.json'}"
+         + (f"; contact sheet {sheet}" if sheet else ""))  # fmt: skip
+    if cancelled:
+        _say("wedge cancelled; finished frames are kept (re-run the same command to resume)")
+        return CANCELLED_EXIT
+    return 0 if complete == len(rows) else 1
+
+
+def command_tune(args):
+    from .errors import DependencyError
+
+    if args.minutes is not None and not args.minutes > 0:
+        raise UsageError(f"--minutes {args.minutes}: give a positive number of minutes")
+    try:
+        from training.tune import tune
+    except ImportError as exc:
+        raise DependencyError(f"fine-tuning needs the training/ folder of the Splashdraft repository ({exc}); "
+                              "run python -m engine tune from the repository root") from None  # fmt: skip
+    words = ["python -m engine tune", "--bakes", *args.bakes, "--out", args.out]
+    for flag, value in (("--base", args.base), ("--minutes", args.minutes), ("--iterations", args.iterations),
+                        ("--hold-back", args.hold_back), ("--checkpoint-every", args.checkpoint_every),
+                        ("--lr", args.lr)):
+        if value is not None:
+            words += [flag, str(value)]
+    command = " ".join(words)
+    record = tune(args.bakes, args.out, base=args.base, minutes=args.minutes, iterations=args.iterations,
+                  hold_back=args.hold_back, checkpoint_every=args.checkpoint_every, command=command, log=_say,
+                  lr=args.lr)
+    if args.json:
+        _print_json(record)
+    before, after = record["before"], record["after"]
+
+    def show(value):
+        return "-" if value is None else f"{value:.3f}"
+
+    _say(f"held-back frames: mean Chamfer {show(before['mean_chamfer_spacings'])} -> "
+         f"{show(after['mean_chamfer_spacings'])} spacings, energy ratio {show(before['energy_ratio'])} -> "
+         f"{show(after['energy_ratio'])}")  # fmt: skip
+    _say(f"tune: {record['iterations']} iterations, {format_duration(record['wall_seconds'])} wall time; "
+         f"model {record['model']} (card beside it); use it with bake --solver learned --model {args.out}")
+    return 0
+
+
 COMMANDS = {
     "bake": command_bake,
     "info": command_info,
     "estimate": command_estimate,
     "validate": command_validate,
     "demo": command_demo,
+    "wedge": command_wedge,
+    "tune": command_tune,
 }
 
 

@@ -53,6 +53,12 @@ class UsageError(SplashdraftError):
     exit_code = 64
 
 
+class DependencyError(SplashdraftError):
+    """An optional dependency a command needs is not installed (the message names the install command)."""
+
+    exit_code = 8
+
+
 class ValidationFailed(SplashdraftError):
     """A validation case ran but fell outside its published tolerance."""
 
@@ -69,6 +75,7 @@ EXIT_CODES = {
     5: "learned model missing, corrupt or mismatched",
     6: "simulation became invalid",
     7: "validation outside tolerance",
+    8: "an optional dependency is missing (the message says what to install)",
     64: "command-line usage error",
     130: "interrupted; finished frames were kept (resume with --resume)",
     141: "the reader of the output closed the pipe (e.g. '| head'); nothing else went wrong",

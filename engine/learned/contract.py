@@ -203,3 +203,38 @@ def load_contract(model_path):
             f"restore the pair from models/ or {RETRAIN_HINT}"
         )
     return contract, onnx_path
+
+
+def find_model(path):
+    """The .onnx model a ``--model`` argument names: a model folder, an .onnx file or its .json contract.
+
+    A folder must hold exactly one contract (``*.json`` with format ``splashdraft-model-contract``)
+    that passes ``load_contract``; the model of a file is checked the same way.
+
+    Returns:
+        Path of the .onnx file.
+
+    Raises:
+        ModelError: nothing there, no contract that passes its check (with the first reason), or
+            more than one (naming them: pass the file instead).
+    """
+    path = Path(path)
+    if path.is_dir():
+        passing, reasons = [], []
+        for candidate in sorted(path.glob("*.json")):
+            try:
+                passing.append(load_contract(candidate)[1])
+            except ModelError as exc:
+                reasons.append(str(exc))
+        if len(passing) == 1:
+            return passing[0]
+        if len(passing) > 1:
+            names = ", ".join(p.name for p in passing)
+            raise ModelError(f"--model {path}: the folder holds {len(passing)} models ({names}); "
+                             "pass the one to use as --model FOLDER/NAME.onnx")
+        why = f" ({reasons[0]})" if reasons else ""
+        raise ModelError(f"--model {path}: no model in the folder passes its contract check{why}; "
+                         f"point --model at a folder written by `python -m engine tune` or {RETRAIN_HINT}")
+    if not path.exists() and not contract_path_for(path).exists():
+        raise ModelError(f"--model {path}: no such file or folder; check the path")
+    return load_contract(path)[1]
