@@ -302,19 +302,16 @@ def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45):
     t_end = t_max_scaled / time_scale
     sample = 0.005
     chunks = int(math.ceil(t_end / sample))
-    _progress_start(progress, chunks, state.count)
-    times, fronts = [0.0], [dam_front(state.positions, spacing, 0.0, slab_layers) / a]
-    substeps = 0
-    outside = 0
-    for k in range(1, chunks + 1):
-        t0 = time.monotonic()
-        state, stats = solver.advance(state, world, k * sample)
-        substeps += stats.substeps
-        times.append(state.time)
-        fronts.append(dam_front(state.positions, spacing, 0.0, slab_layers) / a)
-        x = state.positions
-        outside = max(outside, int(np.sum(np.any((x < np.asarray(lower)) | (x > np.asarray(upper)), axis=1))))
-        _progress_frame(progress, k, chunks, state.count, stats.substeps, time.monotonic() - t0, started)
+    bounds = (np.asarray(lower), np.asarray(upper))
+
+    def measure(current):
+        x = current.positions
+        return (dam_front(x, spacing, 0.0, slab_layers) / a,
+                int(np.sum(np.any((x < bounds[0]) | (x > bounds[1]), axis=1))))
+
+    state, times, samples, substeps = _run_sampled(solver, world, state, sample, chunks, measure, progress, started)
+    fronts = [front for front, _ in samples]
+    outside = max(count for _, count in samples)
     scaled_t = np.asarray(times) * time_scale
     fronts = np.asarray(fronts)
     window = (MARTIN_MOYCE_T >= 0.4) & (MARTIN_MOYCE_T <= 3.3)
@@ -403,16 +400,9 @@ def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01,
     period = 2.0 * math.pi / omega
     sample = period / 40.0
     chunks = int(math.ceil(periods * period / sample))
-    _progress_start(progress, chunks, state.count)
-    times, centre = [0.0], [float(np.mean(state.positions[:, 0]))]
-    substeps = 0
-    for step in range(1, chunks + 1):
-        t0 = time.monotonic()
-        state, stats = solver.advance(state, world, step * sample)
-        substeps += stats.substeps
-        times.append(state.time)
-        centre.append(float(np.mean(state.positions[:, 0])))
-        _progress_frame(progress, step, chunks, state.count, stats.substeps, time.monotonic() - t0, started)
+    state, times, centre, substeps = _run_sampled(solver, world, state, sample, chunks,
+                                                  lambda current: float(np.mean(current.positions[:, 0])),
+                                                  progress, started)
     times, centre = np.asarray(times), np.asarray(centre)
     measured, decay = _fit_damped_period(times, centre, period)
     metrics = {
@@ -438,6 +428,24 @@ def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01,
 
 
 _RUNNERS = {"hydrostatic": hydrostatic, "dam-break": dam_break, "sloshing": sloshing}
+
+
+def _run_sampled(solver, world, state, sample, chunks, measure, progress, started):
+    """Advance ``state`` in ``chunks`` intervals of ``sample`` seconds, measuring at t = 0 and after each.
+
+    Returns:
+        (state, times, [measure(state) at each time], substeps).
+    """
+    _progress_start(progress, chunks, state.count)
+    times, values, substeps = [state.time], [measure(state)], 0
+    for step in range(1, chunks + 1):
+        t0 = time.monotonic()
+        state, stats = solver.advance(state, world, step * sample)
+        substeps += stats.substeps
+        times.append(state.time)
+        values.append(measure(state))
+        _progress_frame(progress, step, chunks, state.count, stats.substeps, time.monotonic() - t0, started)
+    return state, times, values, substeps
 
 
 def _fit_damped_period(times, signal, guess):

@@ -143,6 +143,27 @@ def export(model, run, name, sample_inputs, config, stats, training_info):
     return onnx_path, check
 
 
+def train_step(model, optimiser, samples):
+    """One optimiser step on a batch of (normalised inputs, target, mask) samples: the mean squared
+    error over the masked particles, gradients clipped to norm 1. Returns the loss, or None when no
+    particle in the batch has a target."""
+    import torch
+
+    from .model import as_tensors
+
+    inputs, target, mask = dataset.batch_inputs(samples)
+    if not mask.any():
+        return None
+    prediction = model(*as_tensors(inputs))
+    selected = torch.from_numpy(np.flatnonzero(mask))
+    loss = ((prediction[selected] - torch.from_numpy(target)[selected]) ** 2).mean()
+    optimiser.zero_grad()
+    loss.backward()
+    torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
+    optimiser.step()
+    return float(loss.detach())
+
+
 def train(data, out, resume=False, overrides=None, minutes=None, export_to=None, name=None, log=print):
     """Train (or continue) a run; returns the run summary dict. See the module docstring."""
     import torch
@@ -251,19 +272,11 @@ def train(data, out, resume=False, overrides=None, minutes=None, export_to=None,
             group["lr"] = config["lr"] * decay**iteration
         picks = rng.integers(0, len(pool), config["batch"])
         samples = [_normalised_sample(*pool[i], config, stats, rng, config["noise"]) for i in picks]
-        inputs, target, mask = dataset.batch_inputs(samples)
-        if not mask.any():
-            iteration += 1
-            continue
-        prediction = model(*as_tensors(inputs))
-        selected = torch.from_numpy(np.flatnonzero(mask))
-        loss = ((prediction[selected] - torch.from_numpy(target)[selected]) ** 2).mean()
-        optimiser.zero_grad()
-        loss.backward()
-        torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
-        optimiser.step()
+        loss = train_step(model, optimiser, samples)
         iteration += 1
-        history["train"].append((iteration, float(loss.detach())))
+        if loss is None:
+            continue
+        history["train"].append((iteration, loss))
         if validation and iteration % config["validate_every"] == 0:
             history["validation"].append((iteration, validation_loss()))
         if iteration % config["checkpoint_every"] == 0:

@@ -181,8 +181,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
 
         raise DependencyError("fine-tuning needs PyTorch, which is not installed; run "
                               "pip install -r requirements-train.txt (CPU build, about 200 MB)") from None  # fmt: skip
-    from .model import as_tensors
-    from .train import _normalised_sample, _save_torch, export
+    from .train import _normalised_sample, _save_torch, export, train_step
 
     torch.set_num_threads(2)
     started_wall = time.monotonic()
@@ -271,18 +270,11 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
             break
         picks = rng.integers(0, len(pool), settings["batch"])
         samples = [_normalised_sample(*pool[i], config, stats, rng, settings["noise"]) for i in picks]
-        inputs, target, mask = dataset.batch_inputs(samples)
+        loss = train_step(model, optimiser, samples)
         iteration += 1
-        if not mask.any():
+        if loss is None:
             continue
-        prediction = model(*as_tensors(inputs))
-        selected = torch.from_numpy(np.flatnonzero(mask))
-        loss = ((prediction[selected] - torch.from_numpy(target)[selected]) ** 2).mean()
-        optimiser.zero_grad()
-        loss.backward()
-        torch.nn.utils.clip_grad_norm_(model.parameters(), 1.0)
-        optimiser.step()
-        history.append((iteration, float(loss.detach())))
+        history.append((iteration, loss))
         if iteration % settings["checkpoint_every"] == 0:
             save()
             recent = np.mean([h[1] for h in history[-settings["checkpoint_every"]:]])
