@@ -46,7 +46,7 @@ from engine.world import build_world  # noqa: E402
 from splash_shots import SHOTS, SPACING, shot  # noqa: E402
 
 
-def thin_crossings(world, before, after, ids_before, ids_after):
+def thin_crossings(world, before, after, ids_before, ids_after, t):
     """Particles whose straight path between two frames crosses a collider surface an odd number of times.
 
     Counted with the segment-triangle test on every collider's triangles at the later time
@@ -57,7 +57,7 @@ def thin_crossings(world, before, after, ids_before, ids_after):
         return 0
     p0, p1 = before[ia], after[ib]
     crossings = np.zeros(len(common), np.int64)
-    for _, triangles in world.collider_triangles_at(float(world._cache.get("audit_time", 0.0))):
+    for _, triangles in world.collider_triangles_at(t):
         crossings += _segment_hits(p0, p1, triangles)
     return int(np.count_nonzero(crossings % 2))
 
@@ -112,8 +112,7 @@ def run_shot(name, spacing=SPACING, seconds=None, solver=None):
         iterations += stats.iterations
         unconverged += getattr(stats, "unconverged_substeps", 0)
         if world.colliders:
-            world._cache["audit_time"] = state.time
-            crossings += thin_crossings(world, before, state.positions, ids_before, state.ids)
+            crossings += thin_crossings(world, before, state.positions, ids_before, state.ids, state.time)
         audit = energy.frame_audit(state, world, top)
         supplied = start_energy + audit["emitted_j"]
         if supplied > 0:

@@ -434,7 +434,7 @@ def _solver_record(stats):
     """The manifest's per-frame ``solver`` entry from a solver's step stats (None: the first frame)."""
     if stats is None:
         return {}
-    names = ("iterations", "pressure_iterations", "divergence_iterations", "retried_substeps",
+    names = ("iterations", "pressure_iterations", "drift_iterations", "retried_substeps",
              "unconverged_substeps", "max_density_error", "steps", "steps_below_range")
     return {name: _json_ready(getattr(stats, name)) for name in names if hasattr(stats, name)}
 

@@ -40,7 +40,7 @@ DEFAULT_THROUGHPUT = {"sph": 6.0e4, "learned": 2.0e5}
 
 #: Bytes per fluid particle, per neighbour pair, and per boundary particle, by solver.
 #: sph: State (positions, velocities 2x24, ids 8) + DFSPH per-particle float64 arrays
-#: (density, alpha, kappa, kappa_v, pressure, predicted velocity 24, accelerations 24)
+#: (density, alpha, kappa, drift, pressure, predicted velocity 24, accelerations 24)
 #: = 144 B; per pair: two int64 indices, distance, kernel value, gradient (3) and the
 #: difference vector (3) in float64 = 80 B; boundary: positions, velocities, normals,
 #: volumes (80 B) + KD-tree (~32 B). learned: State + float32 features (~64 B) and

@@ -31,13 +31,11 @@ as the diagonal. One substep, with one neighbour search:
    splash suite in bench/ measured a dam break at 1.5x the energy it started with).
 
 Both solves are the SCA paper's Jacobi iterations with compression-only increments
-(``_projected_solve(..., monotone=True)``): kappa_i += alpha_i max(r_i, 0) / dt^2. The
+(``_jacobi_solve``): kappa_i += alpha_i max(r_i, 0) / dt^2. The
 drift solve starts from ``DRIFT_WARM_START`` of its previous coefficient, runs at most
 ``DRIFT_ITERATIONS`` iterations, and its shift is capped at ``DRIFT_SHIFT_CAP`` spacings per substep (the
-rest waits for the next substep). A projected variant that also lowers kappa (IISPH's
-relaxed Jacobi, OMEGA = 0.5) is kept in ``_projected_solve``; measured 2026-12-04 it
-converged too slowly in deep columns (over 100 iterations at the hydrostatic tank's
-tolerance). Stopping rule: mean compression / rho0 <= ``density_tolerance`` after at
+rest waits for the next substep). A projected variant that also lowers kappa was measured
+and not kept (DEVELOPERS.md, "Solver notes"). Stopping rule: mean compression / rho0 <= ``density_tolerance`` after at
 least 2 (velocity) and 1 (drift) iterations. A substep whose velocity solve does not
 converge within ``max_iterations`` is taken again at half the step (up to
 ``MAX_STEP_HALVINGS`` times); ``StepStats`` counts retries and substeps accepted
@@ -82,7 +80,7 @@ from .kernels import kernel, kernel_terms
 from .neighbours import SkinPairs
 
 KAPPA = "sph_kappa"
-KAPPA_V = "sph_kappa_v"
+DRIFT = "sph_drift"
 PRESSURE = "sph_pressure"
 
 #: Threads for the solver's sparse products (scipy's sparse kernels release the GIL). Each
@@ -120,7 +118,7 @@ class SphParams:
         cfl_factor: dt <= cfl_factor * d / max|v|.
         max_time_step, min_time_step: bounds on dt in seconds.
         density_tolerance: mean compression target of the constant-density solve (fraction).
-        divergence_tolerance: mean dt * (D rho / Dt) / rho0 target of the divergence solve.
+        divergence_tolerance: kept for the scene format; this solver no longer uses it.
         max_iterations: cap on each solver's iterations.
         neighbour_skin: Verlet-list skin in metres (0: search every substep).
     """
@@ -172,12 +170,6 @@ DRIFT_ITERATIONS = 40
 #: that persists (the bottom of a resting column) needs about the same shift each substep.
 DRIFT_WARM_START = 0.5
 
-#: Weight of the wall term of XSPH relative to the fluid term (1: walls smooth like fluid at rest).
-WALL_SMOOTHING = 1.0
-
-#: Relaxation of the projected Jacobi solves (IISPH uses 0.5, Ihmsen et al. 2014 [M]). Measured on
-#: a dam break over a ring: 0.7 and 1.0 diverge next to walls, 0.5 converges.
-OMEGA = 0.5
 
 #: Neighbour searches ``settle_positions`` may use to bring a fill to rest density at t = 0.
 SETTLE_PASSES = 3
@@ -413,9 +405,9 @@ class PairOperators:
         if epsilon == 0.0:
             return velocities
         smoothed = velocities
-        if self._wall is not None and WALL_SMOOTHING:
+        if self._wall is not None:
             bi, weight, wall_velocity = self._wall
-            pull = (wall_velocity - velocities[bi]) * (WALL_SMOOTHING * epsilon * weight / self.density[bi])[:, None]
+            pull = (wall_velocity - velocities[bi]) * (epsilon * weight / self.density[bi])[:, None]
             smoothed = velocities + np.stack([np.bincount(bi, pull[:, c], self.count) for c in range(3)], axis=1)
         if len(self._i) == 0:
             return smoothed
@@ -434,10 +426,10 @@ class SubstepResult:
     Attributes:
         positions, velocities: (N, 3) float64 at t + dt.
         kappa: (N,) accumulated constant-density kappa (m^2/s^2) for the warm start.
-        kappa_v: (N,) accumulated dt * kappa_v of the divergence solve (m^2/s).
+        drift: (N,) the drift solve's coefficient (m^2/s^2), warm start of the next substep.
         density: (N,) rho_i at the start of the substep (kg/m^3).
-        pressure: (N,) rho_i (kappa_i + kappa_v_i) in Pa (module docstring).
-        pressure_iterations, divergence_iterations: iterations used.
+        pressure: (N,) rho_i kappa_i in Pa (module docstring).
+        pressure_iterations, drift_iterations: iterations of the velocity and drift solves.
         density_error: mean predicted compression / rho0 at the new positions (after both solves).
         max_density_error: max predicted compression / rho0 at the new positions.
         converged: the velocity solve reached its tolerance within ``max_iterations``.
@@ -449,11 +441,11 @@ class SubstepResult:
     positions: np.ndarray
     velocities: np.ndarray
     kappa: np.ndarray
-    kappa_v: np.ndarray
+    drift: np.ndarray
     density: np.ndarray
     pressure: np.ndarray
     pressure_iterations: int
-    divergence_iterations: int
+    drift_iterations: int
     density_error: float
     max_density_error: float
     converged: bool
@@ -471,23 +463,19 @@ def _find_pairs(positions, boundary, params, pairs):
     return inner, between
 
 
-def _projected_solve(ops, velocities, kappa, floor, dt, tolerance, min_iterations, max_iterations, monotone=False):
-    """Find kappa >= 0 with rho_i + dt (D rho / Dt)_i(v) <= floor_i, kappa_i = 0 where it is below.
+def _jacobi_solve(ops, velocities, kappa, floor, dt, tolerance, min_iterations, max_iterations):
+    """Find kappa >= 0 that brings rho_i + dt (D rho / Dt)_i(v) down to ``floor_i`` (SCA 2015 Jacobi).
 
-    Projected Jacobi on the complementarity problem (IISPH's relaxed Jacobi,
-    Ihmsen et al. 2014, with the DFSPH factor alpha as the diagonal and the clamp
-    kappa >= 0): kappa_i <- max(0, kappa_i + OMEGA alpha_i r_i / dt^2) with the signed
-    residual r_i = rho*_i - floor_i, and v <- v - dt sum_j m (dk_i / rho_i + dk_j /
-    rho_j) grad W_ij for the change dk = d kappa / rho. Because kappa can go down, a
-    push that is no longer needed (a warm start after an impact, an overshoot) is
-    taken back; a compression-only update could only add to it, which gave the flow
-    energy. The error is the mean of the compression max(r, 0) plus, where kappa > 0,
-    the unneeded push max(-r, 0), over rho0; the solve stops when it is <= tolerance
-    after ``min_iterations``, or at ``max_iterations`` (then ``converged`` is False).
+    Each iteration adds kappa_i += alpha_i max(r_i, 0) / dt^2 with r_i = rho*_i - floor_i
+    (compression only, so free surfaces do not pull) and applies the change as
+    v <- v - dt sum_j m (dk_i / rho_i + dk_j / rho_j) grad W_ij, dk = d kappa / rho. The
+    starting ``kappa`` (a warm start) is applied first. The solve stops when the mean
+    compression max(r, 0) / rho0 is <= ``tolerance`` after ``min_iterations``, or at
+    ``max_iterations`` (then ``converged`` is False).
 
     Returns:
-        (velocities, kappa, iterations, error, worst, converged); ``worst`` is the
-        largest compression max(r, 0) / rho0 of the returned velocities.
+        (velocities, kappa, iterations, error, worst, converged); ``error`` and ``worst`` are
+        the mean and largest compression / rho0 of the returned velocities.
     """
     alpha, density = ops.alpha, ops.density
     rho0 = ops.rest_density
@@ -496,32 +484,27 @@ def _projected_solve(ops, velocities, kappa, floor, dt, tolerance, min_iteration
     inv_dt2 = 1.0 / (dt * dt)
     iterations = 0
     while True:
-        residual = density + dt * ops.density_rate(velocities) - floor
-        compression = np.maximum(residual, 0.0)
-        violation = compression if monotone else compression + np.where(kappa > 0.0, np.maximum(-residual, 0.0), 0.0)
-        error = float(np.mean(violation)) / rho0
+        compression = np.maximum(density + dt * ops.density_rate(velocities) - floor, 0.0)
+        error = float(np.mean(compression)) / rho0
         converged = error <= tolerance
         if (iterations >= min_iterations and converged) or iterations >= max_iterations:
             break
-        if monotone:
-            updated = kappa + alpha * compression * inv_dt2
-        else:
-            updated = np.maximum(kappa + OMEGA * alpha * residual * inv_dt2, 0.0)
-        velocities = velocities - dt * ops.pressure_term((updated - kappa) / density)
-        kappa = updated
+        change = alpha * compression * inv_dt2
+        velocities = velocities - dt * ops.pressure_term(change / density)
+        kappa = kappa + change
         iterations += 1
     return velocities, kappa, iterations, error, float(np.max(compression)) / rho0, converged
 
 
-def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, pairs=None):
+def dfsph_substep(positions, velocities, kappa, drift, boundary, params, dt, pairs=None):
     """One substep of length dt (see the module docstring for the equations).
 
     Args:
         positions, velocities: (N, 3) float64 at time t (m, m/s).
         kappa: (N,) float64 warm start of the velocity solve (m^2/s^2), already scaled
             for this step (``warm_start_kappa``).
-        kappa_v: (N,) float64 the previous substep's drift coefficient; the drift solve
-            starts from ``DRIFT_WARM_START`` of it.
+        drift: (N,) float64 the previous substep's drift coefficient (m^2/s^2); the drift
+            solve starts from ``DRIFT_WARM_START`` of it.
         boundary: object with ``positions`` (B, 3), ``velocities`` (B, 3) and
             ``volumes`` (B,) (e.g. ``engine.boundary.BoundaryParticles``), or None.
         params: SphParams.
@@ -556,14 +539,13 @@ def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, p
         # Warm-start only particles that are still being compressed: a push carried over to a
         # particle whose impact is over would hand it energy nothing takes back.
         warm = np.where(ops.density + dt * ops.density_rate(velocities) > floor, warm, 0.0)
-    velocities, kappa, velocity_iterations, _, _, velocity_ok = _projected_solve(
-        ops, velocities, warm, floor, dt, params.density_tolerance, 2, params.max_iterations, monotone=True)
+    velocities, kappa, velocity_iterations, _, _, velocity_ok = _jacobi_solve(
+        ops, velocities, warm, floor, dt, params.density_tolerance, 2, params.max_iterations)
     # 2. Drift solve: a position shift (pseudo-velocity) that brings compressed particles back to
     #    rest density; it moves particles but is not kept in their velocity.
-    corrected, drift, drift_iterations, error, worst, drift_ok = _projected_solve(
-        ops, velocities, DRIFT_WARM_START * np.asarray(kappa_v, np.float64), rho0, dt, params.density_tolerance, 1,
-        min(params.max_iterations, DRIFT_ITERATIONS),
-        monotone=True)
+    corrected, drift, drift_iterations, error, worst, drift_ok = _jacobi_solve(
+        ops, velocities, DRIFT_WARM_START * np.asarray(drift, np.float64), rho0, dt, params.density_tolerance, 1,
+        min(params.max_iterations, DRIFT_ITERATIONS))
     shift = dt * (corrected - velocities)
     cap = DRIFT_SHIFT_CAP * params.particle_spacing
     length = np.sqrt(np.einsum("ij,ij->i", shift, shift))
@@ -571,9 +553,9 @@ def dfsph_substep(positions, velocities, kappa, kappa_v, boundary, params, dt, p
     positions = positions + dt * velocities + shift
     t_solve = time.perf_counter()
     return SubstepResult(
-        positions=positions, velocities=velocities, kappa=kappa, kappa_v=drift, density=ops.density,
+        positions=positions, velocities=velocities, kappa=kappa, drift=drift, density=ops.density,
         pressure=kappa * ops.density, pressure_iterations=velocity_iterations,
-        divergence_iterations=drift_iterations, density_error=error, max_density_error=worst,
+        drift_iterations=drift_iterations, density_error=error, max_density_error=worst,
         converged=velocity_ok, drift_converged=drift_ok,
         seconds={"neighbours": t_pairs - clock, "density": t_density - t_pairs, "solvers": t_solve - t_density})
 
@@ -595,9 +577,9 @@ def settle_positions(positions, boundary, params, passes=SETTLE_PASSES):
         ops = PairOperators(len(positions), fluid_pairs, boundary_pairs, boundary, params)
         if float(np.max(ops.density)) <= params.rest_density * (1.0 + params.density_tolerance):
             break
-        shift, _, _, _, _, _ = _projected_solve(ops, np.zeros_like(positions), np.zeros(len(positions)),
-                                                params.rest_density, dt, params.density_tolerance, 1,
-                                                params.max_iterations)
+        shift, _, _, _, _, _ = _jacobi_solve(ops, np.zeros_like(positions), np.zeros(len(positions)),
+                                             params.rest_density, dt, params.density_tolerance, 1,
+                                             params.max_iterations)
         positions = positions + dt * shift
     return positions
 
@@ -619,7 +601,8 @@ class StepStats:
     Attributes:
         substeps: substeps taken.
         iterations: pressure + divergence iterations summed over the substeps.
-        pressure_iterations, divergence_iterations: the two parts of ``iterations``.
+        pressure_iterations, drift_iterations: the two parts of ``iterations`` (velocity and
+            drift solves).
         max_density_error: largest per-substep mean predicted compression / rho0.
         max_particle_density_error: largest per-particle predicted compression / rho0.
         min_time_step, max_time_step: smallest and largest substep in seconds.
@@ -634,7 +617,7 @@ class StepStats:
     substeps: int = 0
     iterations: int = 0
     pressure_iterations: int = 0
-    divergence_iterations: int = 0
+    drift_iterations: int = 0
     max_density_error: float = 0.0
     max_particle_density_error: float = 0.0
     min_time_step: float = 0.0
@@ -650,7 +633,7 @@ class StepStats:
 def _with_solver_arrays(state):
     arrays = dict(state.particle_arrays)
     changed = False
-    for name in (KAPPA, KAPPA_V, PRESSURE):
+    for name in (KAPPA, DRIFT, PRESSURE):
         if name not in arrays or arrays[name].shape != (state.count,):
             arrays[name] = np.zeros(state.count)
             changed = True
@@ -747,7 +730,7 @@ class SphSolver:
         if t_end < t:
             raise SolverError(f"SPH solver: asked to advance back in time from t = {t} s to {t_end} s; "
                               "frames must be baked in increasing order")
-        totals = dict(substeps=0, pressure_iterations=0, divergence_iterations=0, max_density_error=0.0,
+        totals = dict(substeps=0, pressure_iterations=0, drift_iterations=0, max_density_error=0.0,
                       max_particle_density_error=0.0, neighbour_seconds=0.0, density_seconds=0.0,
                       solver_seconds=0.0, retried_substeps=0, unconverged_substeps=0)
         steps = []
@@ -762,9 +745,9 @@ class SphSolver:
             for halvings in range(MAX_STEP_HALVINGS + 1):
                 kappa = warm_start_kappa(state.particle_arrays[KAPPA], state.scalars.get(LAST_STEP, 0.0), dt)
                 result = dfsph_substep(state.positions, state.velocities, kappa,
-                                       state.particle_arrays[KAPPA_V], boundary, params, dt, self._pairs)
+                                       state.particle_arrays[DRIFT], boundary, params, dt, self._pairs)
                 totals["pressure_iterations"] += result.pressure_iterations
-                totals["divergence_iterations"] += result.divergence_iterations
+                totals["drift_iterations"] += result.drift_iterations
                 if result.converged or halvings == MAX_STEP_HALVINGS or 0.5 * dt < params.min_time_step:
                     break
                 totals["retried_substeps"] += 1
@@ -775,7 +758,7 @@ class SphSolver:
             before = state.positions
             arrays = dict(state.particle_arrays)
             arrays[KAPPA] = result.kappa
-            arrays[KAPPA_V] = result.kappa_v
+            arrays[DRIFT] = result.drift
             arrays[PRESSURE] = result.pressure
             state = dataclasses.replace(state, time=t_next, positions=result.positions,
                                         velocities=result.velocities, particle_arrays=arrays,
@@ -792,7 +775,7 @@ class SphSolver:
             totals["solver_seconds"] += result.seconds["solvers"]
             steps.append(dt)
             t = t_next
-        stats = StepStats(iterations=totals["pressure_iterations"] + totals["divergence_iterations"],
+        stats = StepStats(iterations=totals["pressure_iterations"] + totals["drift_iterations"],
                           min_time_step=min(steps) if steps else 0.0, max_time_step=max(steps) if steps else 0.0,
                           neighbour_rebuilds=self._pairs.rebuilds - rebuilds_before, **totals)
         return state, stats

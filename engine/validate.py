@@ -22,7 +22,7 @@ import numpy as np
 
 from .boundary import make_boundary, sample_box_walls
 from .errors import SplashdraftError
-from .sph import KAPPA, KAPPA_V, PRESSURE, SphSolver, sph_density
+from .sph import SphSolver, sph_density
 from .state import State
 
 #: Distance, in particle spacings, from a wall-sample plane to the first fluid layer.

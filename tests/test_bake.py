@@ -299,7 +299,7 @@ def test_progress_bar_redraws_in_place_on_a_terminal_and_prints_lines_otherwise(
 
 def test_real_sph_resume_is_bit_identical(tmp_path):
     """DFSPH (engine.sph) on a tiny scene: a bake stopped after frame 3 and resumed from its checkpoint
-    writes frames whose sha256 equal an uninterrupted bake's, so no warm-start data (kappa, kappa_v,
+    writes frames whose sha256 equal an uninterrupted bake's, so no warm-start data (kappa, drift,
     emitter counters) lives outside State (the Solver protocol in DEVELOPERS.md)."""
     scene = write_tiny_scene(tmp_path, frame_end=7, block=((0.0, 0.0, 0.0), (0.15, 0.15, 0.2)))
     full = bake(scene, "sph", tmp_path / "full", use_signals=False)
