@@ -463,10 +463,11 @@ def test_zero_gravity_with_the_learned_solver_is_a_scene_error(tmp_path, capsys)
 
 
 def test_budget_error_is_named_for_stream_layers(tmp_path):
-    """A stream whose layer count exceeds any budget is refused by the closed-form bound."""
+    """A stream whose layer count exceeds any budget is refused by the closed-form bound (400 m/s: a
+    faster stream is refused at load, faster than the solver can follow at this spacing)."""
     from engine.estimate import check_work
 
-    scene = load_scene(_scene_with(tmp_path, _stream(speed=1000.0, frame_end=20000)))
+    scene = load_scene(_scene_with(tmp_path, _stream(speed=400.0, frame_end=20000)))
     with pytest.raises(BudgetError, match=r"particles at spacing 0.025 m exceed what a budget"):
         check_work(scene)
 
@@ -495,3 +496,26 @@ def test_zero_particle_budget_on_the_command_line_is_a_usage_error(tmp_path, cap
     scene = write_tiny_scene(tmp_path)
     code, _, err = run_cli(["estimate", scene, "--max-particles", 0], capsys)
     assert code == 64 and "argument --max-particles: 0 is outside 1 .. 100,000,000" in err
+
+
+def test_an_emitter_faster_than_the_solver_can_follow_is_refused_at_load(tmp_path):
+    """A stream at 1000 m/s at 3 cm spacing needs CFL substeps near solver.min_time_step (0.4 * 0.03 /
+    1e-5 = 1200 m/s is where the step reaches it): the fuzz run found such a bake grinding for more
+    than 5 s before a runaway error. The loader refuses it by name, with the limit and the fix."""
+    import json as _json
+
+    from engine.errors import SceneError
+    from engine.scene import load_scene
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tools"))
+    import fuzz_inputs
+
+    fuzz_inputs.write_base(tmp_path)
+    data = _json.loads((tmp_path / "scene.json").read_text())
+    data["emitters"][1]["speed"] = 1000.0
+    (tmp_path / "scene.json").write_text(_json.dumps(data))
+    with pytest.raises(SceneError, match=r'emitter "spout" starts liquid at 1000 m/s, faster than the 600 m/s'):
+        load_scene(tmp_path / "scene.json")
+    data["emitters"][1]["speed"] = 100.0
+    (tmp_path / "scene.json").write_text(_json.dumps(data))
+    assert load_scene(tmp_path / "scene.json").emitters[1].speed == 100.0
