@@ -315,8 +315,10 @@ class World:
         ``state.scalars``) are emitted too, so no layer is ever lost. A new
         particle is not created where the space is taken (``free_space``): within
         ``EMIT_CLEARANCE`` spacings of a liquid particle, within ``CONTACT_MARGIN``
-        spacings of a wall or collider sample, inside a closed collider, or outside
-        the bounds. Such particles are counted in ``scalars["emit.<name>.blocked"]``.
+        spacings of a wall or collider sample, where liquid and boundary already fill
+        more than ``EMIT_FILLED_FRACTION`` of rest density, inside a closed collider,
+        or outside the bounds. Such particles are counted in
+        ``scalars["emit.<name>.blocked"]``.
         """
         if t1 < t0:
             raise SceneError(f"emit: t1 = {t1} is before t0 = {t0}; call emit with an increasing interval")
