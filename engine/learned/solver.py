@@ -12,7 +12,8 @@ Each learned step (dt within the model's trained range, see below):
    iterations of a position-based density constraint on the step's own
    neighbour tables (found at the start of the step, distances recomputed);
    velocities take the same correction over dt, so x_{t+1} = x_t + dt v_{t+1}
-   still holds as in training;
+   still holds as in training; then, for a viscosity above the model's trained
+   range, the difference as XSPH velocity smoothing (``viscosity``);
 6. the hard constraints (``World.enforce_bounds``: open faces remove particles,
    walls clamp, colliders push out), then stream emission over [t, t + dt)
    (``World.emit``), exactly as the reference solver does.
@@ -50,6 +51,7 @@ from ..errors import ModelError, SolverError
 from . import features
 from .contract import load_contract
 from .relax import relax_density
+from .viscosity import APPLICATIONS, pass_coefficient, reference_substeps, smooth_velocities
 from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
 
 PREVIOUS_VELOCITY = "learned_previous_velocity"
@@ -149,18 +151,26 @@ class LearnedSolver:
     def range_warnings(self, world):
         """Named warnings for inputs outside what the model was trained on (empty when none).
 
-        The model does not take the viscosity as an input: it moves like the reference bakes it
+        The network does not take the viscosity as an input: it moves like the reference bakes it
         was trained on, whose viscosities the contract records (``training.viscosity_range``;
-        models without the record were trained at the scene default 0.02). Frame intervals
-        shorter than the trained step range are taken as one short step (``step_plan``).
+        models without the record were trained at the scene default 0.02). A viscosity above
+        that range is added beside the network as the reference's own XSPH smoothing
+        (``viscosity``); one below it cannot be taken out. Frame intervals shorter than the
+        trained step range are taken as one short step (``step_plan``).
         """
         warnings = []
         trained = self.contract.get("training", {}).get("viscosity_range") or [0.02, 0.02]
         viscosity = float(world.scene.fluid.viscosity)
-        if not (trained[0] - 1e-12 <= viscosity <= trained[1] + 1e-12):
+        name = self.contract["name"]
+        if viscosity > trained[1] + 1e-12:
             warnings.append(
-                f"viscosity-outside-training: fluid.viscosity {viscosity:g} is outside the {trained[0]:g}-{trained[1]:g} "
-                f"the preview model {self.contract['name']} was trained on; the preview moves as at that viscosity "
+                f"viscosity-outside-training: fluid.viscosity {viscosity:g} is above the {trained[0]:g}-{trained[1]:g} "
+                f"the preview model {name} was trained on; the preview adds the difference as velocity smoothing "
+                "beside the network, an approximation (bake with --solver sph for the final look)")
+        elif viscosity < trained[0] - 1e-12:
+            warnings.append(
+                f"viscosity-outside-training: fluid.viscosity {viscosity:g} is below the {trained[0]:g}-{trained[1]:g} "
+                f"the preview model {name} was trained on; the preview moves as at {trained[0]:g} "
                 "(bake with --solver sph to see the setting's effect)")
         units = features.Units(world.particle_spacing, world.gravity)
         interval = 1.0 / world.fps
@@ -239,6 +249,10 @@ class LearnedSolver:
                     velocities = velocities + (relaxed - positions) / (t_next - t)
                     positions = relaxed
                     timings["relax"] += time.perf_counter() - started
+                extra = self.viscosity_above_training(world)
+                if extra > 0.0:
+                    velocities = self.smooth(positions, velocities, graph, world, world.boundary_at(state.time),
+                                             t_next - t, extra)
                 del graph
                 if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
                     bad = int(np.flatnonzero(~np.isfinite(positions).all(axis=1) | ~np.isfinite(velocities).all(axis=1))[0])
@@ -276,6 +290,27 @@ class LearnedSolver:
     def step_plan(self, interval, units):
         """(n, dt): n = ceil(interval / step_max) equal learned steps of dt s (see the module docstring)."""
         return step_plan(interval, self.contract["step_froude"] * units.time)
+
+    def viscosity_above_training(self, world):
+        """How far ``fluid.viscosity`` lies above the highest the model was trained at (0 if not)."""
+        trained = self.contract.get("training", {}).get("viscosity_range") or [0.02, 0.02]
+        return max(0.0, float(world.scene.fluid.viscosity) - float(trained[1]))
+
+    def smooth(self, positions, velocities, graph, world, boundary, step, epsilon):
+        """``velocities`` after the XSPH smoothing of ``epsilon`` over a learned step (``viscosity``),
+        fluid pairs and the step's boundary particles (no-slip, as in the reference)."""
+        solver = world.scene.solver
+        substeps = reference_substeps(velocities, step, world.particle_spacing, solver.cfl_factor,
+                                      solver.max_time_step)
+        passes = min(APPLICATIONS, substeps)
+        d = world.particle_spacing
+        wall = None
+        if len(boundary.positions):
+            wall = (graph.boundary_rows, boundary.positions / d, boundary.volumes / d**3, boundary.velocities,
+                    graph.boundary_index, graph.boundary_mask)
+        return smooth_velocities(positions / d, velocities, graph.neighbour_index,
+                                 graph.neighbour_mask, pass_coefficient(epsilon, substeps), passes,
+                                 support=self.contract["density_support_spacings"], wall=wall)
 
     def relax(self, positions, graph, boundary, units):
         """``positions`` (N, 3) m after ``relax_iterations`` density iterations on ``graph``'s tables.
