@@ -25,25 +25,42 @@ from ..engine.estimate import format_bytes
 CANCEL_GRACE_SECONDS = 120.0
 
 
-def boot_code(extension_root, wheel_site=None):
-    """Python source for ``-c``: put the engine and the bundled wheels on sys.path, run the CLI.
+#: The extension's package name in this process (``bl_ext.<repo>.splashdraft`` inside Blender); the
+#: worker imports the engine under the same name, so the engine has one name wherever Blender runs it.
+EXTENSION_PACKAGE = __package__.rpartition(".")[0]
 
-    Blender calls its Python with ``-I`` (isolated: PYTHONPATH ignored), so the
-    child sets ``sys.path`` itself. The engine is imported as the top-level
-    package ``engine`` (not through the extension package, whose
-    ``__init__`` belongs to Blender).
+_BOOT = """\
+import importlib, importlib.util, sys, types
+sys.path[:0] = {wheel_paths!r}
+name, root = {package!r}, {root!r}
+parts = name.split(".")
+for depth in range(1, len(parts)):
+    parent = types.ModuleType(".".join(parts[:depth]))
+    parent.__path__ = []
+    sys.modules.setdefault(parent.__name__, parent)
+spec = importlib.util.spec_from_file_location(name, root + "/__init__.py", submodule_search_locations=[root])
+sys.modules[name] = importlib.util.module_from_spec(spec)
+spec.loader.exec_module(sys.modules[name])
+sys.exit(importlib.import_module(name + ".engine.cli").main(sys.argv[1:]))
+"""
+
+
+def boot_code(extension_root, wheel_site=None, package=EXTENSION_PACKAGE):
+    """Python source for ``-c``: import the extension under its own package name and run the engine's CLI.
+
+    Blender calls its Python with ``-I`` (isolated: PYTHONPATH and user site ignored), so the
+    child cannot find the extension or its bundled wheels by itself. This is the project's one
+    import-path bootstrap: the wheel folder goes on ``sys.path``; the extension folder is
+    imported as ``package`` (its ``__init__`` imports nothing), so the worker runs
+    ``<package>.engine``, the same module names the add-on uses inside Blender.
 
     Args:
         extension_root: folder that holds ``engine/`` (the extension root).
         wheel_site: Blender's extension site-packages with scipy/onnxruntime, or None.
+        package: the extension's package name (default: this add-on's own).
     """
-    paths = [str(extension_root)]
-    if wheel_site:
-        paths.append(str(wheel_site))
-    return (
-        "import sys; sys.path[:0] = %r; "
-        "from engine.cli import main; sys.exit(main(sys.argv[1:]))" % (paths,)
-    )
+    wheel_paths = [str(wheel_site)] if wheel_site else []
+    return _BOOT.format(wheel_paths=wheel_paths, package=package, root=str(extension_root))
 
 
 def bake_command(python, python_args, extension_root, scene_path, out_dir, solver="sph",

@@ -1,6 +1,6 @@
 """Benchmark of the Blender add-on: frame swap of the points object, install + enable time.
 
-Usage:  .venv/bin/python bench/bench_addon.py [--points 100000] [--wheels]
+Usage:  .venv/bin/python -m bench.bench_addon [--points 100000] [--wheels]
 
 Targets (Blender 5.0, bpy module): showing a new frame of 100k points on the
 liquid object <= 20 ms; the extension installs from its zip into a clean user
@@ -19,10 +19,8 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT / "tests"))
-sys.path.insert(0, str(ROOT / "tools"))
 
-import blender_env  # noqa: E402
+from tools import blender_env
 
 HERE = Path(__file__).resolve()
 TARGETS = {"swap_ms": 20.0, "install_enable_s": 2.0}
@@ -110,7 +108,7 @@ def main(argv=None):
     parser.add_argument("--wheels", action="store_true",
                         help="Also time the linux-x64 zip with bundled wheels (built now; wheels come from wheels/).")
     args = parser.parse_args(argv)
-    import build_extension
+    from tools import build_extension
 
     results = {"machine": platform.platform(), "cpus": os.cpu_count(), "targets": TARGETS}
     swap, _ = blender_env.run_child(HERE, "child_swap", args.points, args.repeats)

@@ -1,6 +1,6 @@
 """Benchmark of the closed-form estimate (engine.estimate.quick_estimate) across particle spacings.
 
-Usage:  .venv/bin/python bench/bench_estimate.py
+Usage:  .venv/bin/python -m bench.bench_estimate
 
 Target: the estimate answers in <= 0.2 s at any spacing (nothing is built; fine spacings over the
 budget are refused from the closed form). Shot: the demo (water block against the walls, so the
@@ -14,7 +14,6 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
 
 from engine.demo import write_demo_scene  # noqa: E402
 from engine.errors import BudgetError  # noqa: E402

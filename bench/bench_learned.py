@@ -1,6 +1,6 @@
 """Speed and memory of the learned preview against the reference solver (a benchmark, not a test).
 
-    python bench/bench_learned.py [--sizes 20000 50000 100000] [--steps 4] [--shot-seconds 0.5]
+    python -m bench.bench_learned [--sizes 20000 50000 100000] [--steps 4] [--shot-seconds 0.5]
                                   [--relax-iterations N] [--repeats R]
 
 1. Same shot, equal spacing: wall seconds per simulated second of the learned preview and of
@@ -26,7 +26,6 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
 
 
 def tank_scene(particles, spacing=0.025, fps=24, frame_end=13, obstacle=True):
@@ -139,12 +138,12 @@ def main(argv=None):
         return 0
     rows = []
     for size in args.sizes:
-        command = [sys.executable, __file__, "--one", str(size), "--steps", str(args.steps), "--repeats", str(args.repeats)]
+        command = [sys.executable, "-m", "bench.bench_learned", "--one", str(size), "--steps", str(args.steps), "--repeats", str(args.repeats)]
         if args.model:
             command += ["--model", args.model]
         if args.relax_iterations is not None:
             command += ["--relax-iterations", str(args.relax_iterations)]
-        done = subprocess.run(command, capture_output=True, text=True)
+        done = subprocess.run(command, capture_output=True, text=True, cwd=ROOT)
         if done.returncode != 0:
             rows.append({"particles": size, "error": done.stderr.strip().splitlines()[-1:]})
             continue

@@ -24,9 +24,9 @@ Two block shapes (``--shape``):
 The ``us/p-it`` column (solver time per particle and per iteration) separates the
 iteration count from the cost of one iteration in either shape.
 
-    nice .venv/bin/python bench/bench_reference.py                 # cubes, 10k 20k 50k 100k
-    nice .venv/bin/python bench/bench_reference.py --shape slab --sizes 10000 100000
-    nice .venv/bin/python bench/bench_reference.py --sizes 10000 20000 --substeps 10
+    nice .venv/bin/python -m bench.bench_reference                 # cubes, 10k 20k 50k 100k
+    nice .venv/bin/python -m bench.bench_reference --shape slab --sizes 10000 100000
+    nice .venv/bin/python -m bench.bench_reference --sizes 10000 20000 --substeps 10
 
 Prints a table and writes JSON (default bench/results/reference.json).
 """
@@ -45,8 +45,6 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
-if str(ROOT) not in sys.path:
-    sys.path.insert(0, str(ROOT))
 
 from engine.boundary import make_boundary, sample_box_walls  # noqa: E402
 from engine.sph import SphSolver  # noqa: E402

@@ -1,6 +1,6 @@
 """Benchmark of the liquid surface (the add-on's Geometry Nodes surface) at splash-frame sizes.
 
-Usage:  .venv/bin/python bench/bench_surface.py [--points 100000] [--repeats 5]
+Usage:  .venv/bin/python -m bench.bench_surface [--points 100000] [--repeats 5]
 
 Target (Blender 5.0, bpy module, 2 cores): building the joined surface of one
 100k-particle frame <= 0.3 s. The frame is made up here: a resting pool (a
@@ -20,9 +20,8 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT / "tests"))
 
-import blender_env  # noqa: E402
+from tools import blender_env
 
 HERE = Path(__file__).resolve()
 TARGET_SECONDS = 0.3

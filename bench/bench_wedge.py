@@ -1,6 +1,6 @@
 """Wedge wall time on Dask against the same wedge baked serially (a benchmark, not a test).
 
-    python bench/bench_wedge.py [--spacing 0.05] [--frames 12] [--workers 2] [--values 0.01,0.02,0.03,0.04]
+    python -m bench.bench_wedge [--spacing 0.05] [--frames 12] [--workers 2] [--values 0.01,0.02,0.03,0.04]
 
 The demo shot (``engine.demo``, small preset by default) with ``fluid.viscosity`` varied over
 four values, baked three ways in one run, back to back:
@@ -25,7 +25,6 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
 
 
 def frames_of(wedge):

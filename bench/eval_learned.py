@@ -1,6 +1,6 @@
 """Evaluate the shipped learned preview on the held-out shots and the demo shot (not a timed test).
 
-    python bench/eval_learned.py [--heldout data/heldout] [--model models/preview-gn4.onnx]
+    python -m bench.eval_learned [--heldout data/heldout] [--model models/preview-gn4.onnx]
                                  [--seconds 10] [--fidelity-seconds 2] [--demo-preset small|full|none]
                                  [--relax-iterations N] [--shots ring stairs ...]
 
@@ -28,7 +28,6 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
 
 from engine.bake import bake  # noqa: E402
 from engine.cache import open_cache  # noqa: E402

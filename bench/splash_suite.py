@@ -18,8 +18,8 @@ frames) and prints, per shot:
 - ``it/sub``: pressure + divergence iterations per substep; ``unconv``: substeps whose
   pressure solve stopped at the iteration cap; ``wall s``: wall time.
 
-    nice .venv/bin/python bench/splash_suite.py                    # every shot, 2.5 cm
-    nice .venv/bin/python bench/splash_suite.py --shots pour_steps --seconds 0.6
+    nice .venv/bin/python -m bench.splash_suite                    # every shot, 2.5 cm
+    nice .venv/bin/python -m bench.splash_suite --shots pour_steps --seconds 0.6
 
 Prints a table and writes JSON (default bench/results/splash_suite.json). Not a test:
 the thresholds are the issue's targets, reported, not asserted.
@@ -35,15 +35,12 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
-for path in (ROOT, ROOT / "bench"):
-    if str(path) not in sys.path:
-        sys.path.insert(0, str(path))
 
 from engine import energy  # noqa: E402
 from engine.scene import scene_from_dict  # noqa: E402
 from engine.sph import SphSolver  # noqa: E402
 from engine.world import build_world  # noqa: E402
-from splash_shots import SHOTS, SPACING, shot  # noqa: E402
+from bench.splash_shots import SHOTS, SPACING, shot  # noqa: E402
 
 
 def thin_crossings(world, before, after, ids_before, ids_after, t):

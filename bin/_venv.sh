@@ -1,5 +1,6 @@
-# Shared by bin/demo and bin/test: make a virtual environment at the repository root if missing
-# and install a requirements file into it.
+# Shared by bin/demo and bin/test: make a virtual environment at the repository root if missing,
+# install a requirements file into it (the pinned versions) and this checkout's engine (pyproject.toml,
+# editable, no further dependencies), so `import engine` and `python -m engine` work from any folder.
 # Usage: source bin/_venv.sh; ensure_venv requirements-test.txt [VENV_DIR (default .venv)]
 set -euo pipefail
 ROOT="$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)"
@@ -14,5 +15,11 @@ ensure_venv() {
     if [ ! -f "$stamp" ] || [ "$ROOT/$1" -nt "$stamp" ]; then
         "$venv/bin/python" -m pip install --quiet --disable-pip-version-check -r "$ROOT/$1"
         touch "$stamp"
+    fi
+    local engine_stamp="$venv/.installed-engine"
+    if [ ! -f "$engine_stamp" ] || [ "$ROOT/pyproject.toml" -nt "$engine_stamp" ] \
+        || [ "$(cat "$engine_stamp")" != "$ROOT" ]; then
+        "$venv/bin/python" -m pip install --quiet --disable-pip-version-check --no-deps -e "$ROOT"
+        echo "$ROOT" > "$engine_stamp"
     fi
 }

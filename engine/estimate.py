@@ -229,7 +229,8 @@ def learned_steps_per_frame(scene):
     Read from the model's contract (no onnxruntime session); 1 if the contract is missing or
     unreadable (the bake itself then reports the model error).
     """
-    from .learned.solver import default_model_path, step_plan
+    from .learned.contract import default_model_path
+    from .learned.solver import step_plan
 
     try:
         contract = json.loads(default_model_path().with_suffix(".json").read_text())

@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import blender_env
+from tools import blender_env
 
 pytestmark = [pytest.mark.blender,
               pytest.mark.skipif(not blender_env.has_bpy(), reason="the bpy module is not installed")]
@@ -35,8 +35,7 @@ HERE = Path(__file__).resolve()
 
 @pytest.fixture(scope="module")
 def quick_zip(tmp_path_factory):
-    sys.path.insert(0, str(ROOT / "tools"))
-    import build_extension
+    from tools import build_extension
 
     out = tmp_path_factory.mktemp("dist")
     assert build_extension.main(["--no-wheels", "--out", str(out)]) == 0
@@ -68,8 +67,7 @@ def test_linux_wheel_build_bundles_a_scipy_that_runs_with_blenders_numpy(tmp_pat
     force distances) in an isolated child. Skipped only when the wheels can
     be neither found in wheels/ nor downloaded.
     """
-    sys.path.insert(0, str(ROOT / "tools"))
-    import build_extension
+    from tools import build_extension
 
     try:
         zips = build_extension.build(["linux-x64"], out_dir=tmp_path / "dist", stage_dir=tmp_path / "stage")
@@ -766,8 +764,7 @@ def child_surface(tmp):
     import bpy
 
     tmp = Path(tmp)
-    sys.path.insert(0, str(ROOT / "tools"))
-    import blender_demo
+    from tools import blender_demo
 
     scene = blender_env.reset_scene()
     module = blender_env.enable_from_source()

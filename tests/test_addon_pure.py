@@ -14,7 +14,7 @@ import time
 import numpy as np
 import pytest
 
-import blender_env
+from tools import blender_env
 
 PKG = blender_env.load_package()
 from splashdraft_src.addon import jobs, motion, versions  # noqa: E402  (needs load_package first)

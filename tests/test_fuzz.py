@@ -13,7 +13,6 @@ The full run of 5,000+ cases is the tool's own command (see its docstring).
 
 import io
 import json
-import sys
 import zipfile
 from pathlib import Path
 
@@ -29,9 +28,7 @@ from engine.mesh_io import read_mesh
 from engine.scene import load_scene
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT / "tools"))
-
-import fuzz_inputs  # noqa: E402
+from tools import fuzz_inputs
 
 FAST = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture,
                                                                         HealthCheck.too_slow])  # fmt: skip

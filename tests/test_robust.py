@@ -507,8 +507,7 @@ def test_an_emitter_faster_than_the_solver_can_follow_is_refused_at_load(tmp_pat
     from engine.errors import SceneError
     from engine.scene import load_scene
 
-    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tools"))
-    import fuzz_inputs
+    from tools import fuzz_inputs
 
     fuzz_inputs.write_base(tmp_path)
     data = _json.loads((tmp_path / "scene.json").read_text())

@@ -15,7 +15,6 @@ External checks:
 import dataclasses
 import json
 import math
-import sys
 from pathlib import Path
 
 import numpy as np
@@ -28,8 +27,7 @@ from engine.scene import scene_from_dict
 from engine.world import build_world
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT / "bench"))
-from splash_shots import shot  # noqa: E402
+from bench.splash_shots import shot
 
 
 def _mesh(vertices_triangles):
@@ -177,7 +175,7 @@ def test_no_particle_crosses_a_thin_wall_or_a_deforming_sheet(name, monkeypatch)
     in bench/splash_suite.py). Before the constraints knew where a particle came from, the suite
     counted 10 (glass) and 53 (sheet) crossings."""
     from engine.world import World
-    from splash_suite import _segment_hits
+    from bench.splash_suite import _segment_hits
 
     scene = scene_from_dict(shot(name, spacing=0.025, seconds=0.5), allow_inline=True)
     world = build_world(scene)

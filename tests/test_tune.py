@@ -37,7 +37,7 @@ def reference_bake(tmp_path_factory):
 def test_weights_read_back_from_the_shipped_onnx_reproduce_it():
     torch = pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
     from engine.learned.runtime import random_inputs
-    from engine.learned.solver import default_model_path
+    from engine.learned.contract import default_model_path
     from training.tune import check_against_onnx, weights_from_onnx
 
     contract, onnx_path = load_contract(default_model_path())

@@ -2,10 +2,10 @@
 
 Usage (the bpy module is in the venv, so this runs with the venv's Python):
 
-    .venv/bin/python tools/blender_demo.py                  # small preset, out/blender_demo/
-    .venv/bin/python tools/blender_demo.py --preset full    # 25k particles, 60 frames (long)
-    .venv/bin/python tools/blender_demo.py --solver learned # the learned preview instead
-    .venv/bin/python tools/blender_demo.py --surface        # render the joined liquid surface
+    .venv/bin/python -m tools.blender_demo                  # small preset, out/blender_demo/
+    .venv/bin/python -m tools.blender_demo --preset full    # 25k particles, 60 frames (long)
+    .venv/bin/python -m tools.blender_demo --solver learned # the learned preview instead
+    .venv/bin/python -m tools.blender_demo --surface        # render the joined liquid surface
 
 Steps: enable the add-on from this working tree in an isolated Blender user
 folder; build the demo shot of ``engine.demo`` (trough = shot bounds with an
@@ -28,7 +28,6 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT / "tests"))
 
 
 def parse_args(argv=None):
@@ -207,7 +206,7 @@ def main(argv=None):
     import bpy
     import numpy as np
 
-    import blender_env
+    from tools import blender_env
 
     bpy.ops.wm.read_factory_settings(use_empty=True)  # first: it also resets the add-on list
     module = blender_env.enable_from_source()

@@ -2,9 +2,9 @@
 
 Usage (from the repository root, with the project's venv):
 
-    .venv/bin/python tools/build_extension.py                 # linux-x64, windows-x64, macos-arm64 zips
-    .venv/bin/python tools/build_extension.py --platform linux-x64
-    .venv/bin/python tools/build_extension.py --no-wheels     # one quick zip without wheels (tests)
+    .venv/bin/python -m tools.build_extension                 # linux-x64, windows-x64, macos-arm64 zips
+    .venv/bin/python -m tools.build_extension --platform linux-x64
+    .venv/bin/python -m tools.build_extension --no-wheels     # one quick zip without wheels (tests)
 
 What it does:
 1. Downloads (``pip download --only-binary=:all: --python-version 3.11

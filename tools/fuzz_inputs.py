@@ -2,8 +2,8 @@
 
 Usage (from the repository root, with the project's venv):
 
-    .venv/bin/python tools/fuzz_inputs.py --cases 5000 --seed 1 --json out/fuzz.json
-    .venv/bin/python tools/fuzz_inputs.py --cases 200 --subprocess 20    # a quick look
+    .venv/bin/python -m tools.fuzz_inputs --cases 5000 --seed 1 --json out/fuzz.json
+    .venv/bin/python -m tools.fuzz_inputs --cases 200 --subprocess 20    # a quick look
 
 Every case is a folder holding a small valid shot (a fill block, a disc stream, a rigid collider
 with an npz transform, a PLY collider) and, for the cache families, a finished bake of it; one
@@ -49,7 +49,6 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
 
 from engine.bake import bake  # noqa: E402
 from engine.cache import checkpoint_bytes, open_cache, read_checkpoint, verify_frames  # noqa: E402

@@ -47,7 +47,7 @@ import numpy as np
 from engine.cache import open_cache, write_atomic
 from engine.errors import ModelError, SplashdraftError, UsageError
 from engine.learned import contract as contract_module
-from engine.learned.solver import default_model_path
+from engine.learned.contract import default_model_path
 
 from . import dataset
 

@@ -7,6 +7,7 @@
 - ``solver``: ``LearnedSolver`` (Solver protocol, name "learned").
 """
 
-from .solver import DEFAULT_MODEL_NAME, LearnedSolver, default_model_path
+from .contract import DEFAULT_MODEL_NAME, default_model_path
+from .solver import LearnedSolver
 
 __all__ = ["LearnedSolver", "DEFAULT_MODEL_NAME", "default_model_path"]

@@ -21,6 +21,7 @@ the fix.
 """
 
 import hashlib
+import importlib.resources
 import json
 from pathlib import Path
 
@@ -29,6 +30,12 @@ import numpy as np
 from ..errors import ModelError
 from ..inputs import finite_number, read_json, safe_name, whole_number
 from . import features
+
+#: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
+DEFAULT_MODEL_NAME = "preview-gn4"
+
+#: The folder above engine/; in a checkout or the Blender extension it holds blender_manifest.toml and models/.
+_SOURCE_ROOT = Path(__file__).resolve().parents[2]
 
 CONTRACT_FORMAT = "splashdraft-model-contract"
 CONTRACT_VERSION = 1
@@ -238,3 +245,27 @@ def find_model(path):
     if not path.exists() and not contract_path_for(path).exists():
         raise ModelError(f"--model {path}: no such file or folder; check the path")
     return load_contract(path)[1]
+
+
+def shipped_models_dir():
+    """The folder of the shipped models.
+
+    In a checkout or the Blender extension it is ``models/`` beside ``engine/`` (so a working copy
+    always pairs with its own models); in an installed engine it is the package data
+    ``splashdraft_models`` (pyproject.toml).
+
+    Returns:
+        Path of the folder (it may be missing when the models were not shipped).
+    """
+    beside = _SOURCE_ROOT / "models"
+    if (_SOURCE_ROOT / "blender_manifest.toml").is_file():
+        return beside
+    try:
+        return Path(str(importlib.resources.files("splashdraft_models")))
+    except ModuleNotFoundError:
+        return beside
+
+
+def default_model_path():
+    """Path of the shipped model's .onnx file (``shipped_models_dir() / "preview-gn4.onnx"``)."""
+    return shipped_models_dir() / f"{DEFAULT_MODEL_NAME}.onnx"

@@ -49,7 +49,7 @@ from scipy.spatial import cKDTree
 
 from ..errors import ModelError, SolverError
 from . import features
-from .contract import load_contract
+from .contract import default_model_path, load_contract
 from .relax import relax_density
 from .viscosity import APPLICATIONS, pass_coefficient, reference_substeps, smooth_velocities
 from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
@@ -59,10 +59,6 @@ PREVIOUS_VELOCITY = "learned_previous_velocity"
 #: Density relaxation iterations after each learned step (bench/eval_learned.py, model card).
 DEFAULT_RELAX_ITERATIONS = 5
 
-#: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
-DEFAULT_MODEL_NAME = "preview-gn4"
-MODELS_DIR = Path(__file__).resolve().parents[2] / "models"
-
 
 def step_plan(interval, step_max):
     """(n, dt) for a frame interval (s): n = ceil(interval / step_max) equal steps, dt = interval / n; (0, 0) if none."""
@@ -70,10 +66,6 @@ def step_plan(interval, step_max):
         return 0, 0.0
     count = max(1, math.ceil(interval / step_max - 1e-9))
     return count, interval / count
-
-
-def default_model_path():
-    return MODELS_DIR / f"{DEFAULT_MODEL_NAME}.onnx"
 
 
 @dataclass(frozen=True)

@@ -1,8 +1,10 @@
 """Helpers to run add-on checks in real Blender (the bpy module) in a child process.
 
+Used by the add-on tests, the add-on benchmarks and ``tools/blender_demo.py``.
 bpy can be imported only once per process and carries global state, so each
 Blender check runs in a fresh child: ``run_child(test_file, function, ...)``
-starts ``python test_file function args...``; the child isolates Blender's
+runs ``test_file`` as ``__main__`` with ``function args...`` from the repository
+root (so ``engine``, ``tools`` and ``bench`` import as they do there); the child isolates Blender's
 user folder (``BLENDER_USER_RESOURCES``) *before* importing bpy, runs the
 named function and prints its JSON-able result on a marked line, which the
 parent returns as a dict. Assertions then run in pytest, in the parent.
@@ -36,7 +38,9 @@ def run_child(test_file, function, *args, timeout=600, env=None):
     child_env = dict(os.environ)
     child_env.update(env or {})
     child_env["BLENDER_USER_RESOURCES"] = tempfile.mkdtemp(prefix="splashdraft_user_")
-    done = subprocess.run([sys.executable, str(test_file), function, *map(str, args)],
+    # -c puts the working folder (the repository root) first on the child's import path.
+    boot = "import runpy, sys; sys.argv = sys.argv[1:]; runpy.run_path(sys.argv[0], run_name='__main__')"
+    done = subprocess.run([sys.executable, "-c", boot, str(test_file), function, *map(str, args)],
                           capture_output=True, text=True, timeout=timeout, env=child_env, cwd=str(ROOT))
     output = done.stdout + done.stderr
     for line in done.stdout.splitlines():

@@ -1,8 +1,0 @@
-"""Shared test set-up: make the repository root importable so ``import engine`` works."""
-
-import sys
-from pathlib import Path
-
-ROOT = Path(__file__).resolve().parents[1]
-if str(ROOT) not in sys.path:
-    sys.path.insert(0, str(ROOT))
