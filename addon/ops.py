@@ -252,8 +252,9 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
             raise
         self.report({"WARNING"} if warnings else {"INFO"},
                     f"Baking {version_dir.name}: {scene.splashdraft.estimate_text}")
+        model = paths.learned_model() if scene.splashdraft.solver == "learned" else None
         argv = jobs.bake_command(scene_path=scene_path, out_dir=version_dir, solver=scene.splashdraft.solver,
-                                 **_worker_args())
+                                 extra=() if model is None else ("--model", str(model)), **_worker_args())
         _job = jobs.BakeJob(argv, cwd=str(version_dir))
         _job_context.update(scene=scene.name, shot=paths.shot_name(scene), version=version_dir.name,
                             folder=str(version_dir))

@@ -20,9 +20,37 @@ def wheel_site():
     return site if site.is_dir() else None
 
 
+_models_seen = {}  # models folder -> (its modification time, learned_model() for it)
+
+
+def learned_model():
+    """The learned preview's model: the shipped default if it passes its contract check, else the
+    first installed model that does (``engine.solvers.installed_models``); None when none does.
+
+    The contract check reads the model, so the answer is kept until the models folder changes
+    (the panel asks on every redraw).
+    """
+    folder = EXTENSION_ROOT / "models"
+    try:
+        stamp = folder.stat().st_mtime_ns
+    except OSError:
+        return None
+    if _models_seen.get(folder, (None,))[0] != stamp:
+        try:
+            from ..engine.learned.contract import DEFAULT_MODEL_NAME
+            from ..engine.solvers import installed_models
+
+            models = installed_models(folder)
+        except ImportError:  # the engine's learned preview is not shipped in this build
+            models = []
+        chosen = next((path for name, path in models if path.stem == DEFAULT_MODEL_NAME), None)
+        _models_seen[folder] = (stamp, chosen or (models[0][1] if models else None))
+    return _models_seen[folder][1]
+
+
 def is_learned_available():
-    """True when the learned preview can run: engine/learned/ is shipped and a model file exists."""
-    return (EXTENSION_ROOT / "engine" / "learned").is_dir() and any((EXTENSION_ROOT / "models").glob("*.onnx"))
+    """True when the learned preview can run: an installed model passes its contract check."""
+    return learned_model() is not None
 
 
 def shot_name(scene):

@@ -51,11 +51,11 @@ def tank_scene(particles, spacing=0.025, fps=24, frame_end=13, obstacle=True):
     return scene
 
 
-def make_solver(model=None, relax_iterations=None):
-    from engine.learned import LearnedSolver
+def learned_solver(model=None, relax_iterations=None):
+    from engine.solvers import make_solver
 
     options = {} if relax_iterations is None else {"relax_iterations": relax_iterations}
-    return LearnedSolver(model=model, **options)
+    return make_solver("learned", model=model, **options)
 
 
 def throughput(particles, steps, model=None, relax_iterations=None, repeats=0):
@@ -69,7 +69,7 @@ def throughput(particles, steps, model=None, relax_iterations=None, repeats=0):
 
     scene = scene_from_dict(tank_scene(particles, obstacle=False, frame_end=2 + steps))
     world = build_world(scene)
-    solver = make_solver(model, relax_iterations)
+    solver = learned_solver(model, relax_iterations)
     state = solver.start(world)
     units_step = solver.contract["step_froude"] * np.sqrt(scene.particle_spacing / 9.81)
     state, _ = solver.advance(state, world, units_step)  # warm-up at full size
@@ -105,7 +105,7 @@ def same_shot(particles, seconds, model=None, relax_iterations=None):
         out = {}
         for solver in ("learned", "sph"):
             started = time.perf_counter()
-            learned = make_solver(model, relax_iterations) if solver == "learned" else None
+            learned = learned_solver(model, relax_iterations) if solver == "learned" else None
             bake(folder / "scene.json", solver, folder / solver, use_signals=False, solver=learned)
             wall = time.perf_counter() - started
             reader = open_cache(folder / solver)

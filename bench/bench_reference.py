@@ -47,7 +47,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 
 from engine.boundary import make_boundary, sample_box_walls  # noqa: E402
-from engine.sph import SphSolver  # noqa: E402
+from engine.solvers import make_solver  # noqa: E402
 from engine.validate import WALL_GAP, BoxWorld, case_scene, lattice  # noqa: E402
 
 PLY_PROPERTIES = ("x", "y", "z", "vx", "vy", "vz", "id", "density", "pressure")
@@ -102,7 +102,7 @@ def write_ply(path, state, attributes):
 
 def run_size(count, substeps, warmup, shape="cube", layers=20):
     world = block_world(count, shape=shape, layers=layers)
-    solver = SphSolver()
+    solver = make_solver("sph")
     state = solver.start(world)
     dt = world.scene.solver.max_time_step
     t = 0.0

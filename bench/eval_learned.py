@@ -63,7 +63,7 @@ def stability(cache_dir, seconds_total):
 
 
 def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity_seconds, log, relax_iterations=None):
-    from engine.learned import LearnedSolver
+    from engine.solvers import make_solver
 
     scene = load_scene(scene_path)
     last = scene.frame_start + int(round(seconds * scene.fps))
@@ -74,7 +74,7 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
 
         scene = dataclasses.replace(scene, frame_end=last)
     options = {} if relax_iterations is None else {"relax_iterations": relax_iterations}
-    solver = LearnedSolver(model=model, **options) if model or options else None
+    solver = make_solver("learned", model=model, **options) if model or options else None
     started = time.monotonic()
     try:
         result = bake(scene, "learned", learned_dir, overwrite=True, use_signals=False, solver=solver)

@@ -38,7 +38,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 from engine import energy  # noqa: E402
 from engine.scene import scene_from_dict  # noqa: E402
-from engine.sph import SphSolver  # noqa: E402
+from engine.solvers import make_solver  # noqa: E402
 from engine.world import build_world  # noqa: E402
 from bench.splash_shots import SHOTS, SPACING, shot  # noqa: E402
 
@@ -92,7 +92,7 @@ def run_shot(name, spacing=SPACING, seconds=None, solver=None):
     """Bake ``name`` in memory with the reference solver and return its row of measures."""
     scene = scene_from_dict(shot(name, spacing, seconds))
     world = build_world(scene)
-    solver = solver or SphSolver()
+    solver = solver or make_solver("sph")
     top = energy.ceiling(world)
     state = energy.flag_over(solver.start(world), world, top)
     start_energy = sum(energy.energy_parts(state.positions, state.velocities, world.particle_mass, world.gravity,

@@ -32,10 +32,8 @@ from . import energy
 from .cache import MANIFEST_NAME, CacheWriter, checkpoint_matches_frame, open_cache, verify_frames
 from .errors import CacheError, SolverError, SplashdraftError, UsageError
 from .progress import SilentProgress
+from .solvers import SOLVER_NAMES, make_solver
 from .state import state_from_arrays, state_to_arrays
-
-SOLVER_NAMES = ("sph", "learned")
-
 
 @dataclasses.dataclass(frozen=True)
 class BakeResult:
@@ -80,29 +78,6 @@ def scene_hash(scene):
     from .scene import scene_hash as hash_of_scene
 
     return hash_of_scene(scene)
-
-
-def make_solver(name, model=None):
-    """A fresh solver called ``name`` ("sph" or "learned"), imported lazily.
-
-    ``model`` (learned only): a model folder, .onnx or .json (``engine.learned.contract.find_model``);
-    None is the shipped model.
-    """
-    if name == "sph":
-        if model is not None:
-            raise UsageError(f"--model {model}: a model is for the learned preview; add --solver learned")
-        from .sph import SphSolver
-
-        return SphSolver()
-    if name == "learned":
-        from .learned import LearnedSolver
-
-        if model is not None:
-            from .learned.contract import find_model
-
-            return LearnedSolver(model=find_model(model))
-        return LearnedSolver()
-    raise UsageError(f"solver {name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
 
 
 #: Weakest gravity (m/s^2) the learned preview accepts: its features and step scale with sqrt(d / g).

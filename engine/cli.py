@@ -15,6 +15,7 @@ from pathlib import Path
 
 from .errors import EXIT_CODES, SplashdraftError, UsageError, ValidationFailed
 from .progress import PROGRESS_KINDS, format_duration, make_progress
+from .solvers import SOLVER_NAMES
 
 USAGE_EXIT = 64
 CANCELLED_EXIT = 130
@@ -41,6 +42,14 @@ def _add_progress(parser):
         "--progress", choices=PROGRESS_KINDS, default="bar",
         help="How to report progress on stderr: a progress bar, one JSON object per line "
         "(for the Blender add-on) or nothing. Default: bar.",
+    )  # fmt: skip
+
+
+def _add_model(parser):
+    parser.add_argument(
+        "--model", metavar="MODEL",
+        help="With --solver learned: the model to use, a folder holding one model (e.g. from 'tune') or an "
+        ".onnx file with its .json contract beside it; it must pass its contract check. Default: the shipped model.",
     )  # fmt: skip
 
 
@@ -83,7 +92,7 @@ def build_parser():
         "after the frame being computed; --resume continues from the last finished frame.",
     )  # fmt: skip
     bake.add_argument("scene", help="The scene file (splashdraft-scene JSON).")
-    bake.add_argument("--solver", choices=("sph", "learned"), default="sph",
+    bake.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
                       help="The reference DFSPH solver or the learned preview. Default: sph.")  # fmt: skip
     bake.add_argument("--out", required=True, help="The cache folder to write; it is created if missing.")
     bake.add_argument("--frames", metavar="A:B",
@@ -93,10 +102,7 @@ def build_parser():
                       help="Continue an interrupted bake from its checkpoint. Default: start from the first frame.")
     bake.add_argument("--overwrite", action="store_true",
                       help="Allow replacing a cache of another scene or solver in --out. Default: refuse.")
-    bake.add_argument("--model", metavar="MODEL",
-                      help="With --solver learned: the model to use, a folder holding one model (e.g. from "
-                      "'tune') or an .onnx file with its .json contract beside it; it must pass its contract "
-                      "check. Default: the shipped model in models/.")  # fmt: skip
+    _add_model(bake)
     _add_progress(bake)
     _add_budget(bake)
 
@@ -116,9 +122,10 @@ def build_parser():
         "shot, and a rough time. Exits with status 3 when the scene exceeds its particle budget.",
     )  # fmt: skip
     estimate.add_argument("scene", help="The scene file.")
-    estimate.add_argument("--solver", choices=("sph", "learned"), default="sph",
+    estimate.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
                           help="The solver the estimate is for. Default: sph.")
     estimate.add_argument("--json", action="store_true", help="Print the estimate as JSON on stdout.")
+    _add_model(estimate)
     _add_budget(estimate)
 
     validate = commands.add_parser(
@@ -137,7 +144,7 @@ def build_parser():
         description="Write the built-in demo shot (a block of water let go in an open-topped trough with a "
         "rough boulder) into OUT/scene and bake it into OUT/<solver>.",
     )  # fmt: skip
-    demo.add_argument("--solver", choices=("sph", "learned"), default="sph",
+    demo.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
                       help="The solver to bake with. Default: sph.")
     demo.add_argument("--out", default="out/demo", help="The output folder. Default: out/demo.")
     demo.add_argument("--frames", metavar="A:B", help="Bake frames A to B only. Default: the whole shot.")
@@ -146,6 +153,7 @@ def build_parser():
                       "about 1.2k particles, 12 frames. Default: full.")  # fmt: skip
     demo.add_argument("--spacing", type=float, metavar="S",
                       help="Particle spacing in metres, overriding the preset's.")
+    _add_model(demo)
     _add_progress(demo)
     _add_budget(demo)
 
@@ -163,9 +171,9 @@ def build_parser():
                        help="A scene field by its dotted path and the values to try, e.g. fluid.viscosity=0.01,0.05 "
                        "or emitters.spout.speed=1,2 (emitters and colliders by name). Repeat for more fields; "
                        "the wedge is every combination.")  # fmt: skip
-    wedge.add_argument("--solver", choices=("sph", "learned"), default="sph",
+    wedge.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
                        help="The solver every variant is baked with. Default: sph.")
-    wedge.add_argument("--model", metavar="MODEL", help="With --solver learned: the model (as for 'bake --model').")
+    _add_model(wedge)
     wedge.add_argument("--frames", metavar="A:B", help="Bake frames A to B of each variant. Default: the whole shot.")
     wedge.add_argument("--out", required=True, help="The wedge folder (one cache folder per variant inside).")
     where = wedge.add_mutually_exclusive_group()
@@ -222,9 +230,10 @@ def _print_json(data):
 
 
 def _run_bake(scene, solver, out, frames, resume, progress, max_particles, overwrite, model=None):
-    from .bake import bake, make_solver
+    from .bake import bake
+    from .solvers import make_solver
 
-    solver_object = make_solver(solver, model) if model is not None else None
+    solver_object = make_solver(solver, model=model) if model is not None else None
     result = bake(
         scene, solver, out, frames=frames, resume=resume, progress=make_progress(progress),
         max_particles=max_particles, overwrite=overwrite, solver=solver_object,
@@ -338,7 +347,7 @@ def command_estimate(args):
 
     scene = load_scene_any(args.scene)
     check_scene_for_solver(scene, args.solver)
-    result = estimate_scene(scene, solver=args.solver, max_particles=args.max_particles)
+    result = estimate_scene(scene, solver=args.solver, max_particles=args.max_particles, model=args.model)
     if args.json:
         _print_json(result.as_dict())
     _say(f"scene {result.scene_name!r} with the {result.solver} solver (estimates):")
@@ -439,7 +448,7 @@ def command_demo(args):
     scene_path = write_demo_scene(out / "scene", spacing=args.spacing, preset=args.preset)
     _say(f"demo scene written to {scene_path}")
     return _run_bake(scene_path, args.solver, out / args.solver, args.frames, False, args.progress,
-                     args.max_particles, True)  # fmt: skip
+                     args.max_particles, True, args.model)  # fmt: skip
 
 
 def command_wedge(args):

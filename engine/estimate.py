@@ -223,34 +223,45 @@ def check_work(scene, max_particles=None):
     return work
 
 
-def learned_steps_per_frame(scene):
-    """Learned steps per frame: ceil(frame interval / the shipped model's longest step).
+def learned_steps_per_frame(scene, model=None):
+    """Learned steps per frame: ceil(frame interval / the model's longest step).
 
-    Read from the model's contract (no onnxruntime session); 1 if the contract is missing or
-    unreadable (the bake itself then reports the model error).
+    Read from the model's contract (``engine.solvers.model_contract``; no onnxruntime session).
+    ``model`` None is the shipped model; if its contract is missing or fails its check this is 1
+    (the bake itself then reports the model error). A named model that fails raises ModelError.
     """
-    from .learned.contract import default_model_path
+    from .errors import ModelError
     from .learned.solver import step_plan
+    from .solvers import model_contract
 
     try:
-        contract = json.loads(default_model_path().with_suffix(".json").read_text())
+        contract = model_contract(model)[0]
+    except ModelError:
+        if model is not None:
+            raise
+        return 1
+    try:
         step = float(contract["step_froude"]) * math.sqrt(scene.particle_spacing / math.dist(scene.gravity, (0, 0, 0)))
-    except (OSError, ValueError, KeyError, TypeError, ZeroDivisionError):
+    except ZeroDivisionError:
         return 1
     return step_plan(1.0 / scene.fps, step)[0]
 
 
-def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=None):
+def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=None, model=None):
     """Estimate a bake of ``scene`` with ``solver``; raises BudgetError over the budget.
 
     Args:
         scene: loaded Scene. solver: "sph" or "learned".
+        model: the learned preview's model (``engine.solvers.find_model``'s forms); None: the shipped one.
         max_particles: budget override. world: a built World (built here if None).
         frames: number of frames to bake (default the whole shot).
 
     Returns:
         Estimate.
     """
+    from .solvers import check_model_option
+
+    check_model_option(solver, model)
     if world is None:
         from .world import build_world
 
@@ -259,7 +270,7 @@ def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=N
     particles, boundary = count_particles(world)
     check_budget(scene, world, max_particles=max_particles, particles=particles)
     frames = int(frames) if frames is not None else scene.frame_end - scene.frame_start + 1
-    substeps = learned_steps_per_frame(scene) if solver == "learned" else substeps_per_frame(scene)
+    substeps = learned_steps_per_frame(scene, model) if solver == "learned" else substeps_per_frame(scene)
     rate, source = throughput(solver)
     per_frame = substeps * max(particles, 1) / rate
     frame_size = frame_file_bytes(particles)
@@ -333,13 +344,13 @@ def fill_outside_bounds(scene, samples=OUTSIDE_SAMPLES):
     return result
 
 
-def quick_estimate(scene, solver="sph", max_particles=None):
+def quick_estimate(scene, solver="sph", max_particles=None, model=None):
     """The estimate in closed form, without building particles (well under a second at any spacing).
 
     Particles are ``work_bound``'s fluid count (fill volumes / spacing^3 plus the streams' layers)
     less the fill liquid the world drops outside the bounds and along the walls
     (``fill_outside_bounds``); boundary particles are wall and collider areas /
-    spacing^2. Memory, disk and time follow ``estimate_scene``'s models.
+    spacing^2. Memory, disk and time follow ``estimate_scene``'s models; ``model`` as there.
 
     Returns:
         (Estimate, outside) with ``outside`` as from ``fill_outside_bounds``.
@@ -347,6 +358,9 @@ def quick_estimate(scene, solver="sph", max_particles=None):
     Raises:
         BudgetError: over the budget (``check_work``, then the estimated count against the budget).
     """
+    from .solvers import check_model_option
+
+    check_model_option(solver, model)
     work = check_work(scene, max_particles)
     outside = fill_outside_bounds(scene)
     dropped = sum(entry["outside_bounds"] + entry["at_walls"] for entry in outside.values())
@@ -360,7 +374,7 @@ def quick_estimate(scene, solver="sph", max_particles=None):
             f"use a particle spacing of at least {coarser:.3g} m or raise the budget"
         )
     frames = scene.frame_end - scene.frame_start + 1
-    substeps = learned_steps_per_frame(scene) if solver == "learned" else substeps_per_frame(scene)
+    substeps = learned_steps_per_frame(scene, model) if solver == "learned" else substeps_per_frame(scene)
     rate, source = throughput(solver)
     per_frame = substeps * max(particles, 1) / rate
     frame_size = frame_file_bytes(particles)

@@ -297,7 +297,8 @@ def run_wedge(scene_file, vary, solver_name, out_dir, frames=None, model=None, w
         progress: WedgeProgress (default: lines on stderr).
         sheet_frame: the frame for the contact sheet (default: the last frame of the range).
     """
-    from .bake import load_scene_any, make_solver, resolve_frames
+    from .bake import load_scene_any, resolve_frames
+    from .solvers import make_solver
     from .wedge import SHEET_NAME, check_same_wedge, new_manifest, plan_variants, write_contact_sheet
 
     started = time.monotonic()
@@ -310,7 +311,7 @@ def run_wedge(scene_file, vary, solver_name, out_dir, frames=None, model=None, w
     frames = None if frames is None else [first, last]
     model_path = None
     if model is not None:
-        make_solver(solver_name, model)  # the contract check, here before anything is sent
+        make_solver(solver_name, model=model)  # the contract check, here before anything is sent
         from .learned.contract import find_model
 
         model_path = str(find_model(model).resolve())

@@ -22,7 +22,8 @@ import numpy as np
 
 from .boundary import make_boundary, sample_box_walls
 from .errors import SplashdraftError
-from .sph import SphSolver, sph_density
+from .solvers import make_solver
+from .sph import sph_density
 from .state import State
 
 #: Distance, in particle spacings, from a wall-sample plane to the first fluid layer.
@@ -130,7 +131,7 @@ def hydrostatic(progress=None, columns=12, layers=24, spacing=0.02, settle_time=
     boundary = make_boundary(wall_points, wall_normals, support)
     scene = case_scene(spacing, viscosity=0.05, max_time_step=0.002, density_tolerance=density_tolerance)
     world = BoxWorld(scene, positions, np.zeros_like(positions), boundary)
-    solver = SphSolver()
+    solver = make_solver("sph")
     state = solver.start(world)
     rho0, g = scene.fluid.rest_density, abs(scene.gravity[2])
     top_count = columns * columns
@@ -295,7 +296,7 @@ def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45):
     boundary = make_boundary(wall_points, wall_normals, 2.0 * spacing)
     scene = case_scene(spacing)
     world = BoxWorld(scene, positions, np.zeros_like(positions), boundary)
-    solver = SphSolver()
+    solver = make_solver("sph")
     state = solver.start(world)
     g = abs(scene.gravity[2])
     time_scale = n_factor * math.sqrt(g / a)
@@ -395,7 +396,7 @@ def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01,
     velocities[:, 0] = -scale * np.sin(k * x) * np.cosh(k * (z + tank_depth))
     velocities[:, 2] = scale * np.cos(k * x) * np.sinh(k * (z + tank_depth))
     world = BoxWorld(scene, positions, velocities, boundary)
-    solver = SphSolver()
+    solver = make_solver("sph")
     state = solver.start(world)
     period = 2.0 * math.pi / omega
     sample = period / 40.0

@@ -231,7 +231,8 @@ def bake_variant(job, should_stop=None):
     """
     import socket
 
-    from .bake import bake, load_scene_any, make_solver, resolve_frames
+    from .bake import bake, load_scene_any, resolve_frames
+    from .solvers import make_solver
 
     started = time.monotonic()
     worker = f"{socket.gethostname()}:{os.getpid()}"

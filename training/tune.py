@@ -149,7 +149,7 @@ def _evaluate(shots, held, onnx_path, out_dir, label):
     """Learned bakes of each shot with ``onnx_path``; mean Chamfer [d] and energy ratio on held-back frames."""
     from engine.bake import bake
     from engine.compare import compare_caches
-    from engine.learned import LearnedSolver
+    from engine.solvers import make_solver
 
     rows = []
     for shot in shots:
@@ -158,7 +158,7 @@ def _evaluate(shots, held, onnx_path, out_dir, label):
         scene_file = reference / "scene" / "scene.json"
         last = max(shot.frames)
         bake(scene_file, "learned", target, frames=(shot.scene.frame_start, last), use_signals=False,
-             solver=LearnedSolver(model=onnx_path), overwrite=True)  # fmt: skip
+             solver=make_solver("learned", model=onnx_path), overwrite=True)  # fmt: skip
         result = compare_caches(reference, target, frames=held[shot.name], scene=scene_file)
         ratios = []
         for row in result["frames"]:

@@ -212,6 +212,22 @@ def load_contract(model_path):
     return contract, onnx_path
 
 
+def check_folder(folder):
+    """Check every contract (``*.json``) in ``folder``.
+
+    Returns:
+        (models, reasons): ``(contract, onnx path)`` of each model that passes ``load_contract``,
+        sorted by file name, and the ModelError message of each that does not.
+    """
+    models, reasons = [], []
+    for candidate in sorted(Path(folder).glob("*.json")):
+        try:
+            models.append(load_contract(candidate))
+        except ModelError as exc:
+            reasons.append(str(exc))
+    return models, reasons
+
+
 def find_model(path):
     """The .onnx model a ``--model`` argument names: a model folder, an .onnx file or its .json contract.
 
@@ -227,12 +243,8 @@ def find_model(path):
     """
     path = Path(path)
     if path.is_dir():
-        passing, reasons = [], []
-        for candidate in sorted(path.glob("*.json")):
-            try:
-                passing.append(load_contract(candidate)[1])
-            except ModelError as exc:
-                reasons.append(str(exc))
+        models, reasons = check_folder(path)
+        passing = [onnx_path for _, onnx_path in models]
         if len(passing) == 1:
             return passing[0]
         if len(passing) > 1:
