@@ -8,11 +8,18 @@ does not use this module.
 What runs where. ``JacobiTables.from_operators`` turns one substep's ``PairOperators``
 into padded tables (host, numpy + scipy, paid every substep because the pairs change):
 
-- ``neighbours`` (N, K) int64: row i lists every j with a pair (i, j) in both
-  directions, ascending; empty slots hold i itself (with a zero gradient, so they add 0);
-- ``gradients`` (N, K, 3) float32: G_ij = m grad_i W_ij for the neighbour in that slot
-  (G_ji = -G_ij, the antisymmetric operator ``PairOperators`` stores as U - U^T);
-- ``own`` (N, 3) float32: S_i = sum_j G_ij + sum_b Psi_b grad W_ib.
+- ``neighbours`` (N, K) int32: row i lists every j with a pair (i, j) in both
+  directions, ascending; empty slots hold i itself (with a zero gradient, so they add 0).
+  The graph reads it flat with GatherElements (onnxruntime's Gather, one element per
+  index, measured 4-9x slower than GatherElements on the same (N K,) index);
+- ``gradients`` (3, N, K) float32: G_ij = m grad_i W_ij for the neighbour in that slot
+  (G_ji = -G_ij, the antisymmetric operator ``PairOperators`` stores as U - U^T),
+  component first so that every broadcast and sum in the graph runs over long
+  contiguous spans (in an (N, K, 3) layout the broadcast Mul, over spans of 3 floats,
+  took 6x the time; bench/bench_ort_jacobi.py's docstring lists the layouts tried);
+- ``own`` (3, N) float32: S_i = sum_j G_ij + sum_b Psi_b grad W_ib.
+
+Velocity-like arrays in the graph are (3, N) for the same reason.
 
 ``OrtJacobi.solve`` has the arguments and returns of ``engine.sph._jacobi_solve``. The
 warm start and the density rate of the starting velocities stay on the float64 scipy
@@ -20,7 +27,7 @@ operators (one pressure term and one rate, as in ``_jacobi_solve``); onnxruntime
 iterates on the float32 *corrections* only: with dv the velocity change so far,
 
     q = max(base + dt (S_i . dv_i - sum_j G_ij . dv_j), 0),   base = rho_i + dt (D rho/Dt)_i(v) - floor_i
-    dv_i -= c_i S_i u_i + sum_j G_ij u_j,   u = (alpha / (dt rho)) q      (the pressure term)
+    dv_i -= S_i u_i + sum_j G_ij u_j,   u = (alpha / (dt rho)) q      (the pressure term)
     dkappa += (alpha / dt^2) q
 
 which is ``_jacobi_solve``'s update (Bender & Koschier 2015, SCA, Jacobi with the DFSPH
@@ -58,7 +65,7 @@ _OPSET = 17
 
 
 def _padded_tables(count, i, j, grad):
-    """(neighbours (N, K) int64, gradients (N, K, 3) float32) from pairs i < j and G_ij (P, 3).
+    """(neighbours (N, K) int32, gradients (3, N, K) float32) from pairs i < j and G_ij (3 columns (P,)).
 
     Both directions of every pair go in: row i holds (j, G_ij), row j holds (i, -G_ij).
     scipy's CSR sum of the pair-number matrix and its transpose does the counting sort
@@ -67,7 +74,7 @@ def _padded_tables(count, i, j, grad):
     """
     n = count
     if len(i) == 0:
-        return np.arange(n, dtype=np.int64)[:, None], np.zeros((n, 1, 3), np.float32)
+        return np.arange(n, dtype=np.int32)[:, None], np.zeros((3, n, 1), np.float32)
     number = np.arange(1, len(i) + 1, dtype=np.float64)
     upper = sparse.csr_matrix((number, j, np.concatenate([[0], np.cumsum(np.bincount(i, minlength=n))])),
                               shape=(n, n))
@@ -76,15 +83,16 @@ def _padded_tables(count, i, j, grad):
     counts = np.diff(both.indptr)
     width = max(1, int(counts.max()))
     rows = np.repeat(np.arange(n, dtype=np.int64), counts)
-    slots = np.arange(len(rows), dtype=np.int64) - both.indptr[rows]
-    flat = rows * width + slots
-    neighbours = np.repeat(np.arange(n, dtype=np.int64), width)
+    flat = rows * width + (np.arange(len(rows), dtype=np.int64) - both.indptr[rows])
+    neighbours = np.repeat(np.arange(n, dtype=np.int32), width)
     neighbours[flat] = both.indices
     signed = both.data
     pair = np.abs(signed).astype(np.int64) - 1
-    gradients = np.zeros((n * width, 3), np.float32)
-    gradients[flat] = grad[pair] * np.sign(signed)[:, None]
-    return neighbours.reshape(n, width), gradients.reshape(n, width, 3)
+    sign = np.sign(signed)
+    gradients = np.zeros((3, n * width), np.float32)
+    for c in range(3):
+        gradients[c, flat] = grad[c][pair] * sign
+    return neighbours.reshape(n, width), gradients.reshape(3, n, width)
 
 
 class JacobiTables:
@@ -92,18 +100,21 @@ class JacobiTables:
 
     Attributes:
         count: N.
-        neighbours: (N, K) int64.
-        gradients: (N, K, 3) float32, kg/m^4.
-        own: (N, 3) float32, S_i in kg/m^4.
+        neighbours: (N, K) int32.
+        gradients: (3, N, K) float32, kg/m^4.
+        own: (3, N) float32, S_i in kg/m^4.
         alpha, density, boundary_rate: (N,) float64 (kept in float64 for the host terms).
         rest_density: rho0 in kg/m^3.
     """
 
     def __init__(self, count, i, j, gradients, own, alpha, density, boundary_rate, rest_density):
+        """``gradients``: three (P,) columns of G_ij for the pairs i < j; ``own``: (N, 3) S_i."""
         self.count = int(count)
         self.neighbours, self.gradients = _padded_tables(self.count, np.asarray(i, np.int64),
-                                                         np.asarray(j, np.int64), np.asarray(gradients))
-        self.own = np.ascontiguousarray(own, np.float32)
+                                                         np.asarray(j, np.int64), gradients)
+        # GatherElements wants an index of the data's rank: one row per velocity component.
+        self.neighbours_by_axis = np.tile(self.neighbours.reshape(1, -1), (3, 1))
+        self.own = np.ascontiguousarray(np.asarray(own).T, np.float32)
         self.alpha = np.asarray(alpha, np.float64)
         self.density = np.asarray(density, np.float64)
         self.boundary_rate = np.asarray(boundary_rate, np.float64)
@@ -116,8 +127,7 @@ class JacobiTables:
         The upper-triangle CSR matrices hold m grad W_ij in pair order (pairs sorted by i,
         then j), so their ``data`` arrays are the gradient columns.
         """
-        grad = np.stack([ops._upper[c].data for c in range(3)], axis=1)
-        return cls(ops.count, ops._i, ops._j, grad, ops._rate_sum, ops.alpha, ops.density,
+        return cls(ops.count, ops._i, ops._j, [ops._upper[c].data for c in range(3)], ops._rate_sum, ops.alpha, ops.density,
                    ops.boundary_rate, ops.rest_density)
 
     @property
@@ -149,27 +159,28 @@ class _Graph:
         return name
 
 
-def _pair_sum_scalar(g, u, neighbours, gradients, own, axis1):
-    """(N, 3) S_i u_i + sum_j G_ij u_j for a per-particle scalar u (N,)."""
-    gathered = g.op("Unsqueeze", [g.op("Gather", [u, neighbours], axis=0), g.constant("axis2", [2])])
-    summed = g.op("ReduceSum", [g.op("Mul", [gradients, gathered]), axis1], keepdims=0)
-    mine = g.op("Mul", [own, g.op("Unsqueeze", [u, axis1])])
-    return g.op("Add", [mine, summed])
+def _pair_sum_scalar(g, u, shapes, axis2):
+    """(3, N) S_i u_i + sum_j G_ij u_j for a per-particle scalar u (N,)."""
+    gathered = g.op("GatherElements", [u, "neighbours"], axis=0)  # (N K,)
+    products = g.op("Reshape", [g.op("Mul", ["gradients", gathered]), shapes])  # (3, N, K)
+    return g.op("Add", [g.op("Mul", ["own", u]), g.op("ReduceSum", [products, axis2], keepdims=0)])
 
 
-def _rate(g, dv, neighbours, gradients, own, axes12, axis1):
+def _rate(g, dv, shapes, axis0, axis2):
     """(N,) S_i . dv_i - sum_j G_ij . dv_j (the density rate of the correction, kg/(m^3 s))."""
-    gathered = g.op("Gather", [dv, neighbours], axis=0)
-    others = g.op("ReduceSum", [g.op("Mul", [gradients, gathered]), axes12], keepdims=0)
-    mine = g.op("ReduceSum", [g.op("Mul", [own, dv]), axis1], keepdims=0)
-    return g.op("Sub", [mine, others])
+    gathered = g.op("GatherElements", [dv, "neighbours_by_axis"], axis=1)  # (3, N K)
+    products = g.op("Reshape", [g.op("Mul", ["gradients", gathered]), shapes])  # (3, N, K)
+    others = g.op("ReduceSum", [products, axis2], keepdims=0)
+    return g.op("ReduceSum", [g.op("Sub", [g.op("Mul", ["own", dv]), others]), axis0], keepdims=0)
 
 
 def build_model(iterations):
     """ONNX model of ``iterations`` unrolled Jacobi iterations on the corrections (module docstring).
 
-    Inputs (N and K symbolic): dv (N, 3), dkappa (N,), compression (N,) float32 (state);
-    neighbours (N, K) int64, gradients (N, K, 3), own (N, 3), base (N,),
+    Inputs (N and K symbolic): dv (3, N), dkappa (N,), compression (N,) float32 (state);
+    neighbours (N K,) and neighbours_by_axis (3, N K) int32 (the table, flat, and once per
+    component), gradients (3, N K) (the table, flat), shape (3,) int64 = (3, N, K),
+    own (3, N), base (N,),
     speed_scale (N,) = alpha / (dt rho), kappa_scale (N,) = alpha / dt^2, dt (1,),
     tolerance (1,) = mean compression in kg/m^3, iterations_done (1,), min_iterations (1,),
     max_iterations (1,) float32.
@@ -178,20 +189,22 @@ def build_model(iterations):
     if iterations < 1:
         raise SolverError(f"ort_ops.build_model: iterations must be >= 1, got {iterations!r}")
     f32 = TensorProto.FLOAT
-    inputs = [helper.make_tensor_value_info("dv", f32, ["n", 3]),
+    inputs = [helper.make_tensor_value_info("dv", f32, [3, "n"]),
               helper.make_tensor_value_info("dkappa", f32, ["n"]),
               helper.make_tensor_value_info("compression", f32, ["n"]),
-              helper.make_tensor_value_info("neighbours", TensorProto.INT64, ["n", "k"]),
-              helper.make_tensor_value_info("gradients", f32, ["n", "k", 3]),
-              helper.make_tensor_value_info("own", f32, ["n", 3]),
+              helper.make_tensor_value_info("neighbours", TensorProto.INT32, ["nk"]),
+              helper.make_tensor_value_info("neighbours_by_axis", TensorProto.INT32, [3, "nk"]),
+              helper.make_tensor_value_info("gradients", f32, [3, "nk"]),
+              helper.make_tensor_value_info("shape", TensorProto.INT64, [3]),
+              helper.make_tensor_value_info("own", f32, [3, "n"]),
               helper.make_tensor_value_info("base", f32, ["n"]),
               helper.make_tensor_value_info("speed_scale", f32, ["n"]),
               helper.make_tensor_value_info("kappa_scale", f32, ["n"])]
     inputs += [helper.make_tensor_value_info(name, f32, [1]) for name in
                ("dt", "tolerance", "iterations_done", "min_iterations", "max_iterations")]
     g = _Graph()
-    axis1 = g.constant("axis1", [1])
-    axes12 = g.constant("axes12", [1, 2])
+    axis0 = g.constant("axis0", [0])
+    axis2 = g.constant("axis2", [2])
     dv, dkappa, q = "dv", "dkappa", "compression"
     going = None
     flags = []
@@ -206,14 +219,14 @@ def build_model(iterations):
         push = g.op("Mul", [q, flag])
         dkappa = g.op("Add", [dkappa, g.op("Mul", [push, "kappa_scale"])])
         u = g.op("Mul", [push, "speed_scale"])
-        dv = g.op("Sub", [dv, _pair_sum_scalar(g, u, "neighbours", "gradients", "own", axis1)])
-        rate = _rate(g, dv, "neighbours", "gradients", "own", axes12, axis1)
+        dv = g.op("Sub", [dv, _pair_sum_scalar(g, u, "shape", axis2)])
+        rate = _rate(g, dv, "shape", axis0, axis2)
         q = g.op("Relu", [g.op("Add", ["base", g.op("Mul", [rate, "dt"])])])
     outputs = {"dv_out": dv, "dkappa_out": dkappa, "compression_out": q,
                "applied": g.op("Concat", flags, axis=0)}
     for name, source in outputs.items():
         g.nodes.append(helper.make_node("Identity", [source], [name], name=f"out_{name}"))
-    shapes = {"dv_out": ["n", 3], "dkappa_out": ["n"], "compression_out": ["n"], "applied": [iterations]}
+    shapes = {"dv_out": [3, "n"], "dkappa_out": ["n"], "compression_out": ["n"], "applied": [iterations]}
     graph = helper.make_graph(g.nodes, "splashdraft_jacobi", inputs,
                               [helper.make_tensor_value_info(k, f32, v) for k, v in shapes.items()],
                               initializer=g.initializers)
@@ -233,11 +246,16 @@ class OrtJacobi:
     Args:
         iterations_per_call: iterations unrolled into one call (>= 1).
         threads: intra-op threads (default: the machine's cores).
+        allow_spinning: let idle onnxruntime threads spin between operators (onnxruntime's
+            default). Off by default: on the shared 2-core machine the spinning threads
+            competed with the caller and with other processes (20k block, one run
+            2026-12-04: 0.95 us per particle-iteration spinning, 0.68 not).
     """
 
-    def __init__(self, iterations_per_call=ITERATIONS_PER_CALL, threads=None):
+    def __init__(self, iterations_per_call=ITERATIONS_PER_CALL, threads=None, allow_spinning=False):
         self.iterations_per_call = int(iterations_per_call)
         options = ort.SessionOptions()
+        options.add_session_config_entry("session.intra_op.allow_spinning", "1" if allow_spinning else "0")
         options.intra_op_num_threads = int(threads or os.cpu_count() or 1)
         options.inter_op_num_threads = 1
         options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
@@ -265,9 +283,11 @@ class OrtJacobi:
             velocities = velocities - dt * ops.pressure_term(kappa / density)
         base = density + dt * ops.density_rate(velocities) - floor
         feeds = {
-            "dv": np.zeros((n, 3), np.float32), "dkappa": np.zeros(n, np.float32),
+            "dv": np.zeros((3, n), np.float32), "dkappa": np.zeros(n, np.float32),
             "compression": np.maximum(base, 0.0).astype(np.float32),
-            "neighbours": tables.neighbours, "gradients": tables.gradients, "own": tables.own,
+            "neighbours": tables.neighbours.reshape(-1), "neighbours_by_axis": tables.neighbours_by_axis,
+            "gradients": tables.gradients.reshape(3, -1), "shape": np.array(tables.gradients.shape, np.int64),
+            "own": tables.own,
             "base": base.astype(np.float32),
             "speed_scale": (tables.alpha / (dt * density)).astype(np.float32),
             "kappa_scale": (tables.alpha / (dt * dt)).astype(np.float32),
@@ -287,5 +307,5 @@ class OrtJacobi:
             if steps < self.iterations_per_call or done >= max_iterations or (
                     done >= min_iterations and error <= tolerance):
                 break
-        return (velocities + dv, kappa + dkappa, done, error, float(np.max(compression)) / rho0,
+        return (velocities + dv.T, kappa + dkappa, done, error, float(np.max(compression)) / rho0,
                 error <= tolerance)

@@ -75,13 +75,14 @@ def test_tables_hold_both_directions_of_every_pair_within_the_support(substep):
     h = substep["params"].support_radius
     distance = np.linalg.norm(positions[:, None, :] - positions[None, :, :], axis=2)
     inside = (distance < h) & ~np.eye(len(positions), dtype=bool)
-    real = np.any(tables.gradients != 0.0, axis=2)
+    gradients = np.moveaxis(tables.gradients, 0, 2)  # (N, K, 3)
+    real = np.any(gradients != 0.0, axis=2)
     for row in range(len(positions)):
         np.testing.assert_array_equal(np.sort(tables.neighbours[row][real[row]]), np.flatnonzero(inside[row]))
     assert np.all(tables.neighbours[~real] == np.nonzero(~real)[0])  # empty slots point at the row itself
     rows = np.repeat(np.arange(len(positions)), tables.width)[real.ravel()]
     columns = tables.neighbours[real]
-    forward = {(a, b): g for a, b, g in zip(rows, columns, tables.gradients[real])}
+    forward = {(a, b): g for a, b, g in zip(rows, columns, gradients[real])}
     for (a, b), g in list(forward.items())[:2000]:
         np.testing.assert_array_equal(forward[(b, a)], -g)
 
