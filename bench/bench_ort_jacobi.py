@@ -18,7 +18,9 @@ the two paths inside each of ``--repeats`` rounds (their order flips every round
   most ``DRIFT_ITERATIONS``), each path with its own stopping; the onnxruntime figure
   includes the table build. The ratio of the two is what a substep would gain or lose.
 
-Times are medians over the rounds (the minimum is in the JSON). The scipy path runs on
+Times are medians over the rounds; the table also gives the ratios of the fastest rounds
+and of the process CPU time (all threads, the work done; other people's jobs on the shared
+machine disturb it less than the wall time). The scipy path runs on
 engine.sph's thread pool (SOLVER_THREADS), onnxruntime with intra-op threads = the
 machine's cores. ``--profile`` adds onnxruntime's per-operator time for one fixed solve.
 
@@ -81,9 +83,14 @@ def substep_solves(solve, ops, velocities, kappa, drift, dt, params):
     return first, second
 
 
-def clock(function):
-    started = time.perf_counter()
+def clock(function, cpu=None):
+    """(wall seconds, result); when ``cpu`` (a list) is given, the process CPU seconds are appended
+    to it (all threads: the work done, which other people's jobs on the machine disturb less than
+    the wall time)."""
+    started, started_cpu = time.perf_counter(), time.process_time()
     result = function()
+    if cpu is not None:
+        cpu.append(time.process_time() - started_cpu)
     return time.perf_counter() - started, result
 
 
@@ -115,27 +122,28 @@ def run_size(count, warmup, repeats, iterations, iterations_per_call, profile, s
     fixed = (velocities, kappa, floor, dt, 0.0, iterations, iterations)
     tables = JacobiTables.from_operators(ops)
     times = {name: [] for name in ("scipy_fixed", "ort_fixed", "tables", "scipy_substep", "ort_substep")}
+    cpu = {name: [] for name in times}
     counts = {}
     for round_ in range(repeats):
         order = ("scipy", "ort") if round_ % 2 == 0 else ("ort", "scipy")
         for path in order:
             if path == "scipy":
-                seconds, _ = clock(lambda: sph._jacobi_solve(ops, *fixed))
+                seconds, _ = clock(lambda: sph._jacobi_solve(ops, *fixed), cpu["scipy_fixed"])
                 times["scipy_fixed"].append(seconds)
                 seconds, counts["scipy"] = clock(lambda: substep_solves(sph._jacobi_solve, ops, velocities, kappa,
-                                                                        drift, dt, params))
+                                                                        drift, dt, params), cpu["scipy_substep"])
                 times["scipy_substep"].append(seconds)
             else:
-                seconds, _ = clock(lambda: runner.solve(ops, tables, *fixed))
+                seconds, _ = clock(lambda: runner.solve(ops, tables, *fixed), cpu["ort_fixed"])
                 times["ort_fixed"].append(seconds)
 
                 def ort_substep():
                     fresh = JacobiTables.from_operators(ops)
                     return substep_solves(lambda *a: runner.solve(a[0], fresh, *a[1:]), ops, velocities, kappa,
                                           drift, dt, params)
-                seconds, counts["ort"] = clock(ort_substep)
+                seconds, counts["ort"] = clock(ort_substep, cpu["ort_substep"])
                 times["ort_substep"].append(seconds)
-                seconds, _ = clock(lambda: JacobiTables.from_operators(ops))
+                seconds, _ = clock(lambda: JacobiTables.from_operators(ops), cpu["tables"])
                 times["tables"].append(seconds)
     median = {name: statistics.median(values) for name, values in times.items()}
     pairs = len(ops._i)
@@ -155,7 +163,14 @@ def run_size(count, warmup, repeats, iterations, iterations_per_call, profile, s
         "scipy_substep_ms": 1e3 * median["scipy_substep"],
         "ort_substep_ms_with_tables": 1e3 * median["ort_substep"],
         "substep_ratio_scipy_over_ort": median["scipy_substep"] / median["ort_substep"],
+        "cpu_iteration_ratio_scipy_over_ort": statistics.median(cpu["scipy_fixed"]) / statistics.median(
+            cpu["ort_fixed"]),
+        "cpu_substep_ratio_scipy_over_ort": statistics.median(cpu["scipy_substep"]) / statistics.median(
+            cpu["ort_substep"]),
+        "min_iteration_ratio_scipy_over_ort": min(times["scipy_fixed"]) / min(times["ort_fixed"]),
+        "min_substep_ratio_scipy_over_ort": min(times["scipy_substep"]) / min(times["ort_substep"]),
         "seconds_median": median,
+        "cpu_seconds_all": cpu,
         "seconds_min": {name: min(values) for name, values in times.items()},
         "seconds_all": times,
     }
@@ -186,7 +201,8 @@ def main(argv=None):
     if args.repeats < 1 or args.iterations < 1 or args.iterations_per_call < 1:
         parser.error("--repeats, --iterations and --iterations-per-call must be at least 1")
     header = (f"{'particles':>9} {'K':>3} {'fill':>5} {'scipy us/p-it':>13} {'ort us/p-it':>11} {'it ratio':>8} "
-              f"{'tables ms':>9} {'= its':>5} {'its v+d':>8} {'scipy ms':>9} {'ort+tab ms':>10} {'substep ratio':>13}")
+              f"{'tables ms':>9} {'= its':>5} {'its v+d':>8} {'scipy ms':>9} {'ort+tab ms':>10} {'substep ratio':>13} "
+              f"{'min it/sub':>10} {'cpu it/sub':>10}")
     print(header)
     results = []
     for size in sorted(args.sizes):
@@ -198,14 +214,18 @@ def main(argv=None):
               f"{row['scipy_us_per_particle_iteration']:>13.3f} {row['ort_us_per_particle_iteration']:>11.3f} "
               f"{row['iteration_ratio_scipy_over_ort']:>8.2f} {row['table_ms']:>9.1f} "
               f"{row['table_in_iterations']:>5.1f} {its:>8} {row['scipy_substep_ms']:>9.1f} "
-              f"{row['ort_substep_ms_with_tables']:>10.1f} {row['substep_ratio_scipy_over_ort']:>13.2f}", flush=True)
+              f"{row['ort_substep_ms_with_tables']:>10.1f} {row['substep_ratio_scipy_over_ort']:>13.2f} "
+              f"{row['min_iteration_ratio_scipy_over_ort']:>5.2f}/{row['min_substep_ratio_scipy_over_ort']:<4.2f} "
+              f"{row['cpu_iteration_ratio_scipy_over_ort']:>5.2f}/{row['cpu_substep_ratio_scipy_over_ort']:<4.2f}",
+              flush=True)
         if row["substep_iterations_scipy"] != row["substep_iterations_ort"]:
             print(f"  note: iteration counts differ (onnxruntime {row['substep_iterations_ort']})", flush=True)
         if args.profile:
             top = ", ".join(f"{k} {v:.1f}" for k, v in row["ort_profile_ms_by_op"].items())
             print(f"  onnxruntime ms by op ({args.iterations} iterations): {top}", flush=True)
     print("ratios > 1: scipy slower (onnxruntime wins); 'substep ratio' includes the table build; "
-          "'= its' is the table build in scipy iterations")
+          "'= its' is the table build in scipy iterations; ratios are of medians, 'min' of the fastest rounds, "
+          "'cpu' of median process CPU time (all threads)")
     out = {
         "benchmark": "ort_jacobi",
         "machine": {"platform": platform.platform(), "processor": platform.processor(),
