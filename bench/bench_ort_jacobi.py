@@ -33,7 +33,6 @@ Prints a table and writes JSON (default bench/results/ort_jacobi.json).
 import argparse
 import json
 import os
-import platform
 import statistics
 import sys
 import tempfile
@@ -48,7 +47,7 @@ for path in (ROOT, ROOT / "bench"):
     if str(path) not in sys.path:
         sys.path.insert(0, str(path))
 
-from bench_reference import block_world  # noqa: E402
+from bench_reference import block_world, machine_info, write_json  # noqa: E402
 from engine import sph  # noqa: E402
 from engine.ort_ops import ITERATIONS_PER_CALL, JacobiTables, OrtJacobi, build_model  # noqa: E402
 
@@ -228,18 +227,13 @@ def main(argv=None):
           "'cpu' of median process CPU time (all threads)")
     out = {
         "benchmark": "ort_jacobi",
-        "machine": {"platform": platform.platform(), "processor": platform.processor(),
-                    "cpu_count": os.cpu_count(), "python": platform.python_version(), "numpy": np.__version__,
-                    "onnxruntime": ort.__version__, "scipy_threads": sph.SOLVER_THREADS},
+        "machine": machine_info(onnxruntime=ort.__version__, scipy_threads=sph.SOLVER_THREADS),
         "settings": {"warmup": args.warmup, "repeats": args.repeats, "iterations": args.iterations,
                      "iterations_per_call": args.iterations_per_call, "spacing_m": 0.02, "shape": "cube",
                      "ort_spinning": args.ort_spinning, "load_average_at_end": os.getloadavg()},
         "results": results,
     }
-    path = Path(args.output)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(json.dumps(out, indent=2) + "\n")
-    print(f"wrote {path}")
+    write_json(out, args.output)
     return 0
 
 
