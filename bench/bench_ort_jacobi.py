@@ -24,6 +24,27 @@ machine disturb it less than the wall time). The scipy path runs on
 engine.sph's thread pool (SOLVER_THREADS), onnxruntime with intra-op threads = the
 machine's cores. ``--profile`` adds onnxruntime's per-operator time for one fixed solve.
 
+Measured 2026-12-04 on the shared 2-core machine (load average 6-9 throughout, so single
+figures move by 2x; four runs of the default command, ratios scipy time / onnxruntime
+time, > 1 would be a win): per iteration 0.57-1.05 at 20k and 0.61-0.77 at 50k (median
+wall; 0.81-0.98 and 0.85-0.95 in CPU time); per substep with the table build 0.58-0.93 at
+20k and 0.56-0.78 at 50k (CPU time 0.77-0.83 and 0.76-0.85). The table build alone costs
+29-46 ms at 20k and 123-184 ms at 50k, 3-9 scipy iterations. Not kept: the 1.3x bar was
+never approached. Why: one iteration reads and writes about twice the bytes of scipy's
+despite float32 (20k cube, K = 32, P = 265k: about 120 N K = 76 MB against 144 P = 38 MB,
+counted from the operators, not measured),
+because every onnxruntime operator writes its whole result before the next reads it (the
+gathered values, then the products, (3, N, K) floats each) where a CSR kernel gathers,
+multiplies and sums in one pass, and 14-20 % of the padded slots are empty. Letting
+onnxruntime's idle threads spin (``--ort-spinning``) was worse (0.28-0.57 per iteration).
+
+Graph layouts tried on the 5k cube (24 iterations, same run as scipy; the kept one last):
+(N, K, 3) tables with Gather, 3.9 us per particle-iteration against scipy's 0.30 (the
+broadcast Mul over spans of 3 floats took 211 ms of 386); (3, N, K) with Gather, 2.5
+against 0.32 (Gather, one element per index, took 342 ms of 383); (3, N, K) with
+GatherElements on a flat int32 index, 0.57 against 0.44. Einsum for the multiply-and-sum
+was about 30x slower than Mul + ReduceSum in isolation and was not tried in the graph.
+
     nice .venv/bin/python bench/bench_ort_jacobi.py                  # 5k 20k 50k
     nice .venv/bin/python bench/bench_ort_jacobi.py --sizes 20000 --repeats 9 --profile
 

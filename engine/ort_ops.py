@@ -2,8 +2,9 @@
 
 An experiment behind issue 10, item 6: does a float32 iteration on padded neighbour
 tables, several iterations per onnxruntime call, beat the float64 scipy sparse products
-of ``engine.sph.PairOperators``? ``bench/bench_ort_jacobi.py`` measures it; the solver
-does not use this module.
+of ``engine.sph.PairOperators``? ``bench/bench_ort_jacobi.py`` measures it: it does not
+(0.6-0.9x per substep at 20k and 50k, the bench's docstring has the figures and the
+reason), so the solver does not use this module; it stays for the record and the test.
 
 What runs where. ``JacobiTables.from_operators`` turns one substep's ``PairOperators``
 into padded tables (host, numpy + scipy, paid every substep because the pairs change):
@@ -11,7 +12,7 @@ into padded tables (host, numpy + scipy, paid every substep because the pairs ch
 - ``neighbours`` (N, K) int32: row i lists every j with a pair (i, j) in both
   directions, ascending; empty slots hold i itself (with a zero gradient, so they add 0).
   The graph reads it flat with GatherElements (onnxruntime's Gather, one element per
-  index, measured 4-9x slower than GatherElements on the same (N K,) index);
+  index, measured 5-12x slower than GatherElements on the same 20k x 32 index);
 - ``gradients`` (3, N, K) float32: G_ij = m grad_i W_ij for the neighbour in that slot
   (G_ji = -G_ij, the antisymmetric operator ``PairOperators`` stores as U - U^T),
   component first so that every broadcast and sum in the graph runs over long
@@ -51,10 +52,8 @@ i < j, q compression (kg/m^3), alpha the DFSPH factor (m^5/kg), m particle mass 
 import os
 
 import numpy as np
-import onnx
 import onnxruntime as ort
 import scipy.sparse as sparse
-from onnx import TensorProto, helper
 
 from .errors import SolverError
 
@@ -136,10 +135,24 @@ class JacobiTables:
         return self.neighbours.shape[1]
 
 
+def _require_onnx():
+    """The ``onnx`` package, which builds the graph: a development dependency (requirements-train.txt),
+    not one of the engine's run-time ones, so it is imported only here."""
+    try:
+        import onnx
+        import onnx.checker
+        import onnx.numpy_helper
+    except ImportError as error:
+        raise SolverError("ort_ops: building the Jacobi graph needs the onnx package, a development "
+                          f"dependency ({error}); install it with pip install -r requirements-train.txt") from error
+    return onnx
+
+
 class _Graph:
     """A tiny node list builder: unique names, one helper per op."""
 
-    def __init__(self):
+    def __init__(self, onnx):
+        self.onnx = onnx
         self.nodes = []
         self.initializers = []
         self._count = 0
@@ -150,12 +163,12 @@ class _Graph:
 
     def op(self, op_type, inputs, stem=None, **attributes):
         out = self.name(stem or op_type.lower())
-        self.nodes.append(helper.make_node(op_type, list(inputs), [out], name=out, **attributes))
+        self.nodes.append(self.onnx.helper.make_node(op_type, list(inputs), [out], name=out, **attributes))
         return out
 
     def constant(self, stem, values, dtype=np.int64):
         name = self.name(stem)
-        self.initializers.append(onnx.numpy_helper.from_array(np.asarray(values, dtype), name))
+        self.initializers.append(self.onnx.numpy_helper.from_array(np.asarray(values, dtype), name))
         return name
 
 
@@ -185,9 +198,14 @@ def build_model(iterations):
     tolerance (1,) = mean compression in kg/m^3, iterations_done (1,), min_iterations (1,),
     max_iterations (1,) float32.
     Outputs: dv_out, dkappa_out, compression_out, applied (iterations,) 0/1 per iteration.
+
+    Raises:
+        SolverError: ``iterations`` < 1, or the onnx package is not installed.
     """
     if iterations < 1:
         raise SolverError(f"ort_ops.build_model: iterations must be >= 1, got {iterations!r}")
+    onnx = _require_onnx()
+    helper, TensorProto = onnx.helper, onnx.TensorProto
     f32 = TensorProto.FLOAT
     inputs = [helper.make_tensor_value_info("dv", f32, [3, "n"]),
               helper.make_tensor_value_info("dkappa", f32, ["n"]),
@@ -202,7 +220,7 @@ def build_model(iterations):
               helper.make_tensor_value_info("kappa_scale", f32, ["n"])]
     inputs += [helper.make_tensor_value_info(name, f32, [1]) for name in
                ("dt", "tolerance", "iterations_done", "min_iterations", "max_iterations")]
-    g = _Graph()
+    g = _Graph(onnx)
     axis0 = g.constant("axis0", [0])
     axis2 = g.constant("axis2", [2])
     dv, dkappa, q = "dv", "dkappa", "compression"

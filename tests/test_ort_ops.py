@@ -25,6 +25,7 @@ from engine.ort_ops import JacobiTables, OrtJacobi, build_model
 from engine.sph import (DRIFT, DRIFT_WARM_START, KAPPA, WARM_START_FACTOR, PairOperators, SphSolver,
                         _find_pairs, _jacobi_solve, make_params)
 
+pytest.importorskip("onnx", reason="building the graph needs onnx, a development dependency (requirements-train.txt)")
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
 from bench_reference import block_world  # noqa: E402
 
@@ -134,3 +135,11 @@ def test_particles_without_neighbours_get_no_correction(runner):
 def test_build_model_rejects_a_call_without_iterations():
     with pytest.raises(SolverError, match="iterations must be >= 1, got 0"):
         build_model(0)
+
+
+def test_build_model_without_the_onnx_package_names_the_fix(monkeypatch):
+    """onnx is a development dependency; without it the error says how to install it."""
+    for name in ("onnx", "onnx.checker", "onnx.numpy_helper"):
+        monkeypatch.setitem(sys.modules, name, None)
+    with pytest.raises(SolverError, match="needs the onnx package.*pip install -r requirements-train.txt"):
+        build_model(8)
