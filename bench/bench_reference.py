@@ -100,6 +100,20 @@ def write_ply(path, state, attributes):
         handle.write(rows.tobytes())
 
 
+def machine_info(**extra):
+    """The machine block of a benchmark's JSON (platform, CPUs, Python, numpy) plus ``extra``."""
+    return {"platform": platform.platform(), "processor": platform.processor(), "cpu_count": os.cpu_count(),
+            "python": platform.python_version(), "numpy": np.__version__, **extra}
+
+
+def write_json(out, output):
+    """Write a benchmark's results ``out`` as JSON to ``output`` (folders made) and say where."""
+    path = Path(output)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(out, indent=2) + "\n")
+    print(f"wrote {path}")
+
+
 def run_size(count, substeps, warmup, shape="cube", layers=20):
     world = block_world(count, shape=shape, layers=layers)
     solver = make_solver("sph")
@@ -202,9 +216,7 @@ def main(argv=None):
         print(f"cost per particle-substep, largest / smallest ({args.shape}): {ratio:.2f}")
     out = {
         "benchmark": "reference_solver",
-        "machine": {"platform": platform.platform(), "processor": platform.processor(),
-                    "cpu_count": os.cpu_count(), "python": platform.python_version(),
-                    "numpy": np.__version__},
+        "machine": machine_info(),
         "settings": {"substeps": args.substeps, "warmup": args.warmup, "spacing_m": 0.02,
                      "time_step_s": 0.004, "shape": args.shape,
                      "slab_layers": args.layers if args.shape == "slab" else None},
@@ -212,10 +224,7 @@ def main(argv=None):
         "cost_ratio_largest_to_smallest": ratio,
         "sizes": sorted(by_size),
     }
-    path = Path(args.output)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(json.dumps(out, indent=2) + "\n")
-    print(f"wrote {path}")
+    write_json(out, args.output)
     return 0
 
 

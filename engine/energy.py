@@ -19,8 +19,11 @@ The ceiling is the highest specific energy the scene puts in: fill particles at
 t = 0, and stream sources at speed^2 / 2 + g h of their highest emission point.
 The over-energy fraction is flagged particles (present or removed) over all
 particles ever created. It is our own audit measure, not a published one: real
-splashes concentrate energy in thin jets, so a few particles may pass it; a
-double-digit percentage is a numerical defect.
+splashes concentrate energy in thin jets, so a few particles may pass it (the
+sheet shot sideways at the start of an impact moves much faster than the impact,
+Wagner 1932, ZAMM 12, and Riboux & Gordillo 2014, Phys. Rev. Lett. 113:024507;
+jets of wave impacts focused into a corner, Peregrine 2003, Annu. Rev. Fluid
+Mech. 35; all from memory); a double-digit percentage is a numerical defect.
 """
 
 import dataclasses
