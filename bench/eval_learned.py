@@ -31,8 +31,9 @@ ROOT = Path(__file__).resolve().parents[1]
 
 from engine.bake import bake  # noqa: E402
 from engine.cache import open_cache  # noqa: E402
-from engine.compare import compare_caches, kinetic_energy  # noqa: E402
+from engine.compare import compare_caches  # noqa: E402
 from engine.errors import SplashdraftError  # noqa: E402
+from engine.measures import kinetic_energy  # noqa: E402
 from engine.scene import load_scene  # noqa: E402
 
 
@@ -45,7 +46,7 @@ def stability(cache_dir, seconds_total):
     for frame in reader.frames:
         data = reader.read_frame(frame)
         times.append(reader.manifest["frames"][str(frame)]["time"])
-        energies.append(kinetic_energy(data["velocities"], d, rho0))
+        energies.append(kinetic_energy(data["velocities"], rho0 * d**3))
         speeds.append(float(np.linalg.norm(data["velocities"], axis=1).max()) if len(data["ids"]) else 0.0)
         counts.append(len(data["ids"]))
     times, energies, speeds = np.array(times), np.array(energies), np.array(speeds)

@@ -1,39 +1,16 @@
 """Fidelity of one bake (B, usually the learned preview) against another (A, the reference).
 
-Per frame present in both caches:
+Per frame present in both caches, with the measures of ``engine.measures`` (where each is defined):
 
-- **Chamfer distance**, our convention: the symmetric *mean* nearest-neighbour
-  distance, *unsquared*,
-
-      CD(A, B) = 1/2 * ( mean_{a in A} min_{b in B} |a - b|  +  mean_{b in B} min_{a in A} |a - b| ),
-
-  reported in metres and in particle spacings d. The measure goes back to
-  Barrow, Tenenbaum, Bolles & Wolf 1977, "Parametric correspondence and
-  chamfer matching", IJCAI; the point-cloud form is the one popularised by
-  Fan, Su & Guibas 2017, "A Point Set Generation Network for 3D Object
-  Reconstruction from a Single Image", CVPR, who sum *squared* distances.
-  Conventions differ between papers (squared or not, sum or mean, halved or
-  not), so compare numbers only within one convention. Two copies of the same
-  cloud give 0; two lattices of one spacing shifted by s < d/2 give s.
-- **Density of B** with the SPH estimator (Monaghan 1992, "Smoothed Particle
-  Hydrodynamics", ARA&A 30:543): rho_i = sum_j m W(|x_i - x_j|, H) over fluid
-  particles (self included) plus rho0 * sum_b V_b W(|x_i - x_b|, H) over the
-  boundary particles of the world at that time (Akinci et al. 2012 volumes),
-  with the cubic spline, H = 2 d and m = rho0 d^3. When the scene cannot be
-  rebuilt (no ``--scene`` and no usable path in the manifest) the boundary term
-  is missing and the result says so (``density_includes_boundary`` false).
-  Free-surface particles have a truncated kernel support and read low by
-  construction; the density fraction therefore counts only particles with at
-  least ``FULL_SUPPORT_NEIGHBOURS`` fluid + boundary neighbours within H (the
-  interior), and the fraction over all particles is reported beside it. In a
-  disordered fluid the first layer under the surface still passes that count
-  while its support is cut by the surface, so it reads a few per cent low even
-  in a good incompressible bake; ``density_within_3pct_fraction_deep`` counts
-  only interior particles whose fluid neighbours within H are all interior too
-  (at least about one support below any surface), which separates the solver's
-  density error from kernel truncation. Both are reported; the first stays the
-  headline figure.
-- **Kinetic energy** of A and B: 1/2 m sum |v|^2 in joules with m = rho0 d^3.
+- **Chamfer distance** of A and B, in metres and in particle spacings d;
+- **Density of B** with the SPH estimator, over the interior and the deep interior
+  and beside it over all particles, with the boundary particles of the world at
+  that time. When the scene cannot be rebuilt (no ``--scene`` and no usable path
+  in the manifest) the boundary term is missing and the result says so
+  (``density_includes_boundary`` false). The deep-interior fraction separates
+  the solver's density error from kernel truncation at the surface; the
+  interior fraction stays the headline figure;
+- **Kinetic energy** of A and B in joules;
 - **Penetration**: particles of B inside a collider at that frame's time, by
   the generalised winding number (engine.geometry.inside_mesh); needs the
   scene. Reported as null when the scene cannot be rebuilt.
@@ -48,102 +25,19 @@ import sys
 from pathlib import Path
 
 import numpy as np
-from scipy.spatial import cKDTree
 
 from .cache import open_cache
 from .errors import SplashdraftError
-from .kernels import kernel
-
-#: Neighbours within H = 2 d (fluid + boundary, self excluded) for a particle to count as interior.
-#: A full cubic-lattice neighbourhood has 26 (physics-references.md section 1); a flat free surface ~17.
-FULL_SUPPORT_NEIGHBOURS = 22
-
-#: Support radius of the density estimator, in particle spacings.
-DENSITY_SUPPORT_SPACINGS = 2.0
-
-#: Relative density band counted as "within tolerance".
-DENSITY_BAND = 0.03
-
-
-def chamfer_distance(points_a, points_b):
-    """Symmetric mean nearest-neighbour distance (unsquared), see the module docstring.
-
-    Args:
-        points_a: (Na, 3) float positions in metres.
-        points_b: (Nb, 3) float positions in metres.
-
-    Returns:
-        (cd, mean_a_to_b, mean_b_to_a) in metres. Both empty -> zeros; exactly
-        one empty -> inf.
-    """
-    a = np.asarray(points_a, np.float64).reshape(-1, 3)
-    b = np.asarray(points_b, np.float64).reshape(-1, 3)
-    if len(a) == 0 and len(b) == 0:
-        return 0.0, 0.0, 0.0
-    if len(a) == 0 or len(b) == 0:
-        return float("inf"), float("inf"), float("inf")
-    a_to_b = cKDTree(b).query(a, k=1, workers=2)[0].mean()
-    b_to_a = cKDTree(a).query(b, k=1, workers=2)[0].mean()
-    return 0.5 * (a_to_b + b_to_a), float(a_to_b), float(b_to_a)
-
-
-def sph_density(positions, particle_spacing, rest_density, boundary_positions=None, boundary_volumes=None,
-                with_pairs=False):
-    """SPH density estimate and neighbour counts (see the module docstring).
-
-    Args:
-        positions: (N, 3) float fluid positions, m.
-        particle_spacing: d in m; H = 2 d, m = rho0 d^3.
-        rest_density: rho0 in kg/m^3.
-        boundary_positions: optional (B, 3) boundary particle positions, m.
-        boundary_volumes: optional (B,) Akinci volumes V_b, m^3.
-        with_pairs: also return the fluid pairs within H.
-
-    Returns:
-        density (N,) float64 kg/m^3 and neighbour counts (N,) int64 (fluid +
-        boundary within H, self excluded); with ``with_pairs``, also the fluid
-        pairs within H ((P, 2) int, i < j).
-    """
-    positions = np.asarray(positions, np.float64).reshape(-1, 3)
-    n = len(positions)
-    if n == 0:
-        empty = (np.zeros(0), np.zeros(0, np.int64))
-        return empty + (np.zeros((0, 2), np.int64),) if with_pairs else empty
-    support = DENSITY_SUPPORT_SPACINGS * particle_spacing
-    mass = rest_density * particle_spacing**3
-    tree = cKDTree(positions)
-    pairs = tree.query_pairs(support * (1 - 1e-12), output_type="ndarray")
-    w = kernel(np.linalg.norm(positions[pairs[:, 0]] - positions[pairs[:, 1]], axis=1), support)
-    total = np.full(n, kernel(0.0, support))
-    total += np.bincount(pairs[:, 0], w, n) + np.bincount(pairs[:, 1], w, n)
-    counts = np.bincount(pairs[:, 0], minlength=n) + np.bincount(pairs[:, 1], minlength=n)
-    density = mass * total
-    if boundary_positions is not None and len(boundary_positions):
-        bpos = np.asarray(boundary_positions, np.float64).reshape(-1, 3)
-        bvol = np.asarray(boundary_volumes, np.float64).reshape(-1)
-        sparse = tree.sparse_distance_matrix(cKDTree(bpos), support * (1 - 1e-12), output_type="ndarray")
-        rows, cols, dist = sparse["i"], sparse["j"], sparse["v"]
-        density += rest_density * np.bincount(rows, bvol[cols] * kernel(dist, support), n)
-        counts = counts + np.bincount(rows, minlength=n)
-    if with_pairs:
-        return density, counts.astype(np.int64), pairs
-    return density, counts.astype(np.int64)
-
-
-def deep_interior(interior, pairs):
-    """(N,) bool: interior particles whose fluid neighbours (``pairs``, i < j) are all interior."""
-    interior = np.asarray(interior, bool)
-    n = len(interior)
-    outer = (~interior).astype(np.int64)
-    touches_outer = np.bincount(pairs[:, 0], outer[pairs[:, 1]], n) + np.bincount(pairs[:, 1], outer[pairs[:, 0]], n)
-    return interior & (touches_outer == 0)
-
-
-def kinetic_energy(velocities, particle_spacing, rest_density):
-    """1/2 m sum |v|^2 in joules, m = rho0 d^3. velocities: (N, 3) m/s."""
-    v = np.asarray(velocities, np.float64).reshape(-1, 3)
-    return 0.5 * rest_density * particle_spacing**3 * float(np.einsum("ij,ij->", v, v))
-
+from .measures import (
+    DENSITY_BAND,
+    DENSITY_SUPPORT_SPACINGS,
+    FULL_SUPPORT_NEIGHBOURS,
+    chamfer_distance,
+    deep_interior,
+    interior_mask,
+    kinetic_energy,
+    sph_density,
+)
 
 def _collider_meshes(world, time):
     """List of (vertices, triangles) of the world's colliders at ``time``.
@@ -245,6 +139,7 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
             "compare bakes of the same scene at the same spacing"
         )
     rest_density = float(cache_b.manifest.get("rest_density", 1000.0))
+    mass = rest_density * spacing**3
     common = sorted(set(cache_a.frames) & set(cache_b.frames))
     if frames is not None:
         wanted = sorted(set(int(f) for f in frames))
@@ -273,7 +168,7 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
             boundary.volumes if boundary is not None else None, with_pairs=True,
         )
         deviation = density / rest_density - 1.0
-        interior = counts >= FULL_SUPPORT_NEIGHBOURS
+        interior = interior_mask(counts)
         deep = deep_interior(interior, pairs)
         within = np.abs(deviation) <= DENSITY_BAND
         rows.append({
@@ -292,8 +187,8 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
             "density_within_3pct_fraction_deep": float(within[deep].mean()) if deep.any() else None,
             "density_mean_deviation_interior": float(deviation[interior].mean()) if interior.any() else None,
             "density_max_deviation_interior": float(np.abs(deviation[interior]).max()) if interior.any() else None,
-            "kinetic_energy_a_j": kinetic_energy(fa["velocities"], spacing, rest_density),
-            "kinetic_energy_b_j": kinetic_energy(fb["velocities"], spacing, rest_density),
+            "kinetic_energy_a_j": kinetic_energy(fa["velocities"], mass),
+            "kinetic_energy_b_j": kinetic_energy(fb["velocities"], mass),
             "penetrating_particles": count_penetrating(fb["positions"], world, time) if world is not None else None,
             "energy_a": _audit(cache_a, frame),
             "energy_b": _audit(cache_b, frame),
@@ -382,7 +277,7 @@ def write_plot(result, path):
         matplotlib.use("Agg")
         import matplotlib.pyplot as plt
     except ImportError:
-        from .learned.pngplot import line_plot_png
+        from .pngplot import line_plot_png
 
         line_plot_png([("chamfer (spacings)", frames, chamfer)], path, x_label="frame", y_label="chamfer d")
         return

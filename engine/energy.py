@@ -30,6 +30,8 @@ import dataclasses
 
 import numpy as np
 
+from .measures import kinetic_energy, potential_energy
+
 EMITTED = "energy.emitted_j"
 REMOVED = "energy.removed_j"
 OVER_REMOVED = "energy.over_removed"
@@ -63,12 +65,8 @@ def specific_energy(positions, velocities, gravity, datum):
 
 
 def energy_parts(positions, velocities, mass, gravity, datum):
-    """(kinetic, potential) energy in J of particles of equal ``mass``."""
-    down, offset = datum
-    g = float(np.linalg.norm(gravity))
-    kinetic = 0.5 * mass * float(np.einsum("ij,ij->", velocities, velocities))
-    potential = mass * g * float(np.sum(offset - positions @ down)) if len(positions) else 0.0
-    return kinetic, potential
+    """(kinetic, potential) energy in J of particles of equal ``mass`` (``engine.measures``)."""
+    return kinetic_energy(velocities, mass), potential_energy(positions, mass, gravity, datum)
 
 
 def ceiling(world):

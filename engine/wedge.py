@@ -397,7 +397,7 @@ def render_tile(positions, velocities, lower, upper, size=(240, 180), spacing=No
 
 def write_contact_sheet(manifest, frame, path, columns=None):
     """One tile per variant at ``frame`` (a grey tile with 'no frame' where it is missing); returns the path."""
-    from .learned.pngplot import _text, png_bytes
+    from .pngplot import _text, png_bytes
 
     variants = manifest["variants"]
     columns = columns or int(np.ceil(np.sqrt(len(variants))))

@@ -19,16 +19,17 @@ import pytest
 from scipy.spatial.distance import cdist
 
 from engine.cache import CacheWriter
-from engine.compare import (
+from engine.compare import compare_caches, main_compare
+from engine.errors import SplashdraftError
+from engine.measures import (
     FULL_SUPPORT_NEIGHBOURS,
     chamfer_distance,
-    compare_caches,
     deep_interior,
+    interior_mask,
     kinetic_energy,
-    main_compare,
+    potential_energy,
     sph_density,
 )
-from engine.errors import SplashdraftError
 
 
 def brute_chamfer(a, b):
@@ -123,7 +124,20 @@ def test_sph_density_matches_a_per_particle_loop():
 def test_kinetic_energy_is_half_m_v_squared():
     """Definition: 1/2 m |v|^2 with m = rho0 d^3 (exact arithmetic check)."""
     v = np.array([[1.0, 0, 0], [0, 2.0, 0]])
-    assert kinetic_energy(v, 0.1, 1000.0) == pytest.approx(0.5 * 1.0 * 5.0)
+    assert kinetic_energy(v, 1000.0 * 0.1**3) == pytest.approx(0.5 * 1.0 * 5.0)
+
+
+def test_potential_energy_is_m_g_h():
+    """Definition: m |g| sum h, h = offset - down . x (here down = -z, datum at z = 0: h = z)."""
+    x = np.array([[0.0, 0, 0.5], [3.0, 1.0, 2.0]])
+    datum = (np.array([0.0, 0.0, -1.0]), 0.0)
+    assert potential_energy(x, 2.0, [0.0, 0.0, -9.81], datum) == pytest.approx(2.0 * 9.81 * 2.5)
+    assert potential_energy(np.zeros((0, 3)), 2.0, [0.0, 0.0, -9.81], datum) == 0.0
+
+
+def test_interior_is_a_full_support_count():
+    """The interior is the particles with at least FULL_SUPPORT_NEIGHBOURS neighbours (26 on a cubic lattice)."""
+    assert interior_mask([FULL_SUPPORT_NEIGHBOURS - 1, FULL_SUPPORT_NEIGHBOURS, 26]).tolist() == [False, True, True]
 
 
 def _write_cache(folder, frames, spacing=0.02):

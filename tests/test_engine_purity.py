@@ -35,3 +35,44 @@ def test_no_engine_source_mentions_bpy_import():
         if "import bpy" in p.read_text(encoding="utf-8")
     ]
     assert offenders == []
+
+
+#: The commands: they use the solvers, the caches and the measures; no module below them imports them.
+COMMANDS = {"engine.bake", "engine.cli", "engine.compare", "engine.demo", "engine.estimate", "engine.farm",
+            "engine.validate", "engine.wedge", "engine.solvers"}
+
+
+def _engine_imports(path):
+    """Engine modules imported anywhere in ``path`` (module level or inside functions), as dotted names."""
+    import ast
+
+    module = ".".join(path.relative_to(ROOT).with_suffix("").parts)
+    package = module if path.name == "__init__.py" else module.rpartition(".")[0]
+    found = set()
+    for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        if isinstance(node, ast.Import):
+            found.update(alias.name for alias in node.names)
+        elif isinstance(node, ast.ImportFrom):
+            base = package.split(".")
+            base = base[: len(base) - node.level + 1] if node.level else []
+            name = ".".join(base + ([node.module] if node.module else []))
+            found.add(name)
+            found.update(f"{name}.{alias.name}" for alias in node.names)
+    return {name for name in found if name == "engine" or name.startswith("engine.")}
+
+
+def test_no_import_climbs_the_layers():
+    """The learned preview and the shared measures import no command module; compare imports no solver.
+
+    Source: issue 15 ("no import climbs up the layers") and docs/style.md ("each layer uses only
+    the layers below it").
+    """
+    climbs = []
+    for path in sorted((ROOT / "engine").rglob("*.py")):
+        module = ".".join(path.relative_to(ROOT).with_suffix("").parts)
+        imported = _engine_imports(path)
+        if module.startswith("engine.learned") or module in ("engine.measures", "engine.pngplot", "engine.kernels"):
+            climbs += [f"{module} -> {name}" for name in sorted(imported & COMMANDS)]
+        if module == "engine.compare":
+            climbs += [f"{module} -> {name}" for name in sorted(imported) if name.startswith("engine.learned")]
+    assert climbs == []

@@ -9,7 +9,7 @@ Sources:
   Techniques in Coastal Engineering", ch. 3 [confirmed citation]).
 - Neighbour tables: brute-force oracle (scipy.spatial.distance.cdist).
 - Density feature: SPH estimator of Monaghan 1992 (ARA&A 30:543) evaluated independently by
-  engine.compare.sph_density (pair sums by query_pairs) -- a second implementation.
+  engine.measures.sph_density (pair sums by query_pairs) -- a second implementation.
 - Semi-implicit Euler under constant acceleration has the closed form
   x_n = x_0 + n dt v_0 + dt^2 a n (n + 1) / 2 (exact arithmetic of the scheme, common practice).
 - Rollout checks of the shipped model: see each test's docstring for the tolerance.
@@ -24,7 +24,8 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
 
-from engine.compare import chamfer_distance, count_penetrating, sph_density
+from engine.compare import count_penetrating
+from engine.measures import chamfer_distance, sph_density
 from engine.errors import ModelError
 from engine.learned import LearnedSolver, default_model_path, features
 from engine.learned.contract import load_contract
@@ -211,7 +212,7 @@ def test_time_estimate_counts_the_learned_steps_the_bake_takes(tmp_path):
 
 
 def test_density_feature_matches_the_independent_sph_sum():
-    """The density ratio feature equals engine.compare.sph_density / rho0 (second implementation),
+    """The density ratio feature equals engine.measures.sph_density / rho0 (second implementation),
     fluid + boundary. Tolerance 1e-9: same formula, float64 in both."""
     rng = np.random.default_rng(4)
     d = 0.02
@@ -394,7 +395,7 @@ def test_shipped_model_stays_near_the_reference_on_a_small_drop(rollout):
 #   Ours keeps only compression (C_i >= 0, common practice) and adds the boundary term of
 #   Akinci et al. 2012, "Versatile Rigid-Fluid Coupling for Incompressible SPH", ACM TOG 31(4)
 #   [confirmed citation; form of the position term from memory].
-# - Densities after relaxation are measured with engine.compare.sph_density, a second
+# - Densities after relaxation are measured with engine.measures.sph_density, a second
 #   implementation (pair sums by query_pairs), never with relax's own sums.
 # - Cubic lattice at spacing d: sum_j W(|j| d, 2 d) d^3 = 0.99997 (Monaghan 1992 normalisation,
 #   evaluated in test_relaxation_leaves_a_lattice_at_rest_unchanged).

@@ -37,7 +37,7 @@ from engine.cache import write_atomic
 from engine.errors import SplashdraftError
 from engine.learned import contract as contract_module
 from engine.learned import features
-from engine.learned.pngplot import line_plot_png
+from engine.pngplot import line_plot_png
 
 from . import dataset
 

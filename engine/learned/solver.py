@@ -323,7 +323,7 @@ class LearnedSolver:
 
     def frame_attributes(self, state, world):
         """``density`` (kg/m^3, SPH estimate) and ``pressure`` (Pa, equation-of-state estimate) per particle."""
-        from ..compare import sph_density
+        from ..measures import sph_density
 
         boundary = world.boundary_at(state.time)
         density, _ = sph_density(state.positions, world.particle_spacing, world.rest_density,

@@ -15,7 +15,7 @@ import zlib
 
 import numpy as np
 
-from ..errors import SplashdraftError
+from .errors import SplashdraftError
 
 # 3x5 glyphs, rows top to bottom, 3 bits each (MSB = left column).
 _FONT = {
