@@ -76,7 +76,7 @@ def substep_inputs(count, warmup):
     world = block_world(count)
     solver = make_solver("sph")
     state = solver.start(world)
-    dt = world.scene.solver.max_time_step
+    dt = world.solver_settings.max_time_step
     for step in range(1, warmup + 1):
         state, _ = solver.advance(state, world, step * dt)
     params = solver._params

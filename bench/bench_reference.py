@@ -48,7 +48,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 from engine.boundary import make_boundary, sample_box_walls  # noqa: E402
 from engine.solvers import make_solver  # noqa: E402
-from engine.validate import WALL_GAP, BoxWorld, case_scene, lattice  # noqa: E402
+from engine.validate import WALL_GAP, BoxWorld, lattice  # noqa: E402
 
 PLY_PROPERTIES = ("x", "y", "z", "vx", "vy", "vz", "id", "density", "pressure")
 
@@ -79,7 +79,7 @@ def block_world(count, spacing=0.02, shape="cube", layers=20):
     faces = {"x_min": "wall", "x_max": "wall", "y_min": "wall", "y_max": "wall", "z_min": "wall", "z_max": "open"}
     points, normals = sample_box_walls((0.0, 0.0, 0.0), (width, depth, height + 4 * spacing), spacing, faces)
     boundary = make_boundary(points, normals, 2.0 * spacing)
-    return BoxWorld(case_scene(spacing), positions, np.zeros_like(positions), boundary)
+    return BoxWorld(positions, np.zeros_like(positions), boundary, spacing)
 
 
 def write_ply(path, state, attributes):
@@ -118,7 +118,7 @@ def run_size(count, substeps, warmup, shape="cube", layers=20):
     world = block_world(count, shape=shape, layers=layers)
     solver = make_solver("sph")
     state = solver.start(world)
-    dt = world.scene.solver.max_time_step
+    dt = world.solver_settings.max_time_step
     t = 0.0
     for _ in range(warmup):
         t += dt

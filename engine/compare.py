@@ -28,6 +28,7 @@ import numpy as np
 
 from .cache import open_cache
 from .errors import SplashdraftError
+from .kernels import particle_mass
 from .measures import (
     DENSITY_BAND,
     DENSITY_SUPPORT_SPACINGS,
@@ -139,7 +140,7 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
             "compare bakes of the same scene at the same spacing"
         )
     rest_density = float(cache_b.manifest.get("rest_density", 1000.0))
-    mass = rest_density * spacing**3
+    mass = particle_mass(rest_density, spacing)
     common = sorted(set(cache_a.frames) & set(cache_b.frames))
     if frames is not None:
         wanted = sorted(set(int(f) for f in frames))

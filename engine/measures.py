@@ -29,14 +29,14 @@
 import numpy as np
 from scipy.spatial import cKDTree
 
-from .kernels import kernel
+from .kernels import SUPPORT_SPACINGS, kernel, particle_mass, support_radius
 
 #: Neighbours within H = 2 d (fluid + boundary, self excluded) for a particle to count as interior.
 #: A full cubic-lattice neighbourhood has 26 (physics-references.md section 1); a flat free surface ~17.
 FULL_SUPPORT_NEIGHBOURS = 22
 
-#: Support radius of the density estimator, in particle spacings.
-DENSITY_SUPPORT_SPACINGS = 2.0
+#: Support radius of the density estimator, in particle spacings (the solvers' H).
+DENSITY_SUPPORT_SPACINGS = SUPPORT_SPACINGS
 
 #: Relative density band counted as "within tolerance".
 DENSITY_BAND = 0.03
@@ -86,8 +86,8 @@ def sph_density(positions, particle_spacing, rest_density, boundary_positions=No
     if n == 0:
         empty = (np.zeros(0), np.zeros(0, np.int64))
         return empty + (np.zeros((0, 2), np.int64),) if with_pairs else empty
-    support = DENSITY_SUPPORT_SPACINGS * particle_spacing
-    mass = rest_density * particle_spacing**3
+    support = support_radius(particle_spacing)
+    mass = particle_mass(rest_density, particle_spacing)
     tree = cKDTree(positions)
     pairs = tree.query_pairs(support * (1 - 1e-12), output_type="ndarray")
     w = kernel(np.linalg.norm(positions[pairs[:, 0]] - positions[pairs[:, 1]], axis=1), support)

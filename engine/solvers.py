@@ -9,6 +9,7 @@ does not load onnxruntime.
 """
 
 from .errors import UsageError
+from .protocols import Solver
 from .learned.contract import check_folder, default_model_path, find_model, load_contract, shipped_models_dir
 
 SOLVER_NAMES = ("sph", "learned")
@@ -16,7 +17,7 @@ SOLVER_NAMES = ("sph", "learned")
 __all__ = ["SOLVER_NAMES", "make_solver", "check_model_option", "model_contract", "find_model", "installed_models"]
 
 
-def make_solver(name, **options):
+def make_solver(name, **options) -> Solver:
     """A fresh solver called ``name``, its module imported here.
 
     Args:

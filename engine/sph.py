@@ -77,7 +77,7 @@ import scipy.sparse as sparse
 
 from .boundary import empty_boundary
 from .errors import SceneError, SolverError
-from .kernels import kernel, kernel_terms
+from .kernels import kernel, kernel_terms, particle_mass, support_radius
 from .neighbours import SkinPairs
 
 KAPPA = "sph_kappa"
@@ -109,7 +109,7 @@ def _products(pairs):
 
 @dataclass(frozen=True)
 class SphParams:
-    """Resolved solver parameters (SI units). Build with ``make_params`` or ``params_from_scene``.
+    """Resolved solver parameters (SI units). Build with ``make_params`` or ``params_from_world``.
 
     Attributes:
         particle_spacing: lattice spacing d in metres; H = 2 d, m = rho0 d^3.
@@ -138,11 +138,11 @@ class SphParams:
 
     @property
     def support_radius(self):
-        return 2.0 * self.particle_spacing
+        return support_radius(self.particle_spacing)
 
     @property
     def particle_mass(self):
-        return self.rest_density * self.particle_spacing**3
+        return particle_mass(self.rest_density, self.particle_spacing)
 
     @property
     def max_speed(self):
@@ -253,19 +253,19 @@ def make_params(particle_spacing, *, rest_density=1000.0, viscosity=0.02, gravit
     iterations = int(max_iterations)
     if iterations < 2 or iterations != max_iterations:
         raise SceneError(f"solver.max_iterations: must be an integer >= 2, got {max_iterations!r}")
-    skin = DEFAULT_SKIN_FRACTION * 2.0 * spacing if neighbour_skin is None else float(neighbour_skin)
+    skin = DEFAULT_SKIN_FRACTION * support_radius(spacing) if neighbour_skin is None else float(neighbour_skin)
     if not math.isfinite(skin) or skin < 0:
         raise SceneError(f"neighbour_skin: must be >= 0 metres, got {neighbour_skin!r}")
     return SphParams(viscosity=viscosity, gravity=gravity, max_iterations=iterations,
                      neighbour_skin=skin, **values)
 
 
-def params_from_scene(scene, neighbour_skin=None):
-    """SphParams from a parsed scene (``engine.scene``): spacing, fluid, gravity, solver."""
-    solver = scene.solver
+def params_from_world(world, neighbour_skin=None):
+    """SphParams from a world (``engine.world.World`` or a validation case): spacing, fluid, gravity, solver."""
+    solver = world.solver_settings
     return make_params(
-        scene.particle_spacing, rest_density=scene.fluid.rest_density, viscosity=scene.fluid.viscosity,
-        gravity=scene.gravity, cfl_factor=solver.cfl_factor, max_time_step=solver.max_time_step,
+        world.particle_spacing, rest_density=world.rest_density, viscosity=world.viscosity,
+        gravity=world.gravity, cfl_factor=solver.cfl_factor, max_time_step=solver.max_time_step,
         min_time_step=solver.min_time_step, density_tolerance=solver.density_tolerance,
         divergence_tolerance=solver.divergence_tolerance, max_iterations=solver.max_iterations,
         neighbour_skin=neighbour_skin)
@@ -686,13 +686,13 @@ class SphSolver:
     def __init__(self, neighbour_skin=None):
         self._skin = neighbour_skin
         self._params = None
-        self._scene = None
+        self._world = None
         self._pairs = None
 
     def _params_for(self, world):
-        if self._params is None or self._scene is not world.scene:
-            self._params = params_from_scene(world.scene, self._skin)
-            self._scene = world.scene
+        if self._params is None or self._world is not world:
+            self._params = params_from_world(world, self._skin)
+            self._world = world
             self._pairs = SkinPairs(self._params.support_radius, self._params.neighbour_skin)
         return self._params
 

@@ -16,14 +16,15 @@ compressed.
 import dataclasses
 import math
 import time
-from types import SimpleNamespace
 
 import numpy as np
 
 from .boundary import make_boundary, sample_box_walls
 from .errors import SplashdraftError
+from .kernels import particle_mass, support_radius
+from .scene import DEFAULT_GRAVITY, Fluid, SolverSettings
 from .solvers import make_solver
-from .sph import sph_density
+from .sph import params_from_world, sph_density
 from .state import State
 
 #: Distance, in particle spacings, from a wall-sample plane to the first fluid layer.
@@ -33,14 +34,28 @@ CASES = ("hydrostatic", "dam-break", "sloshing")
 
 
 class BoxWorld:
-    """The part of the World interface the solver needs, for a fixed box.
+    """A world for a fixed box: what a solver reads from ``engine.world.World`` (``SolverWorld``), no scene.
 
     No emitters; ``enforce_bounds`` changes nothing, so a particle that leaves
     the box is counted by the case instead of being put back.
+
+    Args:
+        positions, velocities: (N, 3) float64 m and m/s at t = 0.
+        boundary: the box walls' ``engine.boundary.BoundaryParticles``.
+        particle_spacing: d in metres; H and m follow from it (``engine.kernels``).
+        rest_density: rho0 in kg/m^3. viscosity: XSPH coefficient. gravity: (3,) m/s^2.
+        solver_settings: ``engine.scene.SolverSettings`` (default: the scene format's defaults).
     """
 
-    def __init__(self, scene, positions, velocities, boundary):
-        self.scene = scene
+    def __init__(self, positions, velocities, boundary, particle_spacing, *, rest_density=Fluid.rest_density,
+                 viscosity=Fluid.viscosity, gravity=DEFAULT_GRAVITY, solver_settings=SolverSettings()):
+        self.particle_spacing = float(particle_spacing)
+        self.support_radius = support_radius(self.particle_spacing)
+        self.particle_mass = particle_mass(rest_density, self.particle_spacing)
+        self.rest_density = float(rest_density)
+        self.viscosity = float(viscosity)
+        self.gravity = np.asarray(gravity, np.float64)
+        self.solver_settings = solver_settings
         self._positions = np.asarray(positions, np.float64)
         self._velocities = np.asarray(velocities, np.float64)
         self._boundary = boundary
@@ -58,16 +73,6 @@ class BoxWorld:
 
     def enforce_bounds(self, state, previous=None):
         return state
-
-
-def case_scene(spacing, *, viscosity=0.02, max_time_step=0.004, cfl_factor=0.4, density_tolerance=0.0005,
-               divergence_tolerance=0.001, gravity=(0.0, 0.0, -9.81), rest_density=1000.0):
-    """The scene fields ``engine.sph.params_from_scene`` reads, with the scene-format defaults."""
-    solver = SimpleNamespace(cfl_factor=cfl_factor, max_time_step=max_time_step, min_time_step=1e-5,
-                             density_tolerance=density_tolerance, divergence_tolerance=divergence_tolerance,
-                             max_iterations=100)
-    return SimpleNamespace(particle_spacing=spacing, gravity=tuple(gravity), solver=solver,
-                           fluid=SimpleNamespace(rest_density=rest_density, viscosity=viscosity))
 
 
 def lattice(counts, spacing, origin):
@@ -127,25 +132,25 @@ def hydrostatic(progress=None, columns=12, layers=24, spacing=0.02, settle_time=
     upper = (width, width, gap + (layers + 8) * spacing)
     faces = {"x_min": "wall", "x_max": "wall", "y_min": "wall", "y_max": "wall", "z_min": "wall", "z_max": "open"}
     wall_points, wall_normals = sample_box_walls((0.0, 0.0, 0.0), upper, spacing, faces)
-    support = 2.0 * spacing
+    support = support_radius(spacing)
     boundary = make_boundary(wall_points, wall_normals, support)
-    scene = case_scene(spacing, viscosity=0.05, max_time_step=0.002, density_tolerance=density_tolerance)
-    world = BoxWorld(scene, positions, np.zeros_like(positions), boundary)
+    world = BoxWorld(positions, np.zeros_like(positions), boundary, spacing, viscosity=0.05,
+                     solver_settings=SolverSettings(max_time_step=0.002, density_tolerance=density_tolerance))
     solver = make_solver("sph")
     state = solver.start(world)
-    rho0, g = scene.fluid.rest_density, abs(scene.gravity[2])
+    rho0, g = world.rest_density, abs(world.gravity[2])
     top_count = columns * columns
 
     def column_height(points):
         return float(np.mean(np.sort(points[:, 2])[-top_count:]))
 
     height0 = column_height(state.positions)
-    mass = scene.fluid.rest_density * spacing**3
-    volume0 = float(np.sum(mass / sph_density(state.positions, boundary, solver._params_for(world))))
+    mass = world.particle_mass
+    volume0 = float(np.sum(mass / sph_density(state.positions, boundary, params_from_world(world))))
     frame = 0.02
     chunks = int(round(settle_time / frame))
     average_chunks = int(round(average_time / frame))
-    step = scene.solver.max_time_step
+    step = world.solver_settings.max_time_step
     _progress_start(progress, chunks, state.count)
     half_chunk = chunks // 2
     volume_half = None
@@ -312,12 +317,11 @@ def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45):
     upper = (8.0 * a, slab_layers * spacing + offset, 3.0 * a)
     faces = {"x_min": "wall", "x_max": "wall", "y_min": "wall", "y_max": "wall", "z_min": "wall", "z_max": "open"}
     wall_points, wall_normals = sample_box_walls(lower, upper, spacing, faces)
-    boundary = make_boundary(wall_points, wall_normals, 2.0 * spacing)
-    scene = case_scene(spacing)
-    world = BoxWorld(scene, positions, np.zeros_like(positions), boundary)
+    boundary = make_boundary(wall_points, wall_normals, support_radius(spacing))
+    world = BoxWorld(positions, np.zeros_like(positions), boundary, spacing)
     solver = make_solver("sph")
     state = solver.start(world)
-    g = abs(scene.gravity[2])
+    g = abs(world.gravity[2])
     time_scale = n_factor * math.sqrt(g / a)
     t_end = t_max_scaled / time_scale
     sample = 0.005
@@ -415,9 +419,8 @@ def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01,
     upper = (2 * gap + (nx - 1) * spacing, 2 * gap + (width_layers - 1) * spacing, gap + (nz + 10) * spacing)
     faces = {"x_min": "wall", "x_max": "wall", "y_min": "wall", "y_max": "wall", "z_min": "wall", "z_max": "open"}
     wall_points, wall_normals = sample_box_walls(lower, upper, spacing, faces)
-    boundary = make_boundary(wall_points, wall_normals, 2.0 * spacing)
-    scene = case_scene(spacing)
-    g = abs(scene.gravity[2])
+    boundary = make_boundary(wall_points, wall_normals, support_radius(spacing))
+    g = abs(DEFAULT_GRAVITY[2])
     tank_length, tank_depth = nx * spacing, nz * spacing
     k = math.pi / tank_length
     omega = math.sqrt(g * k * math.tanh(k * tank_depth))
@@ -427,7 +430,7 @@ def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01,
     scale = amplitude * omega / math.sinh(k * tank_depth)
     velocities[:, 0] = -scale * np.sin(k * x) * np.cosh(k * (z + tank_depth))
     velocities[:, 2] = scale * np.cos(k * x) * np.sinh(k * (z + tank_depth))
-    world = BoxWorld(scene, positions, velocities, boundary)
+    world = BoxWorld(positions, velocities, boundary, spacing)
     solver = make_solver("sph")
     state = solver.start(world)
     period = 2.0 * math.pi / omega

@@ -1,7 +1,8 @@
 """From a validated Scene to the run-time arrays every solver uses.
 
 ``build_world(scene)`` resolves everything once: the support radius
-H = 2 * spacing, the particle mass rest_density * spacing^3, the fill
+H = 2 * spacing and the particle mass rest_density * spacing^3 (``engine.kernels``),
+the fluid's viscosity and the solver settings the solvers read, the fill
 particles, the stream lattices, and the boundary particles of the bounds walls
 and colliders (Akinci et al. 2012 boundary volumes from ``engine.boundary``).
 The ``World`` then answers, at any time t:
@@ -39,7 +40,7 @@ from scipy.spatial import cKDTree
 from . import energy
 from .boundary import FACE_NAMES, BoundaryParticles, boundary_volumes, sample_box_walls
 from .errors import SceneError
-from .kernels import kernel
+from .kernels import kernel, particle_mass, support_radius
 from .geometry import (evaluate_surface, inside_closed_mesh, push_out, sample_surface, sample_volume,
                        signed_volume, triangle_corners)
 from .scene import FillEmitter, StreamEmitter
@@ -275,10 +276,12 @@ class World:
 
     scene: object
     particle_spacing: float
-    support_radius: float  # H = 2 * spacing, metres
-    particle_mass: float  # kg
+    support_radius: float  # H = 2 * spacing, metres (engine.kernels.support_radius)
+    particle_mass: float  # kg (engine.kernels.particle_mass)
     rest_density: float
     gravity: np.ndarray
+    viscosity: float  # XSPH coefficient (the scene's fluid.viscosity)
+    solver_settings: object  # engine.scene.SolverSettings: the time-step and solve settings, with their defaults
     contact_margin: float  # metres
     lower: np.ndarray
     upper: np.ndarray
@@ -592,17 +595,17 @@ def build_world(scene, contact_margin=None):
         SceneError: a fill emitter's mesh holds no lattice point at this spacing.
     """
     spacing = scene.particle_spacing
-    support_radius = 2.0 * spacing
+    support = support_radius(spacing)
     lower, upper = scene.bounds.lower, scene.bounds.upper
     wall_positions, wall_normals = sample_box_walls(lower, upper, spacing, scene.bounds.faces)
-    wall_volumes = boundary_volumes(wall_positions, support_radius)
-    colliders = tuple(_resolve_collider(c, spacing, support_radius) for c in scene.colliders)
+    wall_volumes = boundary_volumes(wall_positions, support)
+    colliders = tuple(_resolve_collider(c, spacing, support) for c in scene.colliders)
     streams = tuple(_resolve_stream(e, scene) for e in scene.emitters if isinstance(e, StreamEmitter))
-    positions, velocities, counts = _fill(scene, colliders, support_radius)
+    positions, velocities, counts = _fill(scene, colliders, support)
     return World(
-        scene=scene, particle_spacing=spacing, support_radius=support_radius,
-        particle_mass=scene.fluid.rest_density * spacing**3, rest_density=scene.fluid.rest_density,
-        gravity=np.asarray(scene.gravity, np.float64),
+        scene=scene, particle_spacing=spacing, support_radius=support,
+        particle_mass=particle_mass(scene.fluid.rest_density, spacing), rest_density=scene.fluid.rest_density,
+        gravity=np.asarray(scene.gravity, np.float64), viscosity=scene.fluid.viscosity, solver_settings=scene.solver,
         contact_margin=CONTACT_MARGIN * spacing if contact_margin is None else float(contact_margin),
         lower=lower, upper=upper, wall_positions=wall_positions, wall_normals=wall_normals, wall_volumes=wall_volumes,
         colliders=colliders, streams=streams, initial_positions=positions, initial_velocities=velocities,

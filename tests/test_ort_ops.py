@@ -37,7 +37,7 @@ def substep():
     world = block_world(1728)
     solver = SphSolver()
     state = solver.start(world)
-    dt = world.scene.solver.max_time_step
+    dt = world.solver_settings.max_time_step
     for step in range(1, 4):
         state, _ = solver.advance(state, world, step * dt)
     params = solver._params

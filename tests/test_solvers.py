@@ -10,6 +10,7 @@ import json
 import math
 import shutil
 
+import numpy as np
 import pytest
 
 from engine.cli import main
@@ -17,7 +18,11 @@ from engine.errors import EXIT_CODES, ModelError, UsageError
 from engine.learned import LearnedSolver
 from engine.learned.contract import DEFAULT_MODEL_NAME, default_model_path
 from engine.solvers import SOLVER_NAMES, installed_models, make_solver
+from engine.protocols import Solver, SolverWorld
+from engine.scene import load_scene
 from engine.sph import SphSolver
+from engine.validate import BoxWorld
+from engine.world import build_world
 from test_bake import write_tiny_scene
 from test_learned import copy_model
 
@@ -93,3 +98,19 @@ def test_demo_takes_a_model(tmp_path, capsys):
     a = json.loads((tmp_path / "a" / "learned" / "manifest.json").read_text())["frames"]
     b = json.loads((tmp_path / "b" / "learned" / "manifest.json").read_text())["frames"]
     assert [a[f]["sha256"] for f in ("1", "2")] == [b[f]["sha256"] for f in ("1", "2")]
+
+
+def test_worlds_and_solvers_meet_their_declared_interfaces(tmp_path):
+    """A shot's World and a validation case's BoxWorld are both SolverWorlds and carry the derived
+    quantities of the particle model: H = 2 d (cubic spline support, Monaghan 1992, "Smoothed Particle
+    Hydrodynamics", ARA&A 30:543, support 2h with h = d) and m = rho0 d^3 (one lattice cell of liquid,
+    common practice); both solvers are Solvers."""
+    scene = load_scene(write_tiny_scene(tmp_path))
+    world = build_world(scene)
+    box = BoxWorld(np.zeros((1, 3)), np.zeros((1, 3)), world.boundary_at(0.0), 0.025, rest_density=997.0)
+    for candidate, spacing, rho0 in ((world, scene.particle_spacing, scene.fluid.rest_density), (box, 0.025, 997.0)):
+        assert isinstance(candidate, SolverWorld)
+        assert candidate.support_radius == 2 * spacing
+        assert candidate.particle_mass == pytest.approx(rho0 * spacing**3, rel=1e-15)
+    assert world.solver_settings == scene.solver and world.viscosity == scene.fluid.viscosity
+    assert all(isinstance(make_solver(name), Solver) for name in SOLVER_NAMES)

@@ -109,7 +109,7 @@ import dataclasses  # noqa: E402
 from engine import sph  # noqa: E402
 from engine.errors import SceneError, SolverError  # noqa: E402
 from engine.state import state_from_arrays, state_to_arrays  # noqa: E402
-from engine.validate import WALL_GAP, BoxWorld, case_scene, lattice  # noqa: E402
+from engine.validate import WALL_GAP, BoxWorld, lattice  # noqa: E402
 
 
 def _cloud_on_moving_floor(seed=0, n=70, spacing=0.02):
@@ -194,7 +194,7 @@ def _small_tank(columns=5, layers=8, spacing=0.02):
     points, normals = sample_box_walls((0, 0, 0), (width, width, gap + (layers + 4) * spacing), spacing, faces)
     boundary = make_boundary(points, normals, 2 * spacing)
     velocities = np.random.default_rng(7).normal(0, 0.05, positions.shape)
-    return BoxWorld(case_scene(spacing), positions, velocities, boundary)
+    return BoxWorld(positions, velocities, boundary, spacing)
 
 
 def test_wall_gap_gives_rest_density():
@@ -202,7 +202,7 @@ def test_wall_gap_gives_rest_density():
     in its first layer (the boundary volumes V_b = 1/sum W stand in for the missing fluid;
     Akinci et al. 2012 [M]). 1 %: the start should not need a pressure kick."""
     world = _small_tank()
-    params = sph.params_from_scene(world.scene)
+    params = sph.params_from_world(world)
     x = world.initial_state().positions
     rho = sph.sph_density(x, world.boundary_at(0.0), params)
     first = x[:, 2] < 1.5 * params.particle_spacing
@@ -309,12 +309,11 @@ def test_droplet_hitting_a_wall_never_comes_back_faster(speed):
     mechanics textbook). A training shot once flung such a particle back at 85 m/s when a
     short impact substep's pressure warm-started a long one (engine.sph.warm_start_kappa)."""
     spacing = 0.025
-    scene = case_scene(spacing, gravity=(0.0, 0.0, 0.0))
     faces = {name: "wall" for name in ("x_min", "x_max", "y_min", "y_max", "z_min", "z_max")}
     wall_points, wall_normals = sample_box_walls((0.0, 0.0, 0.0), (0.5, 0.5, 0.5), spacing, faces)
     boundary = make_boundary(wall_points, wall_normals, 2.0 * spacing)
     start = np.array([[0.25, 0.1, 0.25]])
-    world = BoxWorld(scene, start, np.array([[0.0, -speed, 0.0]]), boundary)
+    world = BoxWorld(start, np.array([[0.0, -speed, 0.0]]), boundary, spacing, gravity=(0.0, 0.0, 0.0))
     solver = sph.SphSolver()
     state = solver.start(world)
     fastest = 0.0

@@ -79,7 +79,7 @@ def test_settled_fill_starts_at_rest_density():
     world = build_world(scene)
     solver = sph.SphSolver()
     raw = world.initial_state()
-    params = sph.params_from_scene(scene)
+    params = sph.params_from_world(world)
     before = sph.sph_density(raw.positions, world.boundary_at(0.0), params)
     after = sph.sph_density(solver.start(world).positions, world.boundary_at(0.0), params)
     assert before.max() > 1.01 * params.rest_density, "the raw lattice must start over-dense at the walls"

@@ -152,7 +152,7 @@ class LearnedSolver:
         """
         warnings = []
         trained = self.contract.get("training", {}).get("viscosity_range") or [0.02, 0.02]
-        viscosity = float(world.scene.fluid.viscosity)
+        viscosity = float(world.viscosity)
         name = self.contract["name"]
         if viscosity > trained[1] + 1e-12:
             warnings.append(
@@ -286,12 +286,12 @@ class LearnedSolver:
     def viscosity_above_training(self, world):
         """How far ``fluid.viscosity`` lies above the highest the model was trained at (0 if not)."""
         trained = self.contract.get("training", {}).get("viscosity_range") or [0.02, 0.02]
-        return max(0.0, float(world.scene.fluid.viscosity) - float(trained[1]))
+        return max(0.0, float(world.viscosity) - float(trained[1]))
 
     def smooth(self, positions, velocities, graph, world, boundary, step, epsilon):
         """``velocities`` after the XSPH smoothing of ``epsilon`` over a learned step (``viscosity``),
         fluid pairs and the step's boundary particles (no-slip, as in the reference)."""
-        solver = world.scene.solver
+        solver = world.solver_settings
         substeps = reference_substeps(velocities, step, world.particle_spacing, solver.cfl_factor,
                                       solver.max_time_step)
         passes = min(APPLICATIONS, substeps)
