@@ -28,7 +28,7 @@ import numpy as np
 
 from .cache import open_cache
 from .errors import SplashdraftError
-from .kernels import particle_mass
+from .particle_model import particle_mass
 from .measures import (
     DENSITY_BAND,
     DENSITY_SUPPORT_SPACINGS,

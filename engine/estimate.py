@@ -34,6 +34,7 @@ import numpy as np
 
 from .cache import FRAME_DTYPE, ply_header
 from .errors import BudgetError
+from .particle_model import cfl_step
 
 #: Rough throughput, particle-substeps per second on one process (overridden by bench/results).
 DEFAULT_THROUGHPUT = {"sph": 6.0e4, "learned": 2.0e5}
@@ -107,8 +108,8 @@ def substeps_per_frame(scene):
     for emitter in scene.emitters:
         speed = max(speed, float(getattr(emitter, "speed", 0.0) or 0.0))
     solver = scene.solver
-    time_step = min(solver.max_time_step, solver.cfl_factor * scene.particle_spacing / speed)
-    time_step = max(time_step, solver.min_time_step)
+    time_step = max(cfl_step(speed, scene.particle_spacing, solver.cfl_factor, solver.max_time_step),
+                    solver.min_time_step)
     return max(1, math.ceil((1.0 / scene.fps) / time_step - 1e-9))
 
 

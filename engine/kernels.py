@@ -13,26 +13,9 @@ Bender, Solenthaler & Teschner 2019, "Smoothed Particle Hydrodynamics
 Techniques for the Physics Based Simulation of Fluids and Solids",
 Eurographics tutorial, arXiv:2009.06944 (form from memory; normalisation
 checked numerically in tests/test_kernels.py).
-
-The particle model's derived quantities live here too, in one place: the support radius
-H = ``SUPPORT_SPACINGS`` * d and the particle mass m = rho0 d^3 of a lattice of spacing d
-(``engine.world.World`` carries them for a shot; the solvers and measures take them from here).
 """
 
 import numpy as np
-
-#: Kernel support in particle spacings: H = 2 d (about 26 neighbours on a cubic lattice).
-SUPPORT_SPACINGS = 2.0
-
-
-def support_radius(particle_spacing):
-    """H in metres for a particle spacing d in metres: ``SUPPORT_SPACINGS * d``."""
-    return SUPPORT_SPACINGS * particle_spacing
-
-
-def particle_mass(rest_density, particle_spacing):
-    """m = rho0 d^3 in kg: the liquid in one lattice cell (rho0 in kg/m^3, d in metres)."""
-    return rest_density * particle_spacing**3
 
 
 def kernel(distances, support_radius):

@@ -29,7 +29,8 @@
 import numpy as np
 from scipy.spatial import cKDTree
 
-from .kernels import SUPPORT_SPACINGS, kernel, particle_mass, support_radius
+from .kernels import kernel
+from .particle_model import SUPPORT_SPACINGS, particle_mass, support_radius
 
 #: Neighbours within H = 2 d (fluid + boundary, self excluded) for a particle to count as interior.
 #: A full cubic-lattice neighbourhood has 26 (physics-references.md section 1); a flat free surface ~17.

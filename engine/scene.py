@@ -38,6 +38,7 @@ from .boundary import FACE_NAMES
 from .errors import MeshError, SceneError
 from .geometry import check_mesh
 from .inputs import LIMITS, MAX_ARRAY_ELEMENTS, read_json, read_npz, safe_name
+from .particle_model import cfl_speed_limit
 from .mesh_io import _checked_arrays, read_mesh, write_npz
 
 FORMAT = "splashdraft-scene"
@@ -285,7 +286,7 @@ EMITTER_SPEED_SHARE = 0.5
 
 
 def _check_emitter_speeds(check, emitters, spacing, solver):
-    limit = EMITTER_SPEED_SHARE * solver.cfl_factor * spacing / solver.min_time_step
+    limit = EMITTER_SPEED_SHARE * cfl_speed_limit(spacing, solver.cfl_factor, solver.min_time_step)
     for index, emitter in enumerate(emitters):
         speed = float(emitter.speed) if isinstance(emitter, StreamEmitter) else float(np.linalg.norm(emitter.velocity))
         if speed > limit:

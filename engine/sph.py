@@ -77,7 +77,8 @@ import scipy.sparse as sparse
 
 from .boundary import empty_boundary
 from .errors import SceneError, SolverError
-from .kernels import kernel, kernel_terms, particle_mass, support_radius
+from .kernels import kernel, kernel_terms
+from .particle_model import cfl_speed_limit, cfl_step, particle_mass, support_radius
 from .neighbours import SkinPairs
 
 KAPPA = "sph_kappa"
@@ -147,7 +148,7 @@ class SphParams:
     @property
     def max_speed(self):
         """Speed above which the CFL step would drop below ``min_time_step`` (m/s)."""
-        return self.cfl_factor * self.particle_spacing / self.min_time_step
+        return cfl_speed_limit(self.particle_spacing, self.cfl_factor, self.min_time_step)
 
 
 #: Warm start of the velocity solve: the fraction of the previous substep's kappa it starts from
@@ -287,12 +288,7 @@ def cfl_time_step(velocities, params):
     speed2 = np.einsum("ij,ij->i", velocities, velocities)
     fastest = int(np.argmax(speed2))
     speed = math.sqrt(float(speed2[fastest]))
-    if speed <= 0.0:
-        return params.max_time_step, fastest
-    dt = params.cfl_factor * params.particle_spacing / speed
-    if dt < params.min_time_step:
-        return dt, fastest
-    return min(dt, params.max_time_step), fastest
+    return cfl_step(speed, params.particle_spacing, params.cfl_factor, params.max_time_step), fastest
 
 
 def substep_length(dt, remaining):

@@ -21,7 +21,7 @@ import numpy as np
 
 from .boundary import make_boundary, sample_box_walls
 from .errors import SplashdraftError
-from .kernels import particle_mass, support_radius
+from .particle_model import particle_mass, support_radius
 from .scene import DEFAULT_GRAVITY, Fluid, SolverSettings
 from .solvers import make_solver
 from .sph import params_from_world, sph_density
@@ -42,7 +42,7 @@ class BoxWorld:
     Args:
         positions, velocities: (N, 3) float64 m and m/s at t = 0.
         boundary: the box walls' ``engine.boundary.BoundaryParticles``.
-        particle_spacing: d in metres; H and m follow from it (``engine.kernels``).
+        particle_spacing: d in metres; H and m follow from it (``engine.particle_model``).
         rest_density: rho0 in kg/m^3. viscosity: XSPH coefficient. gravity: (3,) m/s^2.
         solver_settings: ``engine.scene.SolverSettings`` (default: the scene format's defaults).
     """

@@ -1,7 +1,7 @@
 """From a validated Scene to the run-time arrays every solver uses.
 
 ``build_world(scene)`` resolves everything once: the support radius
-H = 2 * spacing and the particle mass rest_density * spacing^3 (``engine.kernels``),
+H = 2 * spacing and the particle mass rest_density * spacing^3 (``engine.particle_model``),
 the fluid's viscosity and the solver settings the solvers read, the fill
 particles, the stream lattices, and the boundary particles of the bounds walls
 and colliders (Akinci et al. 2012 boundary volumes from ``engine.boundary``).
@@ -40,7 +40,8 @@ from scipy.spatial import cKDTree
 from . import energy
 from .boundary import FACE_NAMES, BoundaryParticles, boundary_volumes, sample_box_walls
 from .errors import SceneError
-from .kernels import kernel, particle_mass, support_radius
+from .kernels import kernel
+from .particle_model import particle_mass, support_radius
 from .geometry import (evaluate_surface, inside_closed_mesh, push_out, sample_surface, sample_volume,
                        signed_volume, triangle_corners)
 from .scene import FillEmitter, StreamEmitter
@@ -276,8 +277,8 @@ class World:
 
     scene: object
     particle_spacing: float
-    support_radius: float  # H = 2 * spacing, metres (engine.kernels.support_radius)
-    particle_mass: float  # kg (engine.kernels.particle_mass)
+    support_radius: float  # H = 2 * spacing, metres (engine.particle_model.support_radius)
+    particle_mass: float  # kg (engine.particle_model.particle_mass)
     rest_density: float
     gravity: np.ndarray
     viscosity: float  # XSPH coefficient (the scene's fluid.viscosity)

@@ -27,6 +27,7 @@ import math
 import numpy as np
 
 from ..kernels import kernel
+from ..particle_model import cfl_step
 
 #: Smoothing passes per learned step (each one a sweep of the step's neighbour table).
 APPLICATIONS = 2
@@ -35,7 +36,7 @@ APPLICATIONS = 2
 def reference_substeps(velocities, step, spacing, cfl_factor, max_time_step):
     """About how many reference substeps a learned step of ``step`` seconds spans (>= 1)."""
     speed = float(np.sqrt(np.max(np.einsum("ij,ij->i", velocities, velocities)))) if len(velocities) else 0.0
-    reference_step = max_time_step if speed == 0.0 else min(max_time_step, cfl_factor * spacing / speed)
+    reference_step = cfl_step(speed, spacing, cfl_factor, max_time_step)
     return max(1, math.ceil(step / reference_step - 1e-9))
 
 
