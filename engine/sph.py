@@ -79,6 +79,7 @@ from .boundary import empty_boundary
 from .errors import SceneError, SolverError
 from .kernels import kernel, kernel_terms
 from .particle_model import cfl_speed_limit, cfl_step, particle_mass, support_radius
+from .scene import DEFAULT_GRAVITY, Fluid, SolverSettings
 from .neighbours import SkinPairs
 
 KAPPA = "sph_kappa"
@@ -126,16 +127,16 @@ class SphParams:
     """
 
     particle_spacing: float
-    rest_density: float = 1000.0
-    viscosity: float = 0.02
-    gravity: tuple = (0.0, 0.0, -9.81)
-    cfl_factor: float = 0.4
-    max_time_step: float = 0.004
-    min_time_step: float = 1e-5
-    density_tolerance: float = 0.0005
-    divergence_tolerance: float = 0.001
-    max_iterations: int = 100
-    neighbour_skin: float = 0.0
+    rest_density: float
+    viscosity: float
+    gravity: tuple
+    cfl_factor: float
+    max_time_step: float
+    min_time_step: float
+    density_tolerance: float
+    divergence_tolerance: float
+    max_iterations: int
+    neighbour_skin: float
 
     @property
     def support_radius(self):
@@ -215,10 +216,13 @@ def warm_start_kappa(kappa, last_dt, dt):
 DEFAULT_SKIN_FRACTION = 0.25
 
 
-def make_params(particle_spacing, *, rest_density=1000.0, viscosity=0.02, gravity=(0.0, 0.0, -9.81),
-                cfl_factor=0.4, max_time_step=0.004, min_time_step=1e-5, density_tolerance=0.0005,
-                divergence_tolerance=0.001, max_iterations=100, neighbour_skin=None):
-    """Validated SphParams; ``neighbour_skin`` defaults to 0.25 H.
+def make_params(particle_spacing, *, rest_density=Fluid.rest_density, viscosity=Fluid.viscosity,
+                gravity=DEFAULT_GRAVITY, cfl_factor=SolverSettings.cfl_factor,
+                max_time_step=SolverSettings.max_time_step, min_time_step=SolverSettings.min_time_step,
+                density_tolerance=SolverSettings.density_tolerance,
+                divergence_tolerance=SolverSettings.divergence_tolerance,
+                max_iterations=SolverSettings.max_iterations, neighbour_skin=None):
+    """Validated SphParams; the defaults are the scene format's (``engine.scene``), ``neighbour_skin`` 0.25 H.
 
     Raises:
         SceneError: naming the field, the bad value and the allowed range.
