@@ -389,13 +389,14 @@ def build_shot(scene, cache_dir):
 
 
 def parse_ply(path):
-    """Independent reader of the cache frame layout in DEVELOPERS.md (binary little-endian, 9 properties)."""
+    """Independent reader of the cache frame layout in DEVELOPERS.md (binary little-endian, the
+    properties as the header declares them: int or float, 4 bytes each)."""
     data = Path(path).read_bytes()
     end = data.index(b"end_header\n") + len(b"end_header\n")
     header = data[:end].decode("ascii").split("\n")
     count = int(next(line for line in header if line.startswith("element vertex")).split()[-1])
-    dtype = np.dtype([("x", "<f4"), ("y", "<f4"), ("z", "<f4"), ("vx", "<f4"), ("vy", "<f4"), ("vz", "<f4"),
-                      ("id", "<i4"), ("density", "<f4"), ("pressure", "<f4")])
+    props = [line.split()[1:3] for line in header if line.startswith("property")]
+    dtype = np.dtype([(name, "<i4" if kind == "int" else "<f4") for kind, name in props])
     return np.frombuffer(data, dtype, count=count, offset=end)
 
 
