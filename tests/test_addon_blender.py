@@ -114,7 +114,7 @@ def test_shot_exports_bakes_plays_back_renders_swaps_and_exports(tmp_path):
         assert frame["mesh_count"] == frame["cache_count"] > 0, frame
         assert frame["max_position_error"] <= 1e-6, frame  # float32 copied exactly (BU == m here)
         assert frame["max_speed_error"] <= 1e-5, frame
-        assert frame["ids_equal"], frame
+        assert frame["ids_equal"] and frame["zone_equal"] and frame["foam_equal"], frame
     render = result["render"]
     assert render["std"] > 0.02 and render["liquid_fraction"] > 0.01, render
 
@@ -162,6 +162,7 @@ def test_nodes_playback_reads_the_cache_without_python(tmp_path):
         assert frame["count"] == frame["cache_count"] > 0, frame
         assert frame["position_error_bu"] <= 1e-5 and frame["velocity_error_bu"] <= 1e-5, frame
         assert frame["speed_error_ms"] <= 1e-5 and frame["ids_equal"], frame
+        assert frame["zone_equal"] and frame["foam_error"] == 0.0, frame
     assert result["render"]["std"] > 0.02 and result["render"]["liquid_fraction"] > 0.01, result["render"]
     assert "Splashdraft file reader" not in result["back"]["modifiers"] and result["back"]["vertices"] > 0, result
 
@@ -169,9 +170,9 @@ def test_nodes_playback_reads_the_cache_without_python(tmp_path):
 def test_liquid_surface_of_the_demo_block_is_one_watertight_body_of_the_particles_volume(tmp_path):
     """The joined surface (Geometry Nodes, no Python at evaluation) of the demo shot's resting water
     block at frame 1: one connected, watertight component whose enclosed volume is within 10 % of
-    particles x spacing^3, carrying the particles' speed; under every playback mode this Blender has.
-    A scattered cache (block, one-particle-thick sheet, lone droplet) keeps the sheet and the droplet
-    as their own visible bodies.
+    particles x spacing^3, carrying the particles' speed, zone and foam; under every playback mode this
+    Blender has. A scattered cache (block, one-particle-thick sheet, lone droplet) keeps the sheet and
+    the droplet as their own visible bodies, and the droplet's body reads as spray.
 
     Oracles: the divergence theorem for the enclosed volume (V = sum det[a, b, c] / 6 over the
     triangles; Gauss, any calculus text, common practice), a closed 2-manifold has every edge in
@@ -190,6 +191,10 @@ def test_liquid_surface_of_the_demo_block_is_one_watertight_body_of_the_particle
         assert stats["particle_volume_m3"] > 0
         assert abs(stats["enclosed_volume_m3"] / stats["particle_volume_m3"] - 1.0) <= 0.10, mode
         assert stats["has_velocity"] and stats["has_speed"], mode
+        # White water reaches the surface: zones of the surface are zones the particles have.
+        assert stats["has_zone"] and stats["has_foam"], mode
+        assert set(stats["zones"]) <= set(stats["particle_zones"]), mode
+        assert 0.0 <= stats["foam_min"] <= stats["foam_max"] <= 1.0, mode
         # Frame 3: the block is falling over; the surface's speeds lie within the particles' range.
         moving = mode["frame3"]
         assert moving["speed_max"] > 0.05, moving
@@ -197,6 +202,9 @@ def test_liquid_surface_of_the_demo_block_is_one_watertight_body_of_the_particle
         assert moving["speed_max"] <= moving["particle_speed_max"] + 1e-5, moving
     scattered = result["scattered"]
     assert scattered["components"] == 3, scattered
+    # The lone droplet's body is spray (zone 2: no neighbour within 2 spacings, Ihmsen et al. 2012's
+    # spray class); the block's body is interior and surface only.
+    assert scattered["droplet_zones"] == [2] and 2 not in scattered["block_zones"], scattered
     # The droplet's body: about a spacing across (at least 0.3 spacings), centred on its particle.
     assert scattered["droplet_size"] >= 0.3 * scattered["spacing"], scattered
     assert scattered["droplet_centre_error"] <= 0.1 * scattered["spacing"], scattered
@@ -413,6 +421,13 @@ def mesh_arrays(obj):
     return positions.reshape(-1, 3), speed, ids
 
 
+def mesh_values(obj, name, dtype):
+    """One scalar point attribute of ``obj``'s own mesh as an array."""
+    values = np.empty(len(obj.data.vertices), dtype)
+    obj.data.attributes[name].data.foreach_get("value", values)
+    return values
+
+
 def signed_volume(vertices, triangles):
     """Divergence theorem: V = sum over triangles of det[a, b, c] / 6."""
     tri = vertices[triangles]
@@ -552,7 +567,9 @@ def child_shot(tmp):
             "frame": frame, "mesh_count": len(positions), "cache_count": int(len(records)),
             "max_position_error": float(np.abs(positions - cache_positions).max()) if same else 1.0,
             "max_speed_error": float(np.abs(speed - np.linalg.norm(velocity, axis=1)).max()) if same else 1.0,
-            "ids_equal": bool(same and np.array_equal(ids, records["id"]))})
+            "ids_equal": bool(same and np.array_equal(ids, records["id"])),
+            "zone_equal": bool(same and np.array_equal(mesh_values(obj, "zone", np.int32), records["zone"])),
+            "foam_equal": bool(same and np.array_equal(mesh_values(obj, "foam", np.float32), records["foam"]))})
 
     scene.frame_set(3)
     out["render"] = render_png(scene, tmp / "frame3.png")
@@ -691,6 +708,12 @@ def child_nodes_playback(tmp):
                 got["velocity_error_bu"] = float(np.abs(velocity.reshape(-1, 3) - 2.0 * want_v).max())
                 got["speed_error_ms"] = float(np.abs(speed - np.linalg.norm(want_v, axis=1)).max())
                 got["ids_equal"] = bool(np.array_equal(ids, records["id"]))
+                zone = np.empty(n, np.int32)
+                mesh.attributes["zone"].data.foreach_get("value", zone)
+                foam = np.empty(n, np.float32)
+                mesh.attributes["foam"].data.foreach_get("value", foam)
+                got["zone_equal"] = bool(np.array_equal(zone, records["zone"]))
+                got["foam_error"] = float(np.abs(foam - records["foam"]).max())
         evaluated.to_mesh_clear()
         frames.append(got)
     spheres.show_viewport = True
@@ -754,16 +777,27 @@ def surface_mesh_stats(obj):
     has_speed = "speed" in mesh.attributes
     if has_speed and n:
         mesh.attributes["speed"].data.foreach_get("value", speed)
+    zone = np.zeros(n, np.int32)
+    has_zone = "zone" in mesh.attributes
+    if has_zone and n:
+        mesh.attributes["zone"].data.foreach_get("value", zone)
+    foam = np.zeros(n, np.float32)
+    if "foam" in mesh.attributes and n:
+        mesh.attributes["foam"].data.foreach_get("value", foam)
     out = {"vertices": n, "components": int(count), "open_edges": int(np.sum(uses == 1)),
+           "has_zone": has_zone, "has_foam": "foam" in mesh.attributes, "zones": sorted(set(zone.tolist())),
+           "foam_min": float(foam.min()) if n else 0.0, "foam_max": float(foam.max()) if n else 0.0,
            "non_manifold_edges": int(np.sum(uses > 2)),
            "enclosed_volume_m3": signed_volume(positions, triangles) if n else 0.0,
            "has_speed": has_speed, "has_velocity": "velocity" in mesh.attributes,
            "speed_min": float(speed.min()) if n else 0.0, "speed_max": float(speed.max()) if n else 0.0}
     evaluated.to_mesh_clear()
-    return out, positions, labels
+    return out, positions, labels, zone
 
 
 def child_surface(tmp):
+    import importlib
+
     import bpy
 
     tmp = Path(tmp)
@@ -790,11 +824,12 @@ def child_surface(tmp):
         entry = {"mode": mode}
         for frame in (1, 3):
             scene.frame_set(frame)
-            stats, _, _ = surface_mesh_stats(shot.display_object)
+            stats, _, _, _ = surface_mesh_stats(shot.display_object)
             records = parse_ply(folder / f"points_{frame:04d}.ply")
             stats["particle_volume_m3"] = len(records) * spacing ** 3
             speeds = np.linalg.norm(np.stack([records["vx"], records["vy"], records["vz"]], axis=1), axis=1)
             stats["particle_speed_min"], stats["particle_speed_max"] = float(speeds.min()), float(speeds.max())
+            stats["particle_zones"] = sorted(set(records["zone"].tolist()))
             entry[f"frame{frame}"] = stats
         out["modes"].append(entry)
 
@@ -812,15 +847,21 @@ def child_surface(tmp):
     writer = cache.CacheWriter(shot_dir / "v001_sph", {
         "scene_name": "spray", "scene_hash": "0" * 64, "solver": {"name": "sph", "settings": {}}, "fps": 24,
         "frame_start": 1, "frame_end": 1, "particle_spacing": h, "rest_density": 1000.0})
+    whitewater = importlib.import_module(module + ".engine.whitewater")
+    marks = whitewater.whitewater(positions, np.zeros((count, 3)), h)
     writer.write_frame(1, {"positions": positions, "velocities": np.zeros((count, 3)), "ids": np.arange(count),
-                           "density": np.full(count, 1000.0), "pressure": np.zeros(count)},
+                           "density": np.full(count, 1000.0), "pressure": np.zeros(count),
+                           **{name: marks[name] for name in whitewater.ATTRIBUTES}},
                        time=0.0, substeps=1, seconds=0.0)
     writer.mark_complete()
     shot.cache_dir, shot.shot_name = str(Path(tmp) / "scattered"), "spray"
     bpy.ops.splashdraft.refresh_versions()
     scene.frame_set(1)
-    stats, points, labels = surface_mesh_stats(shot.display_object)
+    stats, points, labels, zone = surface_mesh_stats(shot.display_object)
     droplet_label = labels[np.argmin(np.linalg.norm(points - droplet[0], axis=1))]
+    block_label = labels[np.argmin(np.linalg.norm(points - block.mean(axis=0), axis=1))]
+    stats["droplet_zones"] = sorted(set(zone[labels == droplet_label].tolist()))
+    stats["block_zones"] = sorted(set(zone[labels == block_label].tolist()))
     sheet_label = labels[np.argmin(np.linalg.norm(points - [0.15, 0.15, 0.6], axis=1))]
     drop = points[labels == droplet_label]
     sheet_points = points[labels == sheet_label]
