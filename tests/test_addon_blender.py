@@ -15,6 +15,7 @@ DEVELOPERS.md, Blender's own importers, closed-form volume/bounds of boxes,
 and Blender's extension validator.
 """
 
+import json
 import subprocess
 import sys
 from pathlib import Path
@@ -240,6 +241,36 @@ def test_failures_are_named_in_blenders_words_never_as_tracebacks(tmp_path):
         assert len(named) == 1 and word in named[0], (frame, nodes)
 
 
+def test_preview_against_reference_is_measured_in_the_background_and_shown_again_after_reopening(tmp_path):
+    """Bake the shot with both solvers, press the panel's measure button: the engine's compare runs in
+    a child process, its result is stored beside the preview and the panel shows it, also after the
+    .blend is saved and opened again.
+
+    Oracles: the Chamfer distance recomputed here by brute force from the two caches' PLY files
+    (symmetric mean nearest-neighbour distance, unsquared: Barrow, Tenenbaum, Bolles & Wolf 1977,
+    "Parametric correspondence and chamfer matching"; the point-cloud form of Fan, Su & Guibas 2017;
+    the convention stated in engine/compare.py), and the kinetic energy 1/2 m sum |v|^2 of both
+    (m = rho0 d^3 cancels in the ratio; textbook mechanics)."""
+    result, output = blender_env.run_child(HERE, "child_compare", tmp_path, timeout=900)
+    assert result["bakes"] == [["FINISHED"], ["FINISHED"]], output[-4000:]
+    assert result["versions"] == ["v001_sph", "v002_learned"], result
+    assert result["before"] == ["v002_learned against v001_sph"], "no figures before measuring"
+    assert result["operator"] == ["FINISHED"], output[-4000:]
+    stored = result["stored"]
+    assert stored["frames"] == [1, 2, 3, 4]
+    np.testing.assert_allclose(stored["chamfer_spacings"], result["brute_force_chamfer_spacings"], rtol=1e-5)
+    assert stored["energy_ratio_line"] == f"Motion energy: {result['brute_force_energy_ratio']:.2f} x reference"
+    assert result["has_table"] and result["has_plot"], result
+    lines = result["panel"]
+    assert "v002_learned against v001_sph" in lines, lines
+    assert f"Distance: mean {np.mean(result['brute_force_chamfer_spacings']):.2f}, worst " \
+        f"{np.max(result['brute_force_chamfer_spacings']):.2f} spacings" in lines, lines
+    assert stored["energy_ratio_line"] in lines and any(line.startswith("Over-energy: preview") for line in lines)
+    assert sum(1 for line in lines if "sp, energy" in line) == 4, lines
+    assert result["panel_after_reopening"] == lines
+    assert all(len(line) <= 60 for line in lines), lines
+
+
 def test_panels_draw_only_existing_properties_and_operators():
     """Every panel of the sidebar tab, drawn for every role, names only properties and operators that exist.
 
@@ -341,7 +372,7 @@ def child_panels():
     for role in ("NONE", "FILL", "STREAM", "COLLIDER", "BOUNDS"):
         obj.splashdraft.role = role
         obj.splashdraft.use_stream_frames = True
-        for panel in ui.classes[1:]:
+        for panel in ui.classes[1:] + sys.modules[module + ".addon.fidelity"].classes[2:]:
             panel.draw(type("Self", (), {"layout": RecordingLayout(log)})(), Context)
     log["category"] = ui.SPLASHDRAFT_PT_shot.bl_category
     return log
@@ -871,6 +902,66 @@ def child_surface(tmp):
     out["scattered"] = stats
     return out
 
+
+
+def child_compare(tmp):
+    import bpy
+
+    tmp = Path(tmp)
+    scene = blender_env.reset_scene()
+    module = blender_env.enable_from_source()
+    fidelity = sys.modules[module + ".addon.fidelity"]
+    build_shot(scene, tmp / "cache")
+    shot = scene.splashdraft
+    bakes = []
+    for solver in ("sph", "learned"):
+        shot.solver = solver
+        bakes.append(sorted(bpy.ops.splashdraft.bake()))
+    out = {"bakes": bakes, "versions": [v.name for v in shot.versions]}
+
+    def panel_lines():
+        labels = []
+
+        class Recorder(RecordingLayout):
+            def _child(self, *args, **kwargs):
+                return self
+
+            row = column = box = split = grid_flow = _child
+
+            def label(self, text="", **kwargs):
+                labels.append(text)
+
+        log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
+        fidelity.SPLASHDRAFT_PT_fidelity.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        return labels
+
+    out["before"] = panel_lines()
+    out["operator"] = sorted(bpy.ops.splashdraft.compare())
+    reference, preview = (Path(v.folder) for v in shot.versions)
+    stored = json.loads((preview / "compare_v001_sph.json").read_text())
+    comparison = sys.modules[module + ".addon.comparison"]
+    out["stored"] = {"frames": [row["frame"] for row in stored["frames"]],
+                     "chamfer_spacings": [row["chamfer_spacings"] for row in stored["frames"]],
+                     "energy_ratio_line": comparison.summary_lines(stored)[3]}
+    out["has_table"] = (preview / "compare_v001_sph.txt").stat().st_size > 100
+    out["has_plot"] = (preview / "compare_v001_sph.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    chamfers, energy = [], [0.0, 0.0]
+    for frame in range(1, 5):
+        a, b = parse_ply(reference / f"points_{frame:04d}.ply"), parse_ply(preview / f"points_{frame:04d}.ply")
+        pa = np.stack([a["x"], a["y"], a["z"]], 1).astype(np.float64)
+        pb = np.stack([b["x"], b["y"], b["z"]], 1).astype(np.float64)
+        distances = np.linalg.norm(pa[:, None, :] - pb[None, :, :], axis=2)
+        chamfers.append(0.5 * (distances.min(axis=1).mean() + distances.min(axis=0).mean()) / 0.05)
+        for k, records in enumerate((a, b)):
+            energy[k] += float(sum(np.sum(records[c].astype(np.float64) ** 2) for c in ("vx", "vy", "vz")))
+    out["brute_force_chamfer_spacings"] = chamfers
+    out["brute_force_energy_ratio"] = energy[1] / energy[0]
+    out["panel"] = panel_lines()
+    blend = tmp / "shot.blend"
+    bpy.ops.wm.save_as_mainfile(filepath=str(blend))
+    bpy.ops.wm.open_mainfile(filepath=str(blend))
+    out["panel_after_reopening"] = panel_lines()
+    return out
 
 def child_failures(tmp):
     import bpy
