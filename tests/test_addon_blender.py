@@ -16,6 +16,7 @@ and Blender's extension validator.
 """
 
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -254,6 +255,12 @@ def test_preview_against_reference_is_measured_in_the_background_and_shown_again
     result, output = blender_env.run_child(HERE, "child_compare", tmp_path, timeout=900)
     assert result["bakes"] == [["FINISHED"], ["FINISHED"]], output[-4000:]
     assert result["versions"] == ["v001_sph", "v002_learned"], result
+    # Each finished bake measures this computer: the estimate's time is rough only before the first
+    # bake with that solver, and the kept figures name both solvers.
+    rough = ["rough" in text for text in result["estimates"]]
+    assert rough == [True, False, True, False], result["estimates"]
+    (machine,) = result["calibration"]["machines"].values()
+    assert sorted(machine) == ["learned", "sph"] and all(entry["rate"] > 0 for entry in machine.values())
     assert result["before"] == ["v002_learned against v001_sph"], "no figures before measuring"
     assert result["operator"] == ["FINISHED"], output[-4000:]
     stored = result["stored"]
@@ -911,13 +918,19 @@ def child_compare(tmp):
     scene = blender_env.reset_scene()
     module = blender_env.enable_from_source()
     fidelity = sys.modules[module + ".addon.fidelity"]
+    os.environ["SPLASHDRAFT_CALIBRATION"] = str(tmp / "calibration.json")  # this computer not measured yet
     build_shot(scene, tmp / "cache")
     shot = scene.splashdraft
-    bakes = []
+    bakes, estimates = [], []
     for solver in ("sph", "learned"):
         shot.solver = solver
+        bpy.ops.splashdraft.estimate()
+        estimates.append(shot.estimate_text)
         bakes.append(sorted(bpy.ops.splashdraft.bake()))
-    out = {"bakes": bakes, "versions": [v.name for v in shot.versions]}
+        bpy.ops.splashdraft.estimate()
+        estimates.append(shot.estimate_text)
+    out = {"bakes": bakes, "versions": [v.name for v in shot.versions], "estimates": estimates,
+           "calibration": json.loads((tmp / "calibration.json").read_text())}
 
     def panel_lines():
         labels = []

@@ -1,0 +1,167 @@
+"""How fast this computer bakes: measured, kept per machine, read by ``engine.estimate``.
+
+A bake's time is modelled as
+
+    seconds = startup + (frames - 1) * steps_per_frame * particles / rate
+
+with ``rate`` in particle-steps per second (solver substeps for the reference, learned steps for
+the preview) and ``startup`` the seconds before the first frame is written (scene, world,
+settling, model load). Both come from a measured bake on this machine, never from a constant:
+
+- ``calibrate(solver)`` bakes a small fixed shot of our own (``calibration_scene``: a block of
+  water released in a box, about 1,600 particles, 8 frames after the first; a few seconds) and
+  keeps the result;
+- ``record_bake(solver, manifest, seconds)`` takes the same figures from any finished bake
+  (the add-on calls it after each bake), so the estimate follows the shots the artist bakes.
+
+``rate`` = sum over frames after the first of particles x steps, divided by the summed frame
+seconds from the manifest (``frames[f].substeps``, ``.seconds``, ``.particles``); ``startup`` =
+the bake's wall time less those frame seconds.
+
+The figures are kept in one JSON file per user (``calibration_path()``: ``$SPLASHDRAFT_CALIBRATION``
+if set, else ``$XDG_CACHE_HOME/splashdraft/calibration.json`` or ``~/.cache/...``), under a key
+naming this machine (host name, processor, core count) and the engine version, so a copied home
+folder or a new engine does not reuse another machine's or version's speed. A missing or
+unreadable file means "not measured"; it never stops an estimate.
+"""
+
+import datetime
+import hashlib
+import json
+import math
+import os
+import platform
+import tempfile
+import time
+from pathlib import Path
+
+from . import __version__
+
+CALIBRATION_FORMAT = "splashdraft-calibration"
+#: Largest calibration file read (it holds a few numbers per machine and solver).
+MAX_BYTES = 1_000_000
+
+
+def calibration_path():
+    """Where the per-machine figures are kept (see the module docstring)."""
+    override = os.environ.get("SPLASHDRAFT_CALIBRATION")
+    if override:
+        return Path(override)
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "splashdraft" / "calibration.json"
+
+
+def machine_key():
+    """A short name for this machine and engine version (host, processor, cores, version), hashed."""
+    text = "|".join([platform.node(), platform.machine(), platform.processor(), str(os.cpu_count()), __version__])
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+
+
+def _read(path):
+    try:
+        if path.stat().st_size > MAX_BYTES:
+            return {}
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    if not isinstance(data, dict) or data.get("format") != CALIBRATION_FORMAT or not isinstance(data.get("machines"), dict):
+        return {}
+    return data
+
+
+def load(solver, path=None):
+    """This machine's figures for ``solver``: dict with ``rate``, ``startup_seconds``, ``source``,
+    ``measured``; None when not measured (or the file is damaged)."""
+    data = _read(Path(path) if path is not None else calibration_path())
+    entry = data.get("machines", {}).get(machine_key(), {}).get(solver) if data else None
+    if not isinstance(entry, dict):
+        return None
+    rate, startup = entry.get("rate"), entry.get("startup_seconds")
+    if not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in (rate, startup)):
+        return None
+    if rate <= 0 or startup < 0:
+        return None
+    return {"rate": float(rate), "startup_seconds": float(startup), "source": str(entry.get("source", "")),
+            "measured": str(entry.get("measured", ""))}
+
+
+def save(solver, rate, startup_seconds, source, path=None):
+    """Keep ``rate`` (particle-steps/s) and ``startup_seconds`` for ``solver`` on this machine.
+
+    Returns the file written, or None when it could not be written (the estimate then stays rough;
+    a calibration is never worth failing a bake for).
+    """
+    path = Path(path) if path is not None else calibration_path()
+    data = _read(path) or {"format": CALIBRATION_FORMAT, "version": 1, "machines": {}}
+    entry = {"rate": float(rate), "startup_seconds": float(startup_seconds), "source": str(source)[:300],
+             "measured": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"),
+             "machine": platform.node()[:100]}
+    data["machines"].setdefault(machine_key(), {})[solver] = entry
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        temporary = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+        temporary.write_text(json.dumps(data, indent=1) + "\n", encoding="utf-8")
+        os.replace(temporary, path)
+    except OSError:
+        return None
+    return path
+
+
+def figures_from_manifest(manifest, seconds):
+    """(rate, startup seconds) of a finished bake from its manifest and wall time, or None.
+
+    Needs at least one frame after the first with a positive time.
+    """
+    frames = manifest.get("frames", {})
+    keys = sorted(frames, key=int)[1:]
+    work = sum(int(frames[k].get("particles", 0)) * max(int(frames[k].get("substeps", 0)), 1) for k in keys)
+    spent = sum(float(frames[k].get("seconds", 0.0)) for k in keys)
+    if not keys or work <= 0 or spent <= 0:
+        return None
+    return work / spent, max(float(seconds) - spent, 0.0)
+
+
+def record_bake(solver, manifest, seconds, path=None):
+    """Keep the figures of a finished bake (``figures_from_manifest``); returns the file or None."""
+    figures = figures_from_manifest(manifest, seconds)
+    if figures is None:
+        return None
+    name = manifest.get("scene_name", "?")
+    return save(solver, *figures, source=f"bake of {name!r}", path=path)
+
+
+def calibration_scene(spacing=0.02):
+    """The calibration shot (our own): a 0.2 x 0.3 x 0.3 m block released in a 0.6 x 0.3 x 0.5 m box."""
+    from .mesh_io import box_mesh
+    from .scene import scene_from_dict
+
+    vertices, triangles = box_mesh((0.0, 0.0, 0.0), (0.2, 0.3, 0.3))
+    return scene_from_dict({
+        "format": "splashdraft-scene", "version": 1, "name": "calibration_block", "fps": 24,
+        "frame_start": 1, "frame_end": 9, "particle_spacing": spacing,
+        "bounds": {"min": [0, 0, 0], "max": [0.6, 0.3, 0.5]},
+        "emitters": [{"name": "block", "type": "fill",
+                      "mesh": {"vertices": vertices.tolist(), "triangles": triangles.tolist()}}],
+    })  # fmt: skip
+
+
+def calibrate(solver, path=None, scene=None):
+    """Bake the calibration shot with ``solver`` and keep its figures; returns the kept dict.
+
+    Raises:
+        SplashdraftError from the bake (e.g. the learned model is missing).
+    """
+    from .bake import bake
+
+    scene = scene if scene is not None else calibration_scene()
+    with tempfile.TemporaryDirectory(prefix="splashdraft_calibration_") as folder:
+        started = time.monotonic()
+        bake(scene, solver, Path(folder) / "bake", use_signals=False)
+        seconds = time.monotonic() - started
+        from .cache import open_cache
+
+        manifest = open_cache(Path(folder) / "bake").manifest
+    rate, startup = figures_from_manifest(manifest, seconds)
+    save(solver, rate, startup, source=f"calibration shot ({manifest['frames']['1']['particles']} particles)",
+         path=path)
+    return {"rate": rate, "startup_seconds": startup, "source": "calibration shot"}
