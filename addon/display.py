@@ -451,10 +451,21 @@ def surface_group(material):
     # nothing to take from (it would vanish); this way a lone droplet keeps about half a spacing.
     links.new(shrink.outputs["Geometry"], relax.inputs["Geometry"])
     # Velocity, speed, zone and foam of the nearest particle, for shading and motion blur.
+    # The nearest particle is looked up once and stored: a field feeding several Store nodes is
+    # evaluated once per node, and the lookup is the costly part (measured: bench/bench_surface.py).
     nearest = nodes.new("GeometryNodeSampleNearest")
     nearest.domain = "POINT"
     links.new(to_points.outputs["Points"], nearest.inputs["Geometry"])
-    geometry = relax.outputs["Geometry"]
+    keep_index = nodes.new("GeometryNodeStoreNamedAttribute")
+    keep_index.data_type = "INT"
+    keep_index.domain = "POINT"
+    keep_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
+    links.new(relax.outputs["Geometry"], keep_index.inputs["Geometry"])
+    links.new(nearest.outputs["Index"], keep_index.inputs["Value"])
+    read_index = nodes.new("GeometryNodeInputNamedAttribute")
+    read_index.data_type = "INT"
+    read_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
+    geometry = keep_index.outputs["Geometry"]
     for attribute, kind in (("velocity", "FLOAT_VECTOR"), ("speed", "FLOAT"), ("zone", "INT"), ("foam", "FLOAT")):
         read = nodes.new("GeometryNodeInputNamedAttribute")
         read.data_type = kind
@@ -464,7 +475,7 @@ def surface_group(material):
         sample.domain = "POINT"
         links.new(to_points.outputs["Points"], sample.inputs["Geometry"])
         links.new(read.outputs["Attribute"], sample.inputs["Value"])
-        links.new(nearest.outputs["Index"], sample.inputs["Index"])
+        links.new(read_index.outputs["Attribute"], sample.inputs["Index"])
         store = nodes.new("GeometryNodeStoreNamedAttribute")
         store.data_type = kind
         store.domain = "POINT"
@@ -472,13 +483,20 @@ def surface_group(material):
         links.new(geometry, store.inputs["Geometry"])
         links.new(sample.outputs[0], store.inputs["Value"])
         geometry = store.outputs["Geometry"]
+    forget_index = nodes.new("GeometryNodeRemoveAttribute")
+    forget_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
+    links.new(geometry, forget_index.inputs["Geometry"])
     smooth = nodes.new("GeometryNodeSetShadeSmooth")
-    links.new(geometry, smooth.inputs[0])
+    links.new(forget_index.outputs["Geometry"], smooth.inputs[0])
     set_material = nodes.new("GeometryNodeSetMaterial")
     set_material.inputs["Material"].default_value = material
     links.new(smooth.outputs[0], set_material.inputs["Geometry"])
     links.new(set_material.outputs["Geometry"], sink.inputs["Geometry"])
     return group
+
+
+#: Temporary surface attribute: the index of each vertex's nearest particle (removed before output).
+NEAREST_ATTRIBUTE = "splashdraft_nearest"
 
 
 #: Where a flat face of the surface should sit beyond the outermost particle centres, in spacings:
@@ -487,7 +505,7 @@ def surface_group(material):
 FACE_OFFSET = 0.55
 
 
-def surface_inputs(spacing, reach=1.0, detail=0.6, smoothing=3):
+def surface_inputs(spacing, reach=1.0, detail=0.8, smoothing=3):
     """Inputs of the surface node group, in Blender units, from settings in particle spacings.
 
     Args:
