@@ -156,8 +156,9 @@ def droplet_scene(folder):
 def test_a_real_bake_marks_the_lone_droplet_as_spray_in_every_frame(tmp_path, solver):
     """Every frame of a real bake carries the attributes; the thrown droplet (it never comes within
     2 spacings of the block) is spray in every frame, and at frame 1 the block's middle particle is
-    interior; under a tenth of the collapsing block is spray in any frame (its front may throw a
-    few particles)."""
+    interior and nothing foams (the fill starts at rest: no kinetic-energy potential; the thrown
+    droplet has no neighbours: no trapped air, no crest); under a tenth of the collapsing block is
+    spray in any frame (its front may throw a few particles)."""
     scene = droplet_scene(tmp_path)
     bake(scene, solver, tmp_path / "out", use_signals=False)
     reader = open_cache(tmp_path / "out")
@@ -171,6 +172,8 @@ def test_a_real_bake_marks_the_lone_droplet_as_spray_in_every_frame(tmp_path, so
             drop_id = int(arrays["ids"][np.argmax(positions[:, 0])])
             middle = np.argmin(np.linalg.norm(positions - [0.2, 0.2, 0.2], axis=1))
             assert arrays["zone"][middle] == ZONE_INTERIOR
+            # Liquid at rest makes no white water, nor does a particle alone.
+            assert arrays["foam"].max() == 0.0
         drop = np.flatnonzero(arrays["ids"] == drop_id)[0]
         assert positions[drop, 0] > 0.85 and positions[:, 0][arrays["ids"] != drop_id].max() < 0.7, \
             "the droplet stays clear of the block"
