@@ -20,7 +20,7 @@ the bake's wall time less those frame seconds.
 
 The figures are kept in one JSON file per user (``calibration_path()``: ``$SPLASHDRAFT_CALIBRATION``
 if set, else ``$XDG_CACHE_HOME/splashdraft/calibration.json`` or ``~/.cache/...``), under a key
-naming this machine (host name, processor, core count) and the engine version, so a copied home
+naming this machine (host name, architecture, core count) and the engine version, so a copied home
 folder or a new engine does not reuse another machine's or version's speed. A missing or
 unreadable file means "not measured"; it never stops an estimate.
 """
@@ -52,8 +52,11 @@ def calibration_path():
 
 
 def machine_key():
-    """A short name for this machine and engine version (host, processor, cores, version), hashed."""
-    text = "|".join([platform.node(), platform.machine(), platform.processor(), str(os.cpu_count()), __version__])
+    """A short name for this machine and engine version (host, architecture, cores, version), hashed.
+
+    ``platform.processor()`` is left out: on Linux it starts a ``uname -p`` process.
+    """
+    text = "|".join([platform.node(), platform.machine(), str(os.cpu_count()), __version__])
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
 
