@@ -7,7 +7,6 @@ summary and a short per-frame list whenever both versions exist.
 """
 
 import sys
-from pathlib import Path
 
 import bpy
 
@@ -179,8 +178,11 @@ class SPLASHDRAFT_PT_fidelity(bpy.types.Panel):
         frames = box.column(align=True)
         for line in comparison.frame_lines(result):
             frames.label(text=line)
-        _, table, _ = comparison.report_paths(preview.folder, reference.name)
-        box.label(text=f"Every frame: {Path(table).name} in {preview.name}", icon="TEXT")
+        _, table, plot = comparison.report_paths(preview.folder, reference.name)
+        row = box.row(align=True)
+        for path, text, icon in ((table, "Every frame", "TEXT"), (plot, "Plot", "IMAGE_DATA")):
+            if path.is_file():
+                row.operator("wm.path_open", text=text, icon=icon).filepath = str(path)
 
 
 classes = (SPLASHDRAFT_OT_compare, SPLASHDRAFT_OT_stop_compare, SPLASHDRAFT_PT_fidelity)

@@ -275,6 +275,7 @@ def test_preview_against_reference_is_measured_in_the_background_and_shown_again
     assert stored["energy_ratio_line"] in lines and any(line.startswith("Over-energy: preview") for line in lines)
     assert sum(1 for line in lines if "sp, energy" in line) == 4, lines
     assert result["panel_after_reopening"] == lines
+    assert result["opens"] == ["compare_v001_sph.txt", "compare_v001_sph.png"], result["opens"]
     assert all(len(line) <= 60 for line in lines), lines
 
 
@@ -932,8 +933,11 @@ def child_compare(tmp):
     out = {"bakes": bakes, "versions": [v.name for v in shot.versions], "estimates": estimates,
            "calibration": json.loads((tmp / "calibration.json").read_text())}
 
+    opens = []
+
     def panel_lines():
         labels = []
+        opens.clear()
 
         class Recorder(RecordingLayout):
             def _child(self, *args, **kwargs):
@@ -944,8 +948,15 @@ def child_compare(tmp):
             def label(self, text="", **kwargs):
                 labels.append(text)
 
+            def operator(self, idname, **kwargs):
+                properties = super().operator(idname, **kwargs)
+                if idname == "wm.path_open":
+                    opens.append(properties)
+                return properties
+
         log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
         fidelity.SPLASHDRAFT_PT_fidelity.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        assert not log["missing"], log
         return labels
 
     out["before"] = panel_lines()
@@ -974,6 +985,7 @@ def child_compare(tmp):
     bpy.ops.wm.save_as_mainfile(filepath=str(blend))
     bpy.ops.wm.open_mainfile(filepath=str(blend))
     out["panel_after_reopening"] = panel_lines()
+    out["opens"] = [Path(o.filepath).name for o in opens]
     return out
 
 def child_failures(tmp):
