@@ -59,8 +59,8 @@ def time_check():
         started = time.perf_counter()
         measured = calibration.calibrate(solver)
         calibration_seconds = time.perf_counter() - started
-        print(f"{solver:8s} calibration: {measured['rate']:,.0f} particle-steps/s, start-up "
-              f"{measured['startup_seconds']:.2f} s (took {calibration_seconds:.1f} s)")
+        print(f"{solver:8s} calibration: {measured['rate']:,.0f} particle-steps/s, {measured['overhead_seconds']:.3f} s "
+              f"per frame, start-up {measured['startup_seconds']:.2f} s (took {calibration_seconds:.1f} s)")
         for name, scene in time_shots():
             saved = os.environ["SPLASHDRAFT_CALIBRATION"]
             os.environ["SPLASHDRAFT_CALIBRATION"] = saved + ".absent"

@@ -11,11 +11,11 @@ Every figure here is an estimate, stated as such:
   see ``engine.cache.FRAME_DTYPE``), times the frames baked, using the
   estimated particle count for every frame (an upper bound when particles
   leave through open faces).
-- time: a start-up time plus, for every frame after the first, substeps per frame from
-  the CFL rule with a free-fall speed over the bounds height (the learned preview: its
-  own steps per frame, from the shipped model's longest step, ``LearnedSolver.step_plan``)
-  times particles, divided by a throughput in particle-steps per second. Throughput and
-  start-up are this computer's, measured by a calibration bake or taken from the last
+- time: a start-up time plus, for every frame after the first, a per-frame overhead and
+  substeps per frame from the CFL rule with a free-fall speed over the bounds height (the
+  learned preview: its own steps per frame, from the shipped model's longest step,
+  ``LearnedSolver.step_plan``) times particles, divided by a throughput in particle-steps per
+  second. Throughput, overhead and start-up are this computer's, measured by a calibration bake or taken from the last
   finished bake (``engine.calibration``); where none was measured, the latest figure in
   ``bench/results/<solver>_throughput.json`` (key ``particle_substeps_per_second``) or a
   rough built-in constant, and the estimate says so.
@@ -71,6 +71,7 @@ class Estimate:
     throughput: float
     throughput_source: str
     startup_seconds: float = 0.0
+    overhead_seconds: float = 0.0
     is_measured: bool = False
 
     def as_dict(self):
@@ -103,20 +104,20 @@ def throughput(solver="sph", root=None):
 
 
 def time_model(solver="sph", root=None):
-    """(particle-steps per second, start-up seconds, where they came from, measured here?) for ``solver``.
+    """(particle-steps per second, per-frame overhead s, start-up s, where they came from, measured here?).
 
     This computer's calibration (``engine.calibration.load``) first, then a benchmark's file, then
-    the rough constant (start-up 0).
+    the rough constant (overhead and start-up 0).
     """
     from . import calibration
 
     measured = calibration.load(solver)
     if measured is not None:
         when = measured["measured"][:10]
-        return (measured["rate"], measured["startup_seconds"],
+        return (measured["rate"], measured["overhead_seconds"], measured["startup_seconds"],
                 f"measured on this computer ({measured['source']}{', ' + when if when else ''})", True)
     rate, source = throughput(solver, root)
-    return rate, 0.0, source, False
+    return rate, 0.0, 0.0, source, False
 
 
 def substeps_per_frame(scene):
@@ -279,8 +280,8 @@ def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=N
     check_budget(scene, world, max_particles=max_particles, particles=particles)
     frames = int(frames) if frames is not None else scene.frame_end - scene.frame_start + 1
     substeps = learned_steps_per_frame(scene) if solver == "learned" else substeps_per_frame(scene)
-    rate, startup, source, is_measured = time_model(solver)
-    per_frame = substeps * max(particles, 1) / rate
+    rate, overhead, startup, source, is_measured = time_model(solver)
+    per_frame = overhead + substeps * max(particles, 1) / rate
     frame_size = frame_file_bytes(particles)
     return Estimate(
         scene_name=scene.name, solver=solver, particles=particles, boundary_particles=boundary,
@@ -288,7 +289,7 @@ def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=N
         memory_bytes=memory_bytes(particles, boundary, solver), frame_bytes=frame_size,
         disk_bytes=frame_size * frames, substeps_per_frame=substeps, seconds_per_frame=per_frame,
         seconds=startup + per_frame * max(frames - 1, 0), throughput=rate, throughput_source=source,
-        startup_seconds=startup, is_measured=is_measured,
+        startup_seconds=startup, overhead_seconds=overhead, is_measured=is_measured,
     )  # fmt: skip
 
 
@@ -381,14 +382,14 @@ def quick_estimate(scene, solver="sph", max_particles=None):
         )
     frames = scene.frame_end - scene.frame_start + 1
     substeps = learned_steps_per_frame(scene) if solver == "learned" else substeps_per_frame(scene)
-    rate, startup, source, is_measured = time_model(solver)
-    per_frame = substeps * max(particles, 1) / rate
+    rate, overhead, startup, source, is_measured = time_model(solver)
+    per_frame = overhead + substeps * max(particles, 1) / rate
     frame_size = frame_file_bytes(particles)
     estimate = Estimate(
         scene_name=scene.name, solver=solver, particles=particles, boundary_particles=boundary,
         max_particles=limit, frames=frames, memory_bytes=memory_bytes(particles, boundary, solver),
         frame_bytes=frame_size, disk_bytes=frame_size * frames, substeps_per_frame=substeps,
         seconds_per_frame=per_frame, seconds=startup + per_frame * max(frames - 1, 0), throughput=rate,
-        throughput_source=source, startup_seconds=startup, is_measured=is_measured,
+        throughput_source=source, startup_seconds=startup, overhead_seconds=overhead, is_measured=is_measured,
     )  # fmt: skip
     return estimate, outside
