@@ -1,6 +1,6 @@
 """Benchmark of the estimate (engine.estimate.quick_estimate): its speed, and its bake time against real bakes.
 
-Usage:  .venv/bin/python bench/bench_estimate.py [--time]
+Usage:  .venv/bin/python bench/bench_estimate.py [--time [--large]]
 
 Speed (without --time): the estimate answers in <= 0.2 s at any spacing (nothing is built; fine spacings
 over the budget are refused from the closed form). Shot: the demo (water block against the walls,
@@ -11,7 +11,8 @@ the calibration shot (engine.calibration.calibrate, kept in a temporary calibrat
 shots of 1.5k-3k particles that are not the calibration shot (the demo at 4 cm, and the suite's
 ring_dam and drop_pool, 0.25 s each) are estimated and baked; the table gives the estimated time
 before and after calibration and the measured wall time of the bake (engine.bake.bake, in this
-process). Target: measured / estimated between 0.5 and 2 for both solvers. Writes
+process); ``--large`` adds the full demo shot (about 24k particles, 8 frames; a few more minutes).
+Target: measured / estimated between 0.5 and 2 for both solvers. Writes
 bench/results/estimate_time.json.
 """
 
@@ -33,18 +34,23 @@ TARGET_SECONDS = 0.2
 SPACINGS = (0.05, 0.02, 0.01, 0.005, 0.002, 0.001, 0.0005)
 
 
-def time_shots():
-    """(name, Scene) of the time check's shots (none of them the calibration shot)."""
+def time_shots(large=False):
+    """(name, Scene) of the time check's shots (none of them the calibration shot); ``large`` adds
+    the full demo shot (2 cm, about 24k particles) for its first 8 frames."""
     sys.path.insert(0, str(ROOT / "bench"))
     import splash_shots
     from engine.scene import scene_from_dict
 
     demo = load_scene(write_demo_scene(tempfile.mkdtemp(prefix="splashdraft_bench_"), preset="small", spacing=0.04))
-    return [("demo 4 cm", demo)] + [(name, scene_from_dict(splash_shots.shot(name, seconds=0.25)))
-                                    for name in ("ring_dam", "drop_pool")]
+    shots = [("demo 4 cm", demo)] + [(name, scene_from_dict(splash_shots.shot(name, seconds=0.25)))
+                                     for name in ("ring_dam", "drop_pool")]
+    if large:
+        full = write_demo_scene(tempfile.mkdtemp(prefix="splashdraft_bench_"), preset="full", frame_end=8)
+        shots.append(("demo 2 cm", load_scene(full)))
+    return shots
 
 
-def time_check():
+def time_check(large=False):
     """Estimated against measured bake time, before and after calibrating this computer."""
     import os
 
@@ -61,7 +67,7 @@ def time_check():
         calibration_seconds = time.perf_counter() - started
         print(f"{solver:8s} calibration: {measured['rate']:,.0f} particle-steps/s, {measured['overhead_seconds']:.3f} s "
               f"per frame, start-up {measured['startup_seconds']:.2f} s (took {calibration_seconds:.1f} s)")
-        for name, scene in time_shots():
+        for name, scene in time_shots(large):
             saved = os.environ["SPLASHDRAFT_CALIBRATION"]
             os.environ["SPLASHDRAFT_CALIBRATION"] = saved + ".absent"
             rough, _ = quick_estimate(scene, solver=solver)
@@ -93,7 +99,7 @@ def time_check():
 def main(argv=None):
     argv = sys.argv[1:] if argv is None else argv
     if "--time" in argv:
-        return 0 if time_check() else 1
+        return 0 if time_check(large="--large" in argv) else 1
     rows = []
     print(f"{'spacing m':>10s} {'best s':>8s}  result")
     for spacing in SPACINGS:

@@ -109,33 +109,36 @@ def whitewater(positions, velocities, particle_spacing, boundary_positions=None)
     zone[fluid_count < SPRAY_NEIGHBOURS] = ZONE_SPRAY
 
     offset = x[i] - x[j]  # x_ij
-    distance = np.linalg.norm(offset, axis=1)
-    weight = np.clip(1.0 - distance / support, 0.0, None)
+    distance = np.sqrt(np.einsum("ij,ij->i", offset, offset))
+    weight = 1.0 - distance / support  # > 0: every pair is closer than H
     with np.errstate(invalid="ignore", divide="ignore"):
-        direction = np.where(distance[:, None] > 0, offset / distance[:, None], 0.0)  # x^_ij
+        direction = offset / distance[:, None]  # x^_ij (a coincident pair gets NaN, zeroed below)
+    direction[distance == 0] = 0.0
     relative = v[i] - v[j]  # v_ij; the pair term is symmetric under i <-> j
-    speed = np.linalg.norm(relative, axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        alignment = np.where(speed > 0, np.einsum("ij,ij->i", relative, direction) / np.maximum(speed, 1e-300), 0.0)
-    term = speed * (1.0 - alignment) * weight
+    # |v_ij| (1 - v^_ij . x^_ij) = |v_ij| - v_ij . x^_ij
+    term = (np.sqrt(np.einsum("ij,ij->i", relative, relative)) - np.einsum("ij,ij->i", relative, direction)) * weight
     trapped = np.bincount(i, term, n) + np.bincount(j, term, n)
 
+    # Only surface and spray particles can be crests: their normals need the pairs that touch them,
+    # their curvature the pairs between two of them.
+    at_surface = zone != ZONE_INTERIOR
+    touch = np.flatnonzero(at_surface[i] | at_surface[j])
+    ti, tj = i[touch], j[touch]
     # Outward normals: n_i = -sum_j d^3 grad_i W(x_ij); grad_i W = f x_ij (kernel_terms).
-    _, f = kernel_terms(distance, support)
-    gradient = (d**3 * f)[:, None] * offset
+    _, f = kernel_terms(distance[touch], support)
+    gradient = (d**3 * f)[:, None] * offset[touch]
     normal = np.zeros((n, 3))
     for axis in range(3):
-        normal[:, axis] = -np.bincount(i, gradient[:, axis], n) + np.bincount(j, gradient[:, axis], n)
+        normal[:, axis] = -np.bincount(ti, gradient[:, axis], n) + np.bincount(tj, gradient[:, axis], n)
     length = np.linalg.norm(normal, axis=1)
     unit_normal = np.where(length[:, None] > 1e-12, normal / np.maximum(length, 1e-300)[:, None], 0.0)
-    at_surface = zone != ZONE_INTERIOR
-    bend = 1.0 - np.einsum("ij,ij->i", unit_normal[i], unit_normal[j])
+    both = np.flatnonzero(at_surface[i] & at_surface[j])
+    bi, bj, bdirection = i[both], j[both], direction[both]
+    bend = (1.0 - np.einsum("ij,ij->i", unit_normal[bi], unit_normal[bj])) * weight[both]
     # x^_ji . n^_i < 0: j lies behind i (convex side) seen from i; x_ji = -x_ij.
-    behind_i = np.einsum("ij,ij->i", -direction, unit_normal[i]) < 0
-    behind_j = np.einsum("ij,ij->i", direction, unit_normal[j]) < 0
-    both = at_surface[i] & at_surface[j]
-    curvature = (np.bincount(i, bend * weight * (behind_i & both), n)
-                 + np.bincount(j, bend * weight * (behind_j & both), n))
+    behind_i = np.einsum("ij,ij->i", bdirection, unit_normal[bi]) > 0
+    behind_j = np.einsum("ij,ij->i", bdirection, unit_normal[bj]) < 0
+    curvature = np.bincount(bi, bend * behind_i, n) + np.bincount(bj, bend * behind_j, n)
     speed_i = np.linalg.norm(v, axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         facing = np.einsum("ij,ij->i", v, unit_normal) / np.maximum(speed_i, 1e-300)
