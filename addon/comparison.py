@@ -65,6 +65,18 @@ def parse_result(stdout_lines):
     return result if isinstance(result, dict) and isinstance(result.get("frames"), list) else None
 
 
+def short_message(message, folders):
+    """The engine's message for the sidebar: each version folder replaced by the version's name.
+
+    Args:
+        message: text from the engine. folders: version name -> folder path.
+    """
+    for name, folder in folders.items():
+        for form in {str(folder), str(Path(folder).resolve())}:
+            message = message.replace(form.rstrip("/"), name)
+    return message
+
+
 def write_report(result, json_path, table_text=""):
     """Store ``result`` (and the per-frame table) beside the preview, each file written then renamed."""
     for path, text in ((Path(json_path), json.dumps(result, indent=1) + "\n"),

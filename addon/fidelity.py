@@ -80,7 +80,8 @@ class SPLASHDRAFT_OT_compare(bpy.types.Operator):
         except OSError as exc:
             self.report({"ERROR"}, f"compare: cannot start the engine ({exc.strerror or exc}); reinstall the extension")
             return {"CANCELLED"}
-        _state.update(job=job, names=(reference.name, preview.name), json_path=json_path)
+        _state.update(job=job, names=(reference.name, preview.name), json_path=json_path,
+                      folders={reference.name: reference.folder, preview.name: preview.folder})
         if bpy.app.background or context.window is None:
             job.wait()  # background mode and scripts: no event loop, so wait here
             return self._finish()
@@ -112,7 +113,8 @@ class SPLASHDRAFT_OT_compare(bpy.types.Operator):
             return {"CANCELLED"}
         result = comparison.parse_result(job.stdout_lines) if progress.state == "finished" else None
         if result is None:
-            self.report({"ERROR"}, f"compare {preview} against {reference}: {progress.message or 'no result'}")
+            message = comparison.short_message(progress.message or "no result", _state["folders"])
+            self.report({"ERROR"}, f"compare {preview} against {reference}: {message}")
             return {"CANCELLED"}
         from ..engine.compare import format_table
 

@@ -299,3 +299,7 @@ def test_compare_worker_result_matches_the_engine_and_names_a_spacing_mismatch(t
     run_ticks(job, RecordingUI())
     assert job.progress.state == "failed" and "particle spacings differ" in job.progress.message
     assert comparison.parse_result(job.stdout_lines) is None
+    # In the sidebar the version names stand for their folders.
+    short = comparison.short_message(job.progress.message, {"v003_sph": tmp_path / "v003_sph",
+                                                            "v002_sph": tmp_path / "v002_sph"})
+    assert "(v003_sph: 0.05 m, v002_sph: 0.025 m)" in short and str(tmp_path) not in short, short
