@@ -99,6 +99,7 @@ class BakeProgress:
         done, total: frames finished / to do. frame: the last finished frame.
         particles: particle count of the last finished frame.
         eta: seconds left as the engine estimates it (None before the first frame).
+        seconds: the bake's wall time as the engine reports it when finished.
         message: the error message, or the summary once finished.
         other_lines: non-event stderr lines (the tail of a crash), newest last.
     """
@@ -111,6 +112,7 @@ class BakeProgress:
     frame: int = None
     particles: int = 0
     eta: float = None
+    seconds: float = None
     message: str = ""
     other_lines: list = field(default_factory=list)
 
@@ -186,6 +188,7 @@ def apply_event(progress, event):
     elif kind == "finished":
         progress.state = "finished"
         seconds = float(event.get("seconds", 0.0))
+        progress.seconds = seconds
         progress.message = f"baked {plural(int(event.get('frames', progress.done)), 'frame')} in {format_seconds(seconds)}"
     elif kind == "cancelled":
         progress.state = "cancelled"
@@ -387,5 +390,6 @@ def summarize_estimate(estimate):
     if "disk_bytes" in estimate:
         parts.append(f"disk ~{format_bytes(estimate['disk_bytes'])}")
     if "seconds" in estimate:
-        parts.append(f"time ~{format_seconds(float(estimate['seconds']))}")
+        rough = "" if estimate.get("is_measured", True) else " (rough until a first bake)"
+        parts.append(f"time ~{format_seconds(float(estimate['seconds']))}{rough}")
     return ", ".join(parts)

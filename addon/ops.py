@@ -200,6 +200,7 @@ class _BakeUI:
             scene.splashdraft.bake_message = progress.status_text()
             folder = _job_context.get("folder")
             if folder and progress.state == "finished":
+                _learn_speed(folder, progress.seconds)
                 problems = display.check_version(folder)
                 for problem in problems:
                     display.warn_once((folder, "check", problem), problem)
@@ -211,6 +212,18 @@ class _BakeUI:
         self.window_manager.progress_end()
         level = {"finished": "INFO", "cancelled": "WARNING"}.get(progress.state, "ERROR")
         self.report({level}, progress.status_text(self.label))
+
+
+def _learn_speed(folder, seconds):
+    """Keep how fast this computer baked (engine.calibration), so the next estimate's time is measured."""
+    from ..engine import calibration
+
+    try:
+        reader = display.reader_for(folder)
+    except CacheError:
+        return
+    if seconds:
+        calibration.record_bake(reader.manifest["solver"]["name"], reader.manifest, seconds)
 
 
 class SPLASHDRAFT_OT_bake(bpy.types.Operator):
