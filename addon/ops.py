@@ -46,6 +46,7 @@ def sync_versions(scene, select=None):
         row = shot.versions.add()
         row.name, row.folder, row.solver = info["name"], str(info["path"]), info["solver"]
         row.frames, row.particles, row.complete = info["frames"], info["particles"], info["complete"]
+        row.notes = "\n".join(info.get("warnings", []))
     names = [info["name"] for info in found]
     if keep in names:
         index = names.index(keep)

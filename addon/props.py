@@ -91,6 +91,7 @@ class SPLASHDRAFT_PG_version(bpy.types.PropertyGroup):
     frames: IntProperty(name="Frames", description="Number of finished frames in this version", min=0)
     particles: IntProperty(name="Particles", description="Particles in the last finished frame", min=0)
     complete: BoolProperty(name="Complete", description="Every frame of the range was baked")
+    notes: StringProperty(name="Warnings", description="The bake's named warnings, one per line")
 
 
 SOLVER_ITEMS = (

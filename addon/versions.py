@@ -28,7 +28,9 @@ def list_versions(shot_dir):
     Returns:
         list of dicts: ``name`` ("v003_sph"), ``number`` (3), ``solver`` ("sph"),
         ``path`` (Path), ``frames`` (count of finished frames), ``complete`` (bool),
-        ``particles`` (count in the last finished frame), ``readable`` (manifest parsed).
+        ``particles`` (count in the last finished frame), ``readable`` (manifest parsed),
+        ``warnings`` (the bake's named warnings from its manifest, e.g. an input outside the
+        preview model's trained range).
     """
     shot_dir = Path(shot_dir)
     if not shot_dir.is_dir():
@@ -39,7 +41,7 @@ def list_versions(shot_dir):
         if not match or not child.is_dir():
             continue
         info = {"name": child.name, "number": int(match.group(1)), "solver": match.group(2), "path": child,
-                "frames": 0, "complete": False, "particles": 0, "readable": False}
+                "frames": 0, "complete": False, "particles": 0, "readable": False, "warnings": []}
         try:
             manifest = json.loads((child / "manifest.json").read_text(encoding="utf-8"))
             frames = manifest.get("frames", {})
@@ -48,6 +50,7 @@ def list_versions(shot_dir):
             if frames:
                 last = max(frames, key=int)
                 info["particles"] = int(frames[last].get("particles", 0))
+            info["warnings"] = [str(text) for text in manifest.get("warnings", []) if isinstance(text, str)]
             info["readable"] = True
         except (OSError, ValueError, AttributeError, TypeError):
             pass  # a version whose bake never started, or a damaged manifest: listed, shown as empty

@@ -279,6 +279,20 @@ def test_preview_against_reference_is_measured_in_the_background_and_shown_again
     assert all(len(line) <= 60 for line in lines), lines
 
 
+def test_a_preview_bake_outside_the_models_training_shows_its_named_warning_in_the_bakes_panel(tmp_path):
+    """A learned bake at a viscosity above the shipped model's trained range carries the named warning
+    in its manifest (engine side, tests/test_learned.py); the Bakes panel shows it for that version,
+    read back from the manifest the engine wrote (the oracle), and a reference bake shows none."""
+    result, output = blender_env.run_child(HERE, "child_range_warning", tmp_path, timeout=600)
+    assert result["bakes"] == [["FINISHED"], ["FINISHED"]], output[-4000:]
+    assert result["manifest_warnings"] and result["manifest_warnings"][0].startswith("viscosity-outside-training")
+    assert result["notes"] == ["", "\n".join(result["manifest_warnings"])], result
+    shown = " ".join(result["labels_learned"])
+    assert "viscosity-outside-training" in shown and "fluid.viscosity 0.2" in shown, result
+    assert not any("training" in label for label in result["labels_sph"]), result
+    assert all(len(label) <= 60 for label in result["labels_learned"]), result
+
+
 def test_panels_draw_only_existing_properties_and_operators():
     """Every panel of the sidebar tab, drawn for every role, names only properties and operators that exist.
 
@@ -384,6 +398,44 @@ def child_panels():
             panel.draw(type("Self", (), {"layout": RecordingLayout(log)})(), Context)
     log["category"] = ui.SPLASHDRAFT_PT_shot.bl_category
     return log
+
+
+def child_range_warning(tmp):
+    import bpy
+
+    tmp = Path(tmp)
+    scene = blender_env.reset_scene()
+    module = blender_env.enable_from_source()
+    ui = sys.modules[module + ".addon.ui"]
+    os.environ["SPLASHDRAFT_CALIBRATION"] = str(tmp / "calibration.json")
+    build_shot(scene, tmp / "cache")
+    shot = scene.splashdraft
+    shot.viscosity = 0.2
+    scene.frame_end = 2
+    bakes = []
+    for solver in ("sph", "learned"):
+        shot.solver = solver
+        bakes.append(sorted(bpy.ops.splashdraft.bake()))
+    learned = Path(shot.versions[1].folder)
+    out = {"bakes": bakes, "notes": [v.notes for v in shot.versions],
+           "manifest_warnings": json.loads((learned / "manifest.json").read_text())["warnings"]}
+    for index, key in ((0, "labels_sph"), (1, "labels_learned")):
+        shot.versions_index = index
+        labels = []
+
+        class Recorder(RecordingLayout):
+            def _child(self, *args, **kwargs):
+                return self
+
+            row = column = box = split = grid_flow = _child
+
+            def label(self, text="", **kwargs):
+                labels.append(text)
+
+        log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
+        ui.SPLASHDRAFT_PT_versions.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        out[key] = labels
+    return out
 
 
 def child_wheels(zip_path):
