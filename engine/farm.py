@@ -317,6 +317,8 @@ def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_se
         write_manifest(out_dir, manifest)
 
     def on_poll(pending):
+        if stop_flag.is_set:  # SIGTERM (e.g. the add-on's Stop) or a first Ctrl-C: stop as Ctrl-C does
+            raise KeyboardInterrupt
         changed = False
         for job in pending.values():
             entry = _entry(manifest, job["name"])
@@ -329,6 +331,9 @@ def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_se
         if changed:
             write_manifest(out_dir, manifest)
 
+    from .bake import StopFlag
+
+    stop_flag = StopFlag().install()
     try:
         collect(futures, on_done, on_poll, poll_seconds)
     except KeyboardInterrupt:
@@ -342,6 +347,8 @@ def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_se
             entry.update(state="partial", frames_done=variant_progress(entry["cache"])[0])
         write_manifest(out_dir, manifest)
         return False
+    finally:
+        stop_flag.restore()
     return True
 
 
