@@ -16,6 +16,14 @@ folder, so ``--out`` must be on storage every worker sees at the same path.
 writes a token file into ``--out`` and each worker must read it back and
 write one of its own; workers that cannot are named.
 
+Speed (measured; DEVELOPERS.md "Wedges and farm bakes"): every task first calls
+``keep_freed_memory`` (Dask starts workers with a malloc setting that made a bake
+spend 40 % more CPU in page faults), and a LocalCluster's workers run without Dask's
+statistical profiler and with every library's thread pool sized to cores / workers.
+
+``run_jobs`` is the same path for other per-shot work (``training.generate`` and
+``bench/eval_learned.py`` with ``--workers``/``--scheduler``).
+
 A worker that dies mid-bake: the scheduler hands the task to another worker
 (Dask's ``allowed-failures``, 3 by default), which resumes the variant from
 its last checkpoint (``engine.bake`` resume). Only the frame being computed
@@ -23,7 +31,7 @@ is lost, and the resumed frames are bit-identical (the bake is deterministic).
 
 Progress: the client polls each variant's cache manifest (written atomically
 by the bake) and reports frames per variant; ``WedgeProgress`` prints lines
-or JSON events. Cancel (Ctrl-C on the client): a Dask ``Event`` that each
+or JSON events. Cancel (Ctrl-C or SIGTERM on the client): a Dask ``Event`` that each
 bake polls after every frame is set, so workers stop after their current
 frame; re-running the same command resumes.
 """
@@ -205,13 +213,6 @@ def worker_environment(threads):
     return {name: str(threads) for name in THREAD_VARIABLES}
 
 
-def dask_config():
-    """The ``dask.config`` module (imported with distributed)."""
-    import dask.config
-
-    return dask.config
-
-
 def connect(scheduler=None, workers=None, timeout=30.0):
     """(client, cluster or None): a client of the scheduler at ``scheduler``, or of a new LocalCluster.
 
@@ -240,7 +241,8 @@ def connect(scheduler=None, workers=None, timeout=30.0):
     # samples every worker thread's stack every 10 ms under the GIL, which the pure-Python solver loop
     # pays for; the bake reports its own progress, so the profiler is off in our workers. Thread-pool
     # sizes must be in the environment before a worker imports numpy: Dask's pre-spawn environment.
-    config = dask_config()
+    import dask.config as config
+
     environment = dict(config.get("distributed.nanny.pre-spawn-environ"), **worker_environment(threads))
     with config.set({"distributed.worker.profile.enabled": False, "distributed.nanny.pre-spawn-environ": environment}):
         cluster = distributed.LocalCluster(
