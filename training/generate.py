@@ -187,8 +187,9 @@ def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=prin
 
     if scheduler is not None or workers:
         from engine.farm import run_jobs
+        from training.generate import generate_shot as task  # by module name (not __main__) for the workers
 
-        run_jobs(generate_shot, jobs, out, scheduler=scheduler, workers=workers, on_done=record, log=log)
+        run_jobs(task, jobs, out, scheduler=scheduler, workers=workers, on_done=record, log=log)
     else:
         for job in jobs:
             record(job, generate_shot(job))
