@@ -244,11 +244,21 @@ def connect(scheduler=None, workers=None, timeout=30.0):
     import dask.config as config
 
     environment = dict(config.get("distributed.nanny.pre-spawn-environ"), **worker_environment(threads))
-    with config.set({"distributed.worker.profile.enabled": False, "distributed.nanny.pre-spawn-environ": environment}):
-        cluster = distributed.LocalCluster(
-            n_workers=count, threads_per_worker=1, processes=True, dashboard_address=None,
-            silence_logs=logging.ERROR,
-        )  # fmt: skip
+    saved = {name: os.environ.get(name) for name in environment}
+    try:
+        with config.set({"distributed.worker.profile.enabled": False,
+                         "distributed.nanny.pre-spawn-environ": environment}):  # fmt: skip
+            cluster = distributed.LocalCluster(
+                n_workers=count, threads_per_worker=1, processes=True, dashboard_address=None,
+                silence_logs=logging.ERROR,
+            )  # fmt: skip
+    finally:
+        # Dask writes the pre-spawn environment into this process's own; put back what was here.
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
     client = distributed.Client(cluster, set_as_default=False)
     return client, cluster
 
