@@ -13,6 +13,7 @@ does not mount the studio's storage.
 """
 
 import json
+import os
 import shutil
 import subprocess
 import sys
@@ -113,7 +114,7 @@ def blind_worker(tmp_path):
     worker_command = (f"mount -t tmpfs tmpfs {tmp_path} && exec {sys.executable} -m dask worker {address} "
                       "--nthreads 1 --no-nanny --no-dashboard --host 127.0.0.1")  # fmt: skip
     worker = subprocess.Popen(["unshare", "-m", "sh", "-c", worker_command], cwd=ROOT, stdout=log, stderr=log,
-                              env=dict(__import__("os").environ, PYTHONPATH=str(ROOT)), start_new_session=True)  # fmt: skip
+                              env=dict(os.environ, PYTHONPATH=str(ROOT)), start_new_session=True)  # fmt: skip
     with distributed.Client(address, timeout="30s") as client:
         client.wait_for_workers(1, timeout=60)
     yield address
