@@ -82,11 +82,12 @@ def scene_hash(scene):
     return hash_of_scene(scene)
 
 
-def make_solver(name, model=None):
+def make_solver(name, model=None, threads=None):
     """A fresh solver called ``name`` ("sph" or "learned"), imported lazily.
 
     ``model`` (learned only): a model folder, .onnx or .json (``engine.learned.contract.find_model``);
-    None is the shipped model.
+    None is the shipped model. ``threads`` (learned only): onnxruntime intra-op threads (None: the
+    solver's default); the reference solver's pool is sized by SPLASHDRAFT_THREADS at import.
     """
     if name == "sph":
         if model is not None:
@@ -97,11 +98,12 @@ def make_solver(name, model=None):
     if name == "learned":
         from .learned import LearnedSolver
 
+        options = {} if threads is None else {"threads": max(1, int(threads))}
         if model is not None:
             from .learned.contract import find_model
 
-            return LearnedSolver(model=find_model(model))
-        return LearnedSolver()
+            return LearnedSolver(model=find_model(model), **options)
+        return LearnedSolver(**options)
     raise UsageError(f"solver {name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
 
 
