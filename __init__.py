@@ -1,11 +1,11 @@
 """Splashdraft: the Blender extension's package root (blender_manifest.toml lives here).
 
 Blender imports this folder as ``bl_ext.<repo>.splashdraft`` and calls
-``register()``. The bake worker imports it under the same name
-(``addon.jobs.boot_code``) to reach ``<name>.engine``; outside Blender the
-engine is the installed top-level package ``engine``. So this file imports
-nothing at module level: importing the engine never pulls in bpy, and
-``addon`` is imported only when Blender registers the extension.
+``register()``; inside Blender the engine is only ``bl_ext.<repo>.splashdraft.engine``.
+Outside Blender's process (the bake worker, ``addon.jobs.boot_code``, and any
+``pip install`` of the checkout) the engine is the top-level package ``engine``.
+This file imports nothing at module level: importing the engine never pulls in
+bpy, and ``addon`` is imported only when Blender registers the extension.
 """
 
 

@@ -3,7 +3,10 @@
 The object keeps its name, modifiers and material when the artist switches
 versions; only the vertices and their attributes change. Attributes on the
 points: ``velocity`` (Blender units/s, what motion blur reads), ``speed``
-(m/s), ``id`` (int), ``density`` (kg/m³), ``pressure`` (Pa).
+(m/s), ``id`` (int), ``density`` (kg/m³), ``pressure`` (Pa), and the engine's
+white-water measures (``engine.whitewater``): ``zone`` (int: 0 interior,
+1 surface, 2 spray), ``trapped_air``, ``wave_crest`` and ``foam`` (0..1). The
+default material whitens foam and spray.
 
 Rendering: a Geometry Nodes modifier turns the vertices into spheres
 (Mesh to Points, radius = point size x spacing) and sets a material coloured by
@@ -98,12 +101,17 @@ def empty_frame():
             "ids": np.zeros(0, np.int32), "density": np.zeros(0, np.float32), "pressure": np.zeros(0, np.float32)}
 
 
+#: White-water attributes of the points and the surface: name -> Blender attribute type.
+WHITEWATER_ATTRIBUTES = {"zone": "INT", "trapped_air": "FLOAT", "wave_crest": "FLOAT", "foam": "FLOAT"}
+
+
 def write_points(mesh, arrays, scale_length=1.0):
     """Replace the vertices of ``mesh`` by the particles of one frame.
 
     Args:
         mesh: a bpy Mesh (its vertices and attributes are replaced).
-        arrays: ``positions``, ``velocities`` (N, 3) m and m/s; ``ids``, ``density``, ``pressure`` (N,).
+        arrays: ``positions``, ``velocities`` (N, 3) m and m/s; ``ids``, ``density``, ``pressure`` (N,);
+            optionally the white-water arrays (``WHITEWATER_ATTRIBUTES``; zeros when absent).
         scale_length: metres per Blender unit (positions and velocity are divided by it).
     """
     positions = np.asarray(arrays["positions"], np.float32)
@@ -123,6 +131,9 @@ def write_points(mesh, arrays, scale_length=1.0):
         "density": ("FLOAT", "value", np.asarray(arrays["density"], np.float32)),
         "pressure": ("FLOAT", "value", np.asarray(arrays["pressure"], np.float32)),
     }
+    for name, kind in WHITEWATER_ATTRIBUTES.items():
+        # Caches baked before the white-water attributes existed show as unmarked liquid (zeros).
+        values[name] = (kind, "value", arrays.get(name, np.zeros(count)))
     for name, (kind, key, data) in values.items():
         attribute = attrs.get(name) or attrs.new(name, kind, "POINT")
         if count:
@@ -302,10 +313,19 @@ FALL_HEIGHT_FOR_TOP = 0.45  # m; a free fall of 45 cm ends at about 3 m/s
 STANDARD_GRAVITY = 9.80665  # m/s^2
 #: Ramp stops (position, linear RGBA): deep teal at rest, jade when moving, amber in the fast splash.
 SPEED_RAMP = ((0.0, (0.015, 0.12, 0.13, 1.0)), (0.45, (0.05, 0.48, 0.42, 1.0)), (1.0, (0.96, 0.66, 0.24, 1.0)))
+#: Foam and spray (our own): a warm chalk white the speed colour blends into by the foam measure,
+#: fully for spray particles (``zone`` 2).
+FOAM_COLOUR = (0.86, 0.84, 0.78, 1.0)
+
+
+def _socket(sockets, identifier):
+    # Mix nodes carry one socket per data type under the same name; the identifier picks the colour one.
+    return next(socket for socket in sockets if socket.identifier == identifier)
 
 
 def liquid_material():
-    """Material coloured by the ``speed`` attribute through the fall-height ramp above."""
+    """Material coloured by the ``speed`` attribute through the fall-height ramp above, whitened by
+    the ``foam`` attribute and for spray (``zone`` 2)."""
     material = bpy.data.materials.get(MATERIAL_NAME)
     if material is not None:
         return material
@@ -329,7 +349,25 @@ def liquid_material():
     for element, (position, colour) in zip(elements, SPEED_RAMP):
         element.position, element.color = position, colour
     links.new(scale.outputs["Result"], ramp.inputs["Fac"])
-    links.new(ramp.outputs["Color"], shader.inputs["Base Color"])
+    # White water (engine.whitewater): foam (0..1) and spray (zone 2) blend towards FOAM_COLOUR.
+    foam = nodes.new("ShaderNodeAttribute")
+    foam.attribute_name = "foam"
+    zone = nodes.new("ShaderNodeAttribute")
+    zone.attribute_name = "zone"
+    is_spray = nodes.new("ShaderNodeMath")
+    is_spray.operation = "GREATER_THAN"
+    is_spray.inputs[1].default_value = 1.5
+    links.new(zone.outputs["Fac"], is_spray.inputs[0])
+    whiteness = nodes.new("ShaderNodeMath")
+    whiteness.operation = "MAXIMUM"
+    links.new(foam.outputs["Fac"], whiteness.inputs[0])
+    links.new(is_spray.outputs["Value"], whiteness.inputs[1])
+    mix = nodes.new("ShaderNodeMix")
+    mix.data_type = "RGBA"
+    _socket(mix.inputs, "B_Color").default_value = FOAM_COLOUR
+    links.new(whiteness.outputs["Value"], _socket(mix.inputs, "Factor_Float"))
+    links.new(ramp.outputs["Color"], _socket(mix.inputs, "A_Color"))
+    links.new(_socket(mix.outputs, "Result_Color"), shader.inputs["Base Color"])
     shader.inputs["Roughness"].default_value = 0.12
     material.diffuse_color = SPEED_RAMP[1][1]
     return material
@@ -354,7 +392,7 @@ def points_group(material):
 
 
 def surface_group(material):
-    """Points -> joined, smoothed liquid surface carrying ``velocity`` and ``speed`` (Blender 4.2 and newer).
+    """Points -> joined, smoothed liquid surface carrying ``velocity``, ``speed``, ``zone`` and ``foam`` (4.2+).
 
     Steps: every point becomes a sphere of ``Radius`` in a volume of ``Voxel Size`` (Points to
     Volume); the union is meshed (Volume to Mesh), so neighbouring particles join into one
@@ -363,8 +401,8 @@ def surface_group(material):
     volume ends); then the mesh is relaxed ``Smoothing`` times (Blur Attribute on positions,
     which rounds the sphere bumps). A lone droplet keeps a sphere of about
     ``Radius - Shrink`` and a one-particle sheet a thickness of about twice that, so spray and
-    thin sheets stay visible. Each vertex takes ``velocity`` and ``speed`` of its nearest
-    particle, for shading and motion blur. Every input is a length in Blender units (set
+    thin sheets stay visible. Each vertex takes ``velocity``, ``speed``, ``zone`` and ``foam`` of
+    its nearest particle, for shading and motion blur. Every input is a length in Blender units (set
     from the particle spacing by ``apply_display_settings``).
     """
     group, is_new = _new_group(SURFACE_GROUP)
@@ -412,12 +450,23 @@ def surface_group(material):
     # Shrink first, relax after: relaxing a droplet's small sphere first would leave the shrink
     # nothing to take from (it would vanish); this way a lone droplet keeps about half a spacing.
     links.new(shrink.outputs["Geometry"], relax.inputs["Geometry"])
-    # Velocity and speed of the nearest particle, for shading and motion blur.
+    # Velocity, speed, zone and foam of the nearest particle, for shading and motion blur.
+    # The nearest particle is looked up once and stored: a field feeding several Store nodes is
+    # evaluated once per node, and the lookup is the costly part (measured: bench/bench_surface.py).
     nearest = nodes.new("GeometryNodeSampleNearest")
     nearest.domain = "POINT"
     links.new(to_points.outputs["Points"], nearest.inputs["Geometry"])
-    geometry = relax.outputs["Geometry"]
-    for attribute, kind in (("velocity", "FLOAT_VECTOR"), ("speed", "FLOAT")):
+    keep_index = nodes.new("GeometryNodeStoreNamedAttribute")
+    keep_index.data_type = "INT"
+    keep_index.domain = "POINT"
+    keep_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
+    links.new(relax.outputs["Geometry"], keep_index.inputs["Geometry"])
+    links.new(nearest.outputs["Index"], keep_index.inputs["Value"])
+    read_index = nodes.new("GeometryNodeInputNamedAttribute")
+    read_index.data_type = "INT"
+    read_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
+    geometry = keep_index.outputs["Geometry"]
+    for attribute, kind in (("velocity", "FLOAT_VECTOR"), ("speed", "FLOAT"), ("zone", "INT"), ("foam", "FLOAT")):
         read = nodes.new("GeometryNodeInputNamedAttribute")
         read.data_type = kind
         read.inputs["Name"].default_value = attribute
@@ -426,7 +475,7 @@ def surface_group(material):
         sample.domain = "POINT"
         links.new(to_points.outputs["Points"], sample.inputs["Geometry"])
         links.new(read.outputs["Attribute"], sample.inputs["Value"])
-        links.new(nearest.outputs["Index"], sample.inputs["Index"])
+        links.new(read_index.outputs["Attribute"], sample.inputs["Index"])
         store = nodes.new("GeometryNodeStoreNamedAttribute")
         store.data_type = kind
         store.domain = "POINT"
@@ -434,13 +483,20 @@ def surface_group(material):
         links.new(geometry, store.inputs["Geometry"])
         links.new(sample.outputs[0], store.inputs["Value"])
         geometry = store.outputs["Geometry"]
+    forget_index = nodes.new("GeometryNodeRemoveAttribute")
+    forget_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
+    links.new(geometry, forget_index.inputs["Geometry"])
     smooth = nodes.new("GeometryNodeSetShadeSmooth")
-    links.new(geometry, smooth.inputs[0])
+    links.new(forget_index.outputs["Geometry"], smooth.inputs[0])
     set_material = nodes.new("GeometryNodeSetMaterial")
     set_material.inputs["Material"].default_value = material
     links.new(smooth.outputs[0], set_material.inputs["Geometry"])
     links.new(set_material.outputs["Geometry"], sink.inputs["Geometry"])
     return group
+
+
+#: Temporary surface attribute: the index of each vertex's nearest particle (removed before output).
+NEAREST_ATTRIBUTE = "splashdraft_nearest"
 
 
 #: Where a flat face of the surface should sit beyond the outermost particle centres, in spacings:
@@ -449,7 +505,7 @@ def surface_group(material):
 FACE_OFFSET = 0.55
 
 
-def surface_inputs(spacing, reach=1.0, detail=0.6, smoothing=3):
+def surface_inputs(spacing, reach=1.0, detail=0.8, smoothing=3):
     """Inputs of the surface node group, in Blender units, from settings in particle spacings.
 
     Args:
@@ -483,12 +539,13 @@ def pass_through_group():
 
 
 def reader_group():
-    """Scene frame -> file name -> Import PLY -> metres to scene units -> velocity/speed/id attributes.
+    """Scene frame -> file name -> Import PLY -> metres to scene units -> velocity/speed/id/zone attributes.
 
     Inputs: ``Path Pattern`` (a Python-style format string with ``{frame}``, e.g.
     ``/cache/v001_sph/points_{frame:04d}.ply``) and ``Scale`` (Blender units per metre).
-    The PLY's own properties (vx, vy, vz, id, density, pressure) arrive as float point
-    attributes; density and pressure keep their names.
+    The PLY's own properties (vx, vy, vz, id, density, pressure, zone, trapped_air, wave_crest,
+    foam) arrive as float point attributes; density, pressure and the white-water floats keep
+    their names, ``id`` and ``zone`` are stored again as integers.
     """
     group, is_new = _new_group(READER_GROUP)
     if not is_new:
@@ -527,9 +584,13 @@ def reader_group():
     read_id.data_type = "FLOAT"
     read_id.inputs["Name"].default_value = "id"
     geometry = transform.outputs["Geometry"]
+    read_zone = nodes.new("GeometryNodeInputNamedAttribute")
+    read_zone.data_type = "FLOAT"
+    read_zone.inputs["Name"].default_value = "zone"
     for attribute, kind, value in (("velocity", "FLOAT_VECTOR", velocity.outputs["Vector"]),
                                    ("speed", "FLOAT", speed.outputs["Value"]),
-                                   ("id", "INT", read_id.outputs["Attribute"])):
+                                   ("id", "INT", read_id.outputs["Attribute"]),
+                                   ("zone", "INT", read_zone.outputs["Attribute"])):
         store = nodes.new("GeometryNodeStoreNamedAttribute")
         store.data_type = kind
         store.domain = "POINT"

@@ -25,42 +25,28 @@ from ..engine.estimate import format_bytes
 CANCEL_GRACE_SECONDS = 120.0
 
 
-#: The extension's package name in this process (``bl_ext.<repo>.splashdraft`` inside Blender); the
-#: worker imports the engine under the same name, so the engine has one name wherever Blender runs it.
-EXTENSION_PACKAGE = __package__.rpartition(".")[0]
+def boot_code(extension_root, wheel_site=None):
+    """Python source for ``-c``: put the engine and the bundled wheels on sys.path, run the CLI.
 
-_BOOT = """\
-import importlib, importlib.util, sys, types
-sys.path[:0] = {wheel_paths!r}
-name, root = {package!r}, {root!r}
-parts = name.split(".")
-for depth in range(1, len(parts)):
-    parent = types.ModuleType(".".join(parts[:depth]))
-    parent.__path__ = []
-    sys.modules.setdefault(parent.__name__, parent)
-spec = importlib.util.spec_from_file_location(name, root + "/__init__.py", submodule_search_locations=[root])
-sys.modules[name] = importlib.util.module_from_spec(spec)
-spec.loader.exec_module(sys.modules[name])
-sys.exit(importlib.import_module(name + ".engine.cli").main(sys.argv[1:]))
-"""
-
-
-def boot_code(extension_root, wheel_site=None, package=EXTENSION_PACKAGE):
-    """Python source for ``-c``: import the extension under its own package name and run the engine's CLI.
-
-    Blender calls its Python with ``-I`` (isolated: PYTHONPATH and user site ignored), so the
-    child cannot find the extension or its bundled wheels by itself. This is the project's one
-    import-path bootstrap: the wheel folder goes on ``sys.path``; the extension folder is
-    imported as ``package`` (its ``__init__`` imports nothing), so the worker runs
-    ``<package>.engine``, the same module names the add-on uses inside Blender.
+    This is the project's one import-path bootstrap. Blender calls its Python with ``-I``
+    (isolated: PYTHONPATH and user site ignored), so the child sets ``sys.path`` itself. The
+    worker is a process of its own, outside Blender: it imports the engine as ``engine``, the
+    name the installed engine has everywhere outside Blender, and the processes it starts (the
+    Dask workers of a wedge, which receive its ``sys.path``) find the same name. Inside
+    Blender's process the engine is only ever ``<extension package>.engine`` (the add-on, and
+    the tools and tests that drive it, import it through the add-on's package).
 
     Args:
         extension_root: folder that holds ``engine/`` (the extension root).
         wheel_site: Blender's extension site-packages with scipy/onnxruntime, or None.
-        package: the extension's package name (default: this add-on's own).
     """
-    wheel_paths = [str(wheel_site)] if wheel_site else []
-    return _BOOT.format(wheel_paths=wheel_paths, package=package, root=str(extension_root))
+    paths = [str(extension_root)]
+    if wheel_site:
+        paths.append(str(wheel_site))
+    return (
+        "import sys; sys.path[:0] = %r; "
+        "from engine.cli import main; sys.exit(main(sys.argv[1:]))" % (paths,)
+    )
 
 
 def bake_command(python, python_args, extension_root, scene_path, out_dir, solver="sph",
@@ -116,6 +102,7 @@ class BakeProgress:
         done, total: frames finished / to do. frame: the last finished frame.
         particles: particle count of the last finished frame.
         eta: seconds left as the engine estimates it (None before the first frame).
+        seconds: the bake's wall time as the engine reports it when finished.
         message: the error message, or the summary once finished.
         other_lines: non-event stderr lines (the tail of a crash), newest last.
     """
@@ -128,6 +115,7 @@ class BakeProgress:
     frame: int = None
     particles: int = 0
     eta: float = None
+    seconds: float = None
     message: str = ""
     other_lines: list = field(default_factory=list)
 
@@ -203,6 +191,7 @@ def apply_event(progress, event):
     elif kind == "finished":
         progress.state = "finished"
         seconds = float(event.get("seconds", 0.0))
+        progress.seconds = seconds
         progress.message = f"baked {plural(int(event.get('frames', progress.done)), 'frame')} in {format_seconds(seconds)}"
     elif kind == "cancelled":
         progress.state = "cancelled"
@@ -404,5 +393,6 @@ def summarize_estimate(estimate):
     if "disk_bytes" in estimate:
         parts.append(f"disk ~{format_bytes(estimate['disk_bytes'])}")
     if "seconds" in estimate:
-        parts.append(f"time ~{format_seconds(float(estimate['seconds']))}")
+        rough = "" if estimate.get("is_measured", True) else " (rough until a first bake)"
+        parts.append(f"time ~{format_seconds(float(estimate['seconds']))}{rough}")
     return ", ".join(parts)

@@ -46,6 +46,7 @@ def sync_versions(scene, select=None):
         row = shot.versions.add()
         row.name, row.folder, row.solver = info["name"], str(info["path"]), info["solver"]
         row.frames, row.particles, row.complete = info["frames"], info["particles"], info["complete"]
+        row.notes = "\n".join(info.get("warnings", []))
     names = [info["name"] for info in found]
     if keep in names:
         index = names.index(keep)
@@ -200,6 +201,7 @@ class _BakeUI:
             scene.splashdraft.bake_message = progress.status_text()
             folder = _job_context.get("folder")
             if folder and progress.state == "finished":
+                _learn_speed(folder, progress.seconds)
                 problems = display.check_version(folder)
                 for problem in problems:
                     display.warn_once((folder, "check", problem), problem)
@@ -211,6 +213,18 @@ class _BakeUI:
         self.window_manager.progress_end()
         level = {"finished": "INFO", "cancelled": "WARNING"}.get(progress.state, "ERROR")
         self.report({level}, progress.status_text(self.label))
+
+
+def _learn_speed(folder, seconds):
+    """Keep how fast this computer baked (engine.calibration), so the next estimate's time is measured."""
+    from ..engine import calibration
+
+    try:
+        reader = display.reader_for(folder)
+    except CacheError:
+        return
+    if seconds:
+        calibration.record_bake(reader.manifest["solver"]["name"], reader.manifest, seconds)
 
 
 class SPLASHDRAFT_OT_bake(bpy.types.Operator):

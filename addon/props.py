@@ -91,6 +91,7 @@ class SPLASHDRAFT_PG_version(bpy.types.PropertyGroup):
     frames: IntProperty(name="Frames", description="Number of finished frames in this version", min=0)
     particles: IntProperty(name="Particles", description="Particles in the last finished frame", min=0)
     complete: BoolProperty(name="Complete", description="Every frame of the range was baked")
+    notes: StringProperty(name="Warnings", description="The bake's named warnings, one per line")
 
 
 SOLVER_ITEMS = (
@@ -154,7 +155,7 @@ class SPLASHDRAFT_PG_shot(bpy.types.PropertyGroup):
         default=1.0, min=0.9, max=3.0, update=_redraw_display)
     surface_detail: FloatProperty(
         name="Voxel size", description="Size of the volume cells the surface is built from, in particle spacings; "
-        "smaller is finer and slower", default=0.6, min=0.2, max=2.0, update=_redraw_display)
+        "smaller is finer and slower", default=0.8, min=0.2, max=2.0, update=_redraw_display)
     surface_smoothing: IntProperty(
         name="Smoothing", description="Relaxation passes over the surface; more rounds off the particle bumps "
         "and thins small droplets", default=3, min=0, max=30, update=_redraw_display)

@@ -1,5 +1,7 @@
 """The Splashdraft tab of the 3D viewport sidebar (N panel)."""
 
+import textwrap
+
 import bpy
 
 from . import display, ops, paths
@@ -125,6 +127,11 @@ class SPLASHDRAFT_PT_versions(_SidebarPanel, bpy.types.Panel):
         row = layout.row()
         row.template_list("SPLASHDRAFT_UL_versions", "", shot, "versions", shot, "versions_index", rows=3)
         row.operator("splashdraft.refresh_versions", text="", icon="FILE_REFRESH")
+        if 0 <= shot.versions_index < len(shot.versions) and shot.versions[shot.versions_index].notes:
+            box = layout.box()
+            for note in shot.versions[shot.versions_index].notes.splitlines():
+                for k, line in enumerate(textwrap.wrap(note, 52)):
+                    box.label(text=line, icon="ERROR" if k == 0 else "BLANK1")
         layout.use_property_split = True
         layout.prop(shot, "display_object")
         layout.operator("splashdraft.add_liquid_object", icon="OUTLINER_OB_POINTCLOUD")

@@ -4,7 +4,8 @@ Every bake writes a new version folder, so earlier bakes stay available to
 compare and swap. A version folder holds the engine's bake output
 (``manifest.json``, ``points_####.ply``, ``checkpoint.npz``; see
 DEVELOPERS.md) and, under ``input/``, the scene file and meshes the add-on
-exported for that bake.
+exported for that bake. A wedge started from the add-on is a ``v004_wedge`` folder holding the
+engine's wedge layout (``wedge.json``, one cache folder per variant); each variant is a version.
 """
 
 import json
@@ -12,8 +13,10 @@ import re
 from pathlib import Path
 
 VERSION_PATTERN = re.compile(r"^v(\d{3,})_([a-z]+)$")
+VARIANT_PATTERN = re.compile(r"^v\d{2,}(_[A-Za-z0-9._-]*)?$")
 INPUT_FOLDER = "input"
 SCENE_FILE = "scene.json"
+WEDGE_MANIFEST = "wedge.json"  # engine.wedge.WEDGE_MANIFEST
 
 
 def safe_name(text, fallback="shot"):
@@ -23,12 +26,14 @@ def safe_name(text, fallback="shot"):
 
 
 def list_versions(shot_dir):
-    """Version folders of a shot, oldest first.
+    """Version folders of a shot, oldest first; a wedge folder lists one version per variant.
 
     Returns:
-        list of dicts: ``name`` ("v003_sph"), ``number`` (3), ``solver`` ("sph"),
-        ``path`` (Path), ``frames`` (count of finished frames), ``complete`` (bool),
-        ``particles`` (count in the last finished frame), ``readable`` (manifest parsed).
+        list of dicts: ``name`` ("v003_sph", or "v004_wedge/v01_viscosity-0.05" for a wedge variant),
+        ``number`` (3), ``solver`` ("sph"), ``path`` (Path), ``frames`` (count of finished frames),
+        ``complete`` (bool), ``particles`` (count in the last finished frame), ``readable`` (manifest parsed),
+        ``warnings`` (the bake's named warnings from its manifest, e.g. an input outside the preview
+        model's trained range).
     """
     shot_dir = Path(shot_dir)
     if not shot_dir.is_dir():
@@ -38,22 +43,44 @@ def list_versions(shot_dir):
         match = VERSION_PATTERN.match(child.name)
         if not match or not child.is_dir():
             continue
-        info = {"name": child.name, "number": int(match.group(1)), "solver": match.group(2), "path": child,
-                "frames": 0, "complete": False, "particles": 0, "readable": False}
-        try:
-            manifest = json.loads((child / "manifest.json").read_text(encoding="utf-8"))
-            frames = manifest.get("frames", {})
-            info["frames"] = len(frames)
-            info["complete"] = bool(manifest.get("complete", False))
-            if frames:
-                last = max(frames, key=int)
-                info["particles"] = int(frames[last].get("particles", 0))
-            info["readable"] = True
-        except (OSError, ValueError, AttributeError, TypeError):
-            pass  # a version whose bake never started, or a damaged manifest: listed, shown as empty
-        found.append(info)
-    found.sort(key=lambda item: item["number"])
+        number = int(match.group(1))
+        variants = wedge_variants(child)
+        if variants is not None:
+            found += [_version_info(f"{child.name}/{name}", number, solver, child / name) for name, solver in variants]
+        else:
+            found.append(_version_info(child.name, number, match.group(2), child))
+    found.sort(key=lambda item: item["number"])  # stable: a wedge's variants keep their order
     return found
+
+
+def wedge_variants(folder):
+    """[(variant name, solver)] of the wedge manifest in ``folder`` (engine/wedge.py layout), or None."""
+    try:
+        manifest = json.loads((Path(folder) / WEDGE_MANIFEST).read_text(encoding="utf-8"))
+        solver = str(manifest.get("solver", "sph"))
+        names = [str(v["name"]) for v in manifest["variants"]]
+        # Only plain folder names inside the wedge folder (the engine writes v00_key-value names).
+        return [(name, solver) for name in names if VARIANT_PATTERN.match(name)]
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        return None
+
+
+def _version_info(name, number, solver, path):
+    info = {"name": name, "number": number, "solver": solver, "path": path,
+            "frames": 0, "complete": False, "particles": 0, "readable": False, "warnings": []}
+    try:
+        manifest = json.loads((path / "manifest.json").read_text(encoding="utf-8"))
+        frames = manifest.get("frames", {})
+        info["frames"] = len(frames)
+        info["complete"] = bool(manifest.get("complete", False))
+        if frames:
+            last = max(frames, key=int)
+            info["particles"] = int(frames[last].get("particles", 0))
+        info["warnings"] = [str(text) for text in manifest.get("warnings", []) if isinstance(text, str)]
+        info["readable"] = True
+    except (OSError, ValueError, AttributeError, TypeError):
+        pass  # a version whose bake never started, or a damaged manifest: listed, shown as empty
+    return info
 
 
 def next_version_dir(shot_dir, solver):

@@ -3,7 +3,9 @@
 Usage:  .venv/bin/python -m bench.bench_surface [--points 100000] [--repeats 5]
 
 Target (Blender 5.0, bpy module, 2 cores): building the joined surface of one
-100k-particle frame <= 0.3 s. The frame is made up here: a resting pool (a
+100k-particle frame <= 0.3 s (wall time; CPU seconds of the process are printed beside it,
+steadier on a shared machine). ``--compare-detail 0.6`` also times the same frames with
+another voxel size, alternating, for a ratio measured in the same run. The frame is made up here: a resting pool (a
 jittered lattice slab), a one-particle-thick curved sheet rising from it and a
 cloud of droplets (70 / 20 / 10 % of the points), at 1 cm spacing. Each repeat
 moves every particle a little (a new frame: nothing is reused from the last
@@ -46,59 +48,98 @@ def splash_frame(points, spacing, rng):
     return np.concatenate([pool, sheet, drops])
 
 
-def child_surface(points, repeats):
+def child_surface(points, repeats, compare_detail="0"):
     import bpy
     import numpy as np
 
-    points, repeats = int(points), int(repeats)
+    points, repeats, compare_detail = int(points), int(repeats), float(compare_detail)
     blender_env.reset_scene()
     module = blender_env.enable_from_source()
     display = sys.modules[module + ".addon.display"]
     spacing = 0.01
     rng = np.random.default_rng(0)
-    mesh = bpy.data.meshes.new("bench liquid")
-    obj = bpy.data.objects.new("bench liquid", mesh)
-    bpy.context.scene.collection.objects.link(obj)
-    modifier = obj.modifiers.new("surface", "NODES")
-    modifier.node_group = display.surface_group(display.liquid_material())
-    for name, value in display.surface_inputs(spacing).items():
-        modifier[modifier.node_group.interface.items_tree[name].identifier] = value
+    group = display.surface_group(display.liquid_material())
+    objects = {}
+    for label, inputs in (("default", display.surface_inputs(spacing)),
+                          ("compare", display.surface_inputs(spacing, detail=compare_detail))):
+        if label == "compare" and not compare_detail:
+            continue
+        obj = bpy.data.objects.new(f"bench {label}", bpy.data.meshes.new(f"bench {label}"))
+        bpy.context.scene.collection.objects.link(obj)
+        modifier = obj.modifiers.new("surface", "NODES")
+        modifier.node_group = group
+        for name, value in inputs.items():
+            modifier[group.interface.items_tree[name].identifier] = value
+        objects[label] = obj
     base = splash_frame(points, spacing, rng)
-    seconds, sizes = [], []
-    for _ in range(repeats + 1):
+    out = {label: {"seconds": [], "cpu_seconds": []} for label in objects}
+    marks = {"zone": np.zeros(points, np.int8), "trapped_air": np.zeros(points), "wave_crest": np.zeros(points),
+             "foam": rng.random(points)}
+    for repeat in range(repeats + 1):
         positions = base + rng.normal(scale=0.02 * spacing, size=base.shape)
         velocities = rng.normal(size=base.shape)
-        display.write_points(mesh, {"positions": positions, "velocities": velocities, "ids": np.arange(points),
-                                    "density": np.full(points, 1000.0), "pressure": np.zeros(points)})
-        start = time.perf_counter()
-        evaluated = obj.evaluated_get(bpy.context.evaluated_depsgraph_get())
-        seconds.append(time.perf_counter() - start)
-        result = evaluated.to_mesh()
-        sizes.append((len(result.vertices), len(result.polygons)))
-        evaluated.to_mesh_clear()
-    return {"blender": bpy.app.version_string, "seconds": seconds[1:], "first_seconds": seconds[0],
-            "vertices": sizes[-1][0], "faces": sizes[-1][1]}
+        for label, obj in objects.items():
+            display.write_points(obj.data, {"positions": positions, "velocities": velocities,
+                                            "ids": np.arange(points), "density": np.full(points, 1000.0),
+                                            "pressure": np.zeros(points), **marks})
+            start, cpu = time.perf_counter(), time.process_time()
+            evaluated = obj.evaluated_get(bpy.context.evaluated_depsgraph_get())
+            wall, cpu = time.perf_counter() - start, time.process_time() - cpu
+            if repeat == 0:
+                out[label]["first_seconds"] = wall
+            else:
+                out[label]["seconds"].append(wall)
+                out[label]["cpu_seconds"].append(cpu)
+            result = evaluated.to_mesh()
+            out[label]["vertices"], out[label]["faces"] = len(result.vertices), len(result.polygons)
+            evaluated.to_mesh_clear()
+            obj.hide_viewport = True  # evaluate one object at a time
+        for obj in objects.values():
+            obj.hide_viewport = False
+    import inspect
+
+    defaults = {name: p.default for name, p in inspect.signature(display.surface_inputs).parameters.items()
+                if name != "spacing"}
+    return {"blender": bpy.app.version_string, **out["default"], "compare": out.get("compare"), "defaults": defaults}
 
 
 def main(argv=None):
     parser = argparse.ArgumentParser(description="Time the liquid surface build of one splash frame in Blender.")
     parser.add_argument("--points", type=int, default=100_000, help="Particles in the frame. Default: 100000.")
     parser.add_argument("--repeats", type=int, default=5, help="Timed frames after one warm-up. Default: 5.")
+    parser.add_argument("--compare-detail", type=float, default=0.0,
+                        help="Also time another voxel size (in spacings), alternating frame by frame. Default: off.")
     args = parser.parse_args(argv)
-    result, _ = blender_env.run_child(HERE, "child_surface", args.points, args.repeats, timeout=1200)
+    result, _ = blender_env.run_child(HERE, "child_surface", args.points, args.repeats, args.compare_detail,
+                                      timeout=1200)
     seconds = sorted(result["seconds"])
     best, median = seconds[0], seconds[len(seconds) // 2]
+    cpu = sorted(result["cpu_seconds"])[len(seconds) // 2]
     verdict = "met" if median <= TARGET_SECONDS else "missed"
+    defaults = result["defaults"]
     print(f"Splashdraft liquid surface, Blender {result['blender']}, {args.points:,} particles at 1 cm "
-          f"(defaults: reach 1.0, voxel 0.6, smoothing 3 spacings)")
-    print(f"{'step':40s} {'best':>8s} {'median':>8s}  target")
-    print(f"{'surface build per frame':40s} {best:7.3f}s {median:7.3f}s  <= {TARGET_SECONDS} s: {verdict}")
+          f"(defaults: reach {defaults['reach']}, voxel {defaults['detail']}, smoothing {defaults['smoothing']} spacings)")
+    print(f"{'step':40s} {'best':>8s} {'median':>8s} {'cpu med':>8s}  target")
+    print(f"{'surface build per frame':40s} {best:7.3f}s {median:7.3f}s {cpu:7.3f}s  <= {TARGET_SECONDS} s: {verdict}")
     print(f"{'first frame (warm-up)':40s} {result['first_seconds']:7.3f}s")
     print(f"surface: {result['vertices']:,} vertices, {result['faces']:,} faces")
     results = {"points": args.points, "blender": result["blender"], "machine": platform.machine(),
+               "settings_spacings": defaults,
                "best_seconds": best, "median_seconds": median, "all_seconds": result["seconds"],
+               "median_cpu_seconds": cpu, "all_cpu_seconds": result["cpu_seconds"],
                "vertices": result["vertices"], "faces": result["faces"], "target_seconds": TARGET_SECONDS,
                "target_met": median <= TARGET_SECONDS}
+    other = result.get("compare")
+    if other:
+        other_median = sorted(other["seconds"])[len(other["seconds"]) // 2]
+        other_cpu = sorted(other["cpu_seconds"])[len(other["cpu_seconds"]) // 2]
+        print(f"{'same frames, voxel ' + str(args.compare_detail) + ' spacings':40s} {min(other['seconds']):7.3f}s "
+              f"{other_median:7.3f}s {other_cpu:7.3f}s  ({other['vertices']:,} vertices; default/this: wall "
+              f"{median / other_median:.2f}, cpu {cpu / other_cpu:.2f})")
+        results["compare"] = {"detail_spacings": args.compare_detail, "median_seconds": other_median,
+                              "median_cpu_seconds": other_cpu, "all_seconds": other["seconds"],
+                              "vertices": other["vertices"], "faces": other["faces"],
+                              "default_over_this_wall": median / other_median, "default_over_this_cpu": cpu / other_cpu}
     target = ROOT / "bench" / "results" / "surface.json"
     target.parent.mkdir(parents=True, exist_ok=True)
     target.write_text(json.dumps(results, indent=1) + "\n")

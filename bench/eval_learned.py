@@ -3,6 +3,7 @@
     python -m bench.eval_learned [--heldout data/heldout] [--model models/preview-gn4.onnx]
                                  [--seconds 10] [--fidelity-seconds 2] [--demo-preset small|full|none]
                                  [--relax-iterations N] [--shots ring stairs ...]
+                                 [--workers N | --scheduler ADDRESS]
 
 For each held-out shot (``python -m training.generate --heldout --duration 2``
 bakes their reference) and the demo shot:
@@ -15,6 +16,12 @@ bakes their reference) and the demo shot:
   reported are the particle count, the max speed in sqrt(g d) over the last second
   and the kinetic energy at the end relative to its maximum in the first second
   (an explosion shows as a ratio far above 1).
+
+``--workers N`` evaluates the shots on a local Dask cluster of N worker processes and
+``--scheduler tcp://HOST:PORT`` on an existing one (one task per shot, ``engine.farm.run_jobs``,
+the path ``python -m engine wedge`` uses); ``--out``, the held-out folder and the model must be
+on storage every worker sees (checked first). The learned bakes' wall times, and so the speed-ups,
+are then measured on the workers.
 
 Prints a table and writes bench/results/eval_learned.json.
 """
@@ -117,8 +124,41 @@ def evaluate_shot(name, scene_path, reference_dir, out, model, seconds, fidelity
         row["reference_density_within_3pct_fraction_deep"] = itself.get("density_within_3pct_fraction_deep")
     except SplashdraftError as exc:
         row["compare_error"] = str(exc)
-    log(json.dumps(row))
+    if log is not None:
+        log(json.dumps(row))
     return row
+
+
+def evaluate_demo(preset, out, model, seconds, fidelity_seconds, log, relax_iterations=None):
+    """The demo shot: bake its reference for the fidelity window (kept when complete), then evaluate."""
+    from engine.demo import write_demo_scene
+
+    demo_dir = Path(out) / f"demo_{preset}"
+    scene_path = write_demo_scene(demo_dir / "scene", preset=preset)
+    scene = load_scene(scene_path)
+    last = min(scene.frame_end, scene.frame_start + int(round(fidelity_seconds * scene.fps)))
+    reference_dir = demo_dir / "sph"
+    reader = None
+    try:
+        reader = open_cache(reference_dir)
+    except SplashdraftError:
+        pass
+    try:
+        if reader is None or not reader.manifest.get("complete"):
+            bake(scene_path, "sph", reference_dir, frames=(scene.frame_start, last), overwrite=True, use_signals=False)
+    except SplashdraftError as exc:
+        if log is not None:
+            log(f"demo reference bake failed: {exc}")
+    return evaluate_shot(f"demo_{preset}", scene_path, reference_dir, Path(out), model, seconds, fidelity_seconds,
+                         log, relax_iterations)
+
+
+def evaluate_job(job):
+    """One evaluation as a plain dict in, a row out: here, or as a Dask task on a worker."""
+    options = (job["model"], job["seconds"], job["fidelity_seconds"], None, job["relax_iterations"])
+    if job["kind"] == "demo":
+        return evaluate_demo(job["preset"], Path(job["out"]), *options)
+    return evaluate_shot(job["name"], Path(job["scene"]), Path(job["reference"]), Path(job["out"]), *options)
 
 
 def _ratio(a, b):
@@ -144,38 +184,47 @@ def main(argv=None):
                         help="Density relaxation iterations per learned step (default: the solver's default).")
     parser.add_argument("--shots", nargs="*", default=None,
                         help="Only these held-out shots (names contain the word, e.g. stairs); default all.")
-    parser.add_argument("--out", default=str(ROOT / "bench" / "results" / "eval"))
+    parser.add_argument("--out", default=str(ROOT / "bench" / "results" / "eval"),
+                        help="Folder for the learned bakes and eval_learned.json (default bench/results/eval; "
+                        "with the default, bench/results/eval_learned.json is written too).")
+    where = parser.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=int, default=None, metavar="N",
+                       help="Evaluate the shots on a local Dask cluster of N worker processes (default: here, "
+                       "one after another).")
+    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="Evaluate the shots on the Dask scheduler at ADDRESS (tcp://HOST:PORT); --out, "
+                       "--heldout and --model must be on storage every worker sees at the same path.")
     args = parser.parse_args(argv)
-    out = Path(args.out)
+    out = Path(args.out).resolve()
     out.mkdir(parents=True, exist_ok=True)
     log = lambda m: print(m, file=sys.stderr, flush=True)  # noqa: E731
-    rows = []
-    manifest = json.loads((Path(args.heldout) / "data_manifest.json").read_text())
-    for shot in manifest["shots"]:
-        if args.shots is not None and not any(word in shot["name"] for word in args.shots):
-            continue
-        rows.append(evaluate_shot(shot["name"], Path(args.heldout) / shot["scene"], Path(args.heldout) / shot["cache"],
-                                  out, args.model, args.seconds, args.fidelity_seconds, log, args.relax_iterations))
+    heldout = Path(args.heldout).resolve()
+    manifest = json.loads((heldout / "data_manifest.json").read_text())
+    common = {"out": str(out), "model": None if args.model is None else str(Path(args.model).resolve()),
+              "seconds": args.seconds, "fidelity_seconds": args.fidelity_seconds,
+              "relax_iterations": args.relax_iterations}  # fmt: skip
+    jobs = [dict(common, kind="heldout", name=shot["name"], scene=str(heldout / shot["scene"]),
+                 reference=str(heldout / shot["cache"]))
+            for shot in manifest["shots"]
+            if args.shots is None or any(word in shot["name"] for word in args.shots)]  # fmt: skip
     if args.demo_preset != "none":
-        from engine.demo import write_demo_scene
+        jobs.append(dict(common, kind="demo", name=f"demo_{args.demo_preset}", preset=args.demo_preset))
+    if args.scheduler is not None or args.workers:
+        from bench.eval_learned import evaluate_job as task  # by module name, so that workers can import it
+        from engine.farm import run_jobs
 
-        demo_dir = out / f"demo_{args.demo_preset}"
-        scene_path = write_demo_scene(demo_dir / "scene", preset=args.demo_preset)
-        scene = load_scene(scene_path)
-        last = min(scene.frame_end, scene.frame_start + int(round(args.fidelity_seconds * scene.fps)))
-        reference_dir = demo_dir / "sph"
-        reader = None
+        paths = [heldout] + ([common["model"]] if common["model"] else [])
         try:
-            reader = open_cache(reference_dir)
-        except SplashdraftError:
-            pass
-        try:
-            if reader is None or not reader.manifest.get("complete"):
-                bake(scene_path, "sph", reference_dir, frames=(scene.frame_start, last), overwrite=True, use_signals=False)
+            rows = run_jobs(task, jobs, out, scheduler=args.scheduler, workers=args.workers, paths=paths,
+                            on_done=lambda job, row: log(json.dumps(row)), log=log)  # fmt: skip
         except SplashdraftError as exc:
-            log(f"demo reference bake failed: {exc}")
-        rows.append(evaluate_shot(f"demo_{args.demo_preset}", scene_path, reference_dir, out, args.model,
-                                  args.seconds, args.fidelity_seconds, log, args.relax_iterations))
+            print(f"error: {exc}", file=sys.stderr)
+            return exc.exit_code
+    else:
+        rows = []
+        for job in jobs:
+            rows.append(evaluate_job(job))
+            log(json.dumps(rows[-1]))
     head = (f"{'shot':<18} {'CD mean [d]':>11} {'CD max [d]':>10} {'rho 3%':>7} {'ref rho 3%':>10} {'inside':>6} "
             f"{'10 s ok':>7} {'KE end/1s':>9} {'n0->n':>13} {'KE/ref':>7} {'speedup':>7}")
     print(head)
@@ -188,10 +237,10 @@ def main(argv=None):
               f"{str(r.get('error') is None and r.get('finished', False)):>7} {r.get('kinetic_energy_end_over_first_second_max') or float('nan'):>9.3f} "
               f"{str(r.get('particles_first')) + '->' + str(r.get('particles_last')):>13} "
               f"{r.get('kinetic_energy_ratio_summed') or float('nan'):>7.2f} {r.get('speedup_over_reference') or float('nan'):>7.1f}")
-    results = ROOT / "bench" / "results"
-    results.mkdir(parents=True, exist_ok=True)
     (out / "eval_learned.json").write_text(json.dumps({"rows": rows, "args": vars(args)}, indent=1) + "\n")
-    (results / "eval_learned.json").write_text(json.dumps({"rows": rows, "args": vars(args)}, indent=1) + "\n")
+    results = ROOT / "bench" / "results"
+    if out == (results / "eval").resolve():  # the default --out: also the benchmark's usual results file
+        (results / "eval_learned.json").write_text(json.dumps({"rows": rows, "args": vars(args)}, indent=1) + "\n")
     return 0
 
 

@@ -414,8 +414,19 @@ def _solver_record(stats):
     return {name: _json_ready(getattr(stats, name)) for name in names if hasattr(stats, name)}
 
 
+def frame_whitewater(state, world):
+    """Zone and white-water potentials of a state's particles (``engine.whitewater``), any solver."""
+    from .whitewater import ATTRIBUTES, whitewater
+
+    boundary = world.boundary_at(state.time).positions if hasattr(world, "boundary_at") else None
+    result = whitewater(state.positions, state.velocities, world.particle_spacing, boundary)
+    return {name: result[name] for name in ATTRIBUTES}
+
+
 def _write(writer, solver, world, state, frame, substeps, seconds, stats=None):
     """Write one frame's PLY + manifest entry, then the checkpoint (in that order; see ``engine.cache``).
+
+    Every frame also carries the white-water attributes (``frame_whitewater``), whatever the solver.
 
     The manifest entry carries the energy audit (``engine.energy.frame_audit``) and the
     solver's counts for the frame; the state's over-energy flags are updated first, so
@@ -431,6 +442,7 @@ def _write(writer, solver, world, state, frame, substeps, seconds, stats=None):
         "density": attributes["density"],
         "pressure": attributes["pressure"],
     }
+    arrays.update(frame_whitewater(state, world))
     extra = {"energy": energy.frame_audit(state, world, top), "solver": _solver_record(stats)}
     writer.write_frame(frame, arrays, time=state.time, substeps=substeps, seconds=seconds, extra=extra)
     writer.write_checkpoint(state, frame)

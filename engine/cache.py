@@ -52,7 +52,16 @@ PLY_PROPERTIES = (
     ("id", "int"),
     ("density", "float"),
     ("pressure", "float"),
+    ("zone", "int"),
+    ("trapped_air", "float"),
+    ("wave_crest", "float"),
+    ("foam", "float"),
 )
+#: Properties a frame must have; the white-water ones (``engine.whitewater``) came later and are
+#: read when present (caches baked before them lack them).
+REQUIRED_PROPERTIES = PLY_PROPERTIES[:9]
+#: The white-water properties: name -> numpy type of the array ``parse_frame`` returns.
+WHITEWATER_PROPERTIES = {"zone": np.int8, "trapped_air": np.float32, "wave_crest": np.float32, "foam": np.float32}
 
 #: PLY scalar type names (both spellings of the 1994 description) -> numpy little-endian type.
 _PLY_TYPES = {
@@ -62,7 +71,7 @@ _PLY_TYPES = {
     "float": "<f4", "float32": "<f4", "double": "<f8", "float64": "<f8",
 }  # fmt: skip
 
-#: The packed record of one particle in a frame file (36 bytes).
+#: The packed record of one particle in a frame file (52 bytes).
 FRAME_DTYPE = np.dtype([(name, _PLY_TYPES[kind]) for name, kind in PLY_PROPERTIES])
 
 _MAX_HEADER_BYTES = 64 * 1024
@@ -87,16 +96,18 @@ def ply_header(count):
     return ("\n".join(lines) + "\n").encode("ascii")
 
 
-def frame_bytes(positions, velocities, ids, density, pressure):
+def frame_bytes(positions, velocities, ids, density, pressure, whitewater=None):
     """Encode one frame as PLY bytes (header + packed records).
 
     Args:
         positions, velocities: (N, 3) float, m and m/s (stored as float32).
         ids: (N,) int particle ids, 0 <= id < 2**31 (stored as int32).
         density, pressure: (N,) float, kg/m^3 and Pa (stored as float32).
+        whitewater: dict with (N,) ``zone``, ``trapped_air``, ``wave_crest``, ``foam``
+            (``engine.whitewater``); None writes zeros.
 
     Returns:
-        bytes: the whole file; ``len(ply_header(N)) + 36 * N`` long.
+        bytes: the whole file; ``len(ply_header(N)) + 52 * N`` long.
 
     Raises:
         CacheError: arrays of the wrong shape, or ids outside int32.
@@ -107,7 +118,10 @@ def frame_bytes(positions, velocities, ids, density, pressure):
     density = np.asarray(density).reshape(-1)
     pressure = np.asarray(pressure).reshape(-1)
     n = len(positions)
+    extras = {name: np.asarray(whitewater[name]).reshape(-1) for name in WHITEWATER_PROPERTIES} if whitewater \
+        else {name: np.zeros(n) for name in WHITEWATER_PROPERTIES}
     lengths = {"velocities": len(velocities), "ids": len(ids), "density": len(density), "pressure": len(pressure)}
+    lengths.update({name: len(values) for name, values in extras.items()})
     for name, length in lengths.items():
         if length != n:
             raise CacheError(
@@ -126,6 +140,8 @@ def frame_bytes(positions, velocities, ids, density, pressure):
     records["id"] = ids
     records["density"] = density
     records["pressure"] = pressure
+    for name, values in extras.items():
+        records[name] = values
     return ply_header(n) + records.tobytes()
 
 
@@ -180,7 +196,7 @@ def _parse_header(data, source):
     names = [p for p, _ in props]
     if len(set(names)) != len(names):
         raise CacheError(f"{source}: PLY vertex declares a property twice; not a splashdraft frame")
-    missing = [name for name, _ in PLY_PROPERTIES if name not in [p for p, _ in props]]
+    missing = [name for name, _ in REQUIRED_PROPERTIES if name not in [p for p, _ in props]]
     if missing:
         raise CacheError(f"{source}: PLY vertex lacks properties {', '.join(missing)}; not a splashdraft frame")
     return count, np.dtype(props), newline + 1
@@ -192,7 +208,8 @@ def parse_frame(data, source="frame"):
     Returns:
         dict with ``positions`` (N, 3), ``velocities`` (N, 3), ``density``,
         ``pressure`` (N,) as float32 and ``ids`` (N,) int32 (whatever types
-        the header declares, converted).
+        the header declares, converted); and ``zone`` (int8), ``trapped_air``,
+        ``wave_crest``, ``foam`` (float32) when the file has them.
 
     Raises:
         CacheError naming ``source`` when the header is invalid or the data is short.
@@ -206,13 +223,17 @@ def parse_frame(data, source="frame"):
             "bake this frame again"
         )
     records = np.frombuffer(data, dtype=dtype, count=count, offset=offset)
-    return {
+    arrays = {
         "positions": np.stack([records["x"], records["y"], records["z"]], axis=1).astype(np.float32),
         "velocities": np.stack([records["vx"], records["vy"], records["vz"]], axis=1).astype(np.float32),
         "ids": records["id"].astype(np.int32),
         "density": records["density"].astype(np.float32),
         "pressure": records["pressure"].astype(np.float32),
     }
+    for name, kind in WHITEWATER_PROPERTIES.items():
+        if name in dtype.names:
+            arrays[name] = records[name].astype(kind)
+    return arrays
 
 
 def read_ply(path):
@@ -595,14 +616,16 @@ class CacheWriter:
 
         Args:
             frame: frame number.
-            arrays: ``positions``, ``velocities``, ``ids``, ``density``, ``pressure`` (see ``frame_bytes``).
+            arrays: ``positions``, ``velocities``, ``ids``, ``density``, ``pressure`` and, when
+                computed, ``zone``, ``trapped_air``, ``wave_crest``, ``foam`` (see ``frame_bytes``).
             time: simulated time of the frame, s. substeps: solver substeps taken to reach it.
             seconds: wall-clock seconds spent on it.
             extra: further JSON-ready entries for the frame's manifest record
                 (the bake adds ``energy``, ``solver``).
         """
         names = ("positions", "velocities", "ids", "density", "pressure")
-        data = frame_bytes(*(arrays[name] for name in names))
+        whitewater = {name: arrays[name] for name in WHITEWATER_PROPERTIES} if "zone" in arrays else None
+        data = frame_bytes(*(arrays[name] for name in names), whitewater=whitewater)
         name = frame_file_name(frame)
         self._write(name, data)
         self.manifest["frames"][str(int(frame))] = {

@@ -125,6 +125,11 @@ def build_parser():
     estimate.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
                           help="The solver the estimate is for. Default: sph.")
     estimate.add_argument("--json", action="store_true", help="Print the estimate as JSON on stdout.")
+    estimate.add_argument("--calibrate", action="store_true",
+                          help="First measure how fast this computer bakes with the solver (two short bakes "
+                          "of a small built-in shot, under ten seconds on 2 cores) and keep the figures for later estimates "
+                          "(see engine/calibration.py). Without it the last measurement is used, or a rough "
+                          "figure if this computer was never measured.")
     _add_model(estimate)
     _add_budget(estimate)
 
@@ -208,7 +213,7 @@ def build_parser():
     tune.add_argument("--hold-back", type=float, metavar="SHARE",
                       help="Share of each bake's last frames held back for the before/after figures. Default: 0.25.")
     tune.add_argument("--checkpoint-every", type=int, metavar="N", help="Iterations between checkpoints. Default: 50.")
-    tune.add_argument("--lr", type=float, metavar="RATE", help="Adam learning rate. Default: 3e-4.")
+    tune.add_argument("--lr", type=float, metavar="RATE", help="Adam learning rate. Default: 3e-5.")
     tune.add_argument("--json", action="store_true", help="Print the tune record as JSON on stdout.")
 
     # The compare command is handled by engine.compare.main_compare (see main); listed here for --help.
@@ -347,6 +352,13 @@ def command_estimate(args):
 
     scene = load_scene_any(args.scene)
     check_scene_for_solver(scene, args.solver)
+    if args.calibrate:
+        from .calibration import calibrate, calibration_path
+
+        _say(f"measuring this computer with the {args.solver} solver (a short bake of a small shot)...")
+        measured = calibrate(args.solver)
+        _say(f"  {measured['rate']:,.0f} particle-steps/s, {measured['overhead_seconds']:.3f} s per frame, "
+             f"{measured['startup_seconds']:.1f} s start-up; kept in {calibration_path()}")
     result = estimate_scene(scene, solver=args.solver, max_particles=args.max_particles, model=args.model)
     if args.json:
         _print_json(result.as_dict())
@@ -356,9 +368,12 @@ def command_estimate(args):
     _say(f"  memory: about {format_bytes(result.memory_bytes)} (solver arrays and neighbour lists)")
     _say(f"  disk: {format_bytes(result.frame_bytes)} per frame, about {format_bytes(result.disk_bytes)} "
          f"for {result.frames} frames")  # fmt: skip
-    _say(f"  time: roughly {format_duration(result.seconds)} ({result.substeps_per_frame} substeps per frame, "
-         f"{result.throughput:,.0f} particle-substeps/s from {result.throughput_source}; "
-         "a rough figure, expect a factor of two either way)")  # fmt: skip
+    how = ("within about a factor of two" if result.is_measured
+           else "a rough figure, expect a factor of two or more either way; --calibrate measures this computer")
+    _say(f"  time: about {format_duration(result.seconds)} ({result.substeps_per_frame} substeps per frame, "
+         f"{result.throughput:,.0f} particle-substeps/s, {result.overhead_seconds:.3f} s per frame and "
+         f"{result.startup_seconds:.1f} s start-up "
+         f"from {result.throughput_source}; {how})")  # fmt: skip
     _say(f"estimate: {result.frames} frames, {result.particles:,} particles, "
          f"about {format_duration(result.seconds)}")  # fmt: skip
     return 0

@@ -22,6 +22,7 @@ table on stderr and, with ``--json``, the result on stdout.
 import argparse
 import json
 import sys
+from time import monotonic
 from pathlib import Path
 
 import numpy as np
@@ -107,7 +108,7 @@ def _world_from(scene_path, dir_b, manifest):
     return None, None
 
 
-def compare_caches(dir_a, dir_b, frames=None, scene=None):
+def compare_caches(dir_a, dir_b, frames=None, scene=None, on_frame=None):
     """Compare bake B against bake A frame by frame.
 
     Args:
@@ -117,6 +118,7 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
         scene: optional scene file used to rebuild the world (boundary density
             term and collider penetration); default: the manifest's scene path
             if it names one.
+        on_frame: optional callable ``on_frame(frame, done, total)`` after each compared frame.
 
     Returns:
         dict with ``mean_chamfer_spacings``, ``max_chamfer_spacings``,
@@ -158,6 +160,8 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
     frame_start = int(cache_b.manifest.get("frame_start", common[0]))
     rows = []
     for frame in common:
+        if on_frame is not None and not rows:
+            on_frame(None, 0, len(common))
         fa, fb = cache_a.read_frame(frame), cache_b.read_frame(frame)
         cd, a_to_b, b_to_a = chamfer_distance(fa["positions"], fb["positions"])
         entry_b = cache_b.manifest["frames"][str(frame)]
@@ -194,6 +198,8 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None):
             "energy_a": _audit(cache_a, frame),
             "energy_b": _audit(cache_b, frame),
         })
+        if on_frame is not None:
+            on_frame(frame, len(rows), len(common))
     chamfers = np.array([r["chamfer_spacings"] for r in rows])
     fractions = [r["density_within_3pct_fraction"] for r in rows if r["density_within_3pct_fraction"] is not None]
     deep_fractions = [r["density_within_3pct_fraction_deep"] for r in rows
@@ -310,7 +316,25 @@ def _parser():
     parser.add_argument("--scene", help="Scene file of the bakes, to add the boundary density term and check "
                         "collider penetration (default: the path in B's manifest, if any).")
     parser.add_argument("--frames", help="Frame range A:B (inclusive) to compare; default all common frames.")
+    parser.add_argument("--progress", choices=("none", "json"), default="none",
+                        help="json: one JSON event per line on stderr (start, frame, finished, error), as the "
+                        "bake command writes them; default none.")
     return parser
+
+
+def _json_events(enabled):
+    """An ``on_frame`` callback that writes bake-style progress events to stderr (or None)."""
+    if not enabled:
+        return None
+
+    def on_frame(frame, done, total):
+        if frame is None:
+            event = {"event": "start", "frames": [0, total - 1], "solver": "compare", "particles": 0}
+        else:
+            event = {"event": "frame", "frame": frame, "done": done, "total": total}
+        print(json.dumps(event), file=sys.stderr, flush=True)
+
+    return on_frame
 
 
 def main_compare(argv=None):
@@ -332,15 +356,22 @@ def main_compare(argv=None):
                       "e.g. --frames 1:48", file=sys.stderr)  # fmt: skip
                 return 64
             frames = range(first, last + 1)
-        result = compare_caches(args.dir_a, args.dir_b, frames=frames, scene=args.scene)
+        started = monotonic()
+        result = compare_caches(args.dir_a, args.dir_b, frames=frames, scene=args.scene,
+                                on_frame=_json_events(args.progress == "json"))
         print(format_table(result), file=sys.stderr)
         if args.plot:
             write_plot(result, args.plot)
         if args.json:
-            print(json.dumps(result, indent=1))
+            print(json.dumps(result, indent=1), flush=True)
     except SplashdraftError as exc:
+        if args.progress == "json":
+            print(json.dumps({"event": "error", "message": str(exc)}), file=sys.stderr, flush=True)
         print(f"error: {exc}", file=sys.stderr)
         return exc.exit_code
+    if args.progress == "json":
+        print(json.dumps({"event": "finished", "frames": result["frames_compared"], "cache": str(args.dir_b),
+                          "seconds": round(monotonic() - started, 3)}), file=sys.stderr, flush=True)
     return 0
 
 

@@ -11,14 +11,14 @@ Every figure here is an estimate, stated as such:
   see ``engine.cache.FRAME_DTYPE``), times the frames baked, using the
   estimated particle count for every frame (an upper bound when particles
   leave through open faces).
-- time: substeps per frame from the CFL rule with a free-fall speed over the
-  bounds height (the learned preview: its own steps per frame, from the shipped
-  model's longest step, ``LearnedSolver.step_plan``), times particles, divided by a throughput in
-  particle-substeps per second. The throughput is a rough constant measured
-  on a 2-core laptop-class CPU, replaced by the latest figure in
-  ``bench/results/<solver>_throughput.json`` (key
-  ``particle_substeps_per_second``) when a benchmark has written one. Expect
-  a factor of two either way.
+- time: a start-up time plus, for every frame after the first, a per-frame overhead and
+  substeps per frame from the CFL rule with a free-fall speed over the bounds height (the
+  learned preview: its own steps per frame, from the shipped model's longest step,
+  ``LearnedSolver.step_plan``) times particles, divided by a throughput in particle-steps per
+  second. Throughput, overhead and start-up are this computer's, measured by a calibration bake or taken from the last
+  finished bake (``engine.calibration``); where none was measured, the latest figure in
+  ``bench/results/<solver>_throughput.json`` (key ``particle_substeps_per_second``) or a
+  rough built-in constant, and the estimate says so.
 
 CFL rule: dt <= cfl_factor * particle_spacing / |v|max (Bender & Koschier 2015,
 "Divergence-Free Smoothed Particle Hydrodynamics", SCA; parameter from memory
@@ -36,8 +36,9 @@ from .cache import FRAME_DTYPE, ply_header
 from .errors import BudgetError
 from .particle_model import cfl_step
 
-#: Rough throughput, particle-substeps per second on one process (overridden by bench/results).
-DEFAULT_THROUGHPUT = {"sph": 6.0e4, "learned": 2.0e5}
+#: Rough throughput, particle-steps per second on one process, used only where this computer was
+#: never measured (engine.calibration): bakes of 1.5k-3k particles on 2 shared cores, 2026-12-04.
+DEFAULT_THROUGHPUT = {"sph": 6.0e4, "learned": 1.0e4}
 
 #: Bytes per fluid particle, per neighbour pair, and per boundary particle, by solver.
 #: sph: State (positions, velocities 2x24, ids 8) + DFSPH per-particle float64 arrays
@@ -70,6 +71,9 @@ class Estimate:
     seconds: float
     throughput: float
     throughput_source: str
+    startup_seconds: float = 0.0
+    overhead_seconds: float = 0.0
+    is_measured: bool = False
 
     def as_dict(self):
         return dataclasses.asdict(self)
@@ -88,7 +92,7 @@ def memory_bytes(particles, boundary_particles, solver="sph"):
 
 
 def throughput(solver="sph", root=None):
-    """(particle-substeps per second, where the figure came from)."""
+    """(particle-substeps per second, where the figure came from) from a benchmark's file or the constant."""
     root = Path(root) if root is not None else Path(__file__).resolve().parents[1]
     path = root / "bench" / "results" / f"{solver}_throughput.json"
     try:
@@ -98,6 +102,23 @@ def throughput(solver="sph", root=None):
     except (OSError, ValueError, KeyError, TypeError):
         pass
     return DEFAULT_THROUGHPUT.get(solver, DEFAULT_THROUGHPUT["sph"]), "built-in rough constant"
+
+
+def time_model(solver="sph", root=None):
+    """(particle-steps per second, per-frame overhead s, start-up s, where they came from, measured here?).
+
+    This computer's calibration (``engine.calibration.load``) first, then a benchmark's file, then
+    the rough constant (overhead and start-up 0).
+    """
+    from . import calibration
+
+    measured = calibration.load(solver)
+    if measured is not None:
+        when = measured["measured"][:10]
+        return (measured["rate"], measured["overhead_seconds"], measured["startup_seconds"],
+                f"measured on this computer ({measured['source']}{', ' + when if when else ''})", True)
+    rate, source = throughput(solver, root)
+    return rate, 0.0, 0.0, source, False
 
 
 def substeps_per_frame(scene):
@@ -272,15 +293,16 @@ def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=N
     check_budget(scene, world, max_particles=max_particles, particles=particles)
     frames = int(frames) if frames is not None else scene.frame_end - scene.frame_start + 1
     substeps = learned_steps_per_frame(scene, model) if solver == "learned" else substeps_per_frame(scene)
-    rate, source = throughput(solver)
-    per_frame = substeps * max(particles, 1) / rate
+    rate, overhead, startup, source, is_measured = time_model(solver)
+    per_frame = overhead + substeps * max(particles, 1) / rate
     frame_size = frame_file_bytes(particles)
     return Estimate(
         scene_name=scene.name, solver=solver, particles=particles, boundary_particles=boundary,
         max_particles=budget_limit(scene, max_particles), frames=frames,
         memory_bytes=memory_bytes(particles, boundary, solver), frame_bytes=frame_size,
         disk_bytes=frame_size * frames, substeps_per_frame=substeps, seconds_per_frame=per_frame,
-        seconds=per_frame * max(frames - 1, 0), throughput=rate, throughput_source=source,
+        seconds=startup + per_frame * max(frames - 1, 0), throughput=rate, throughput_source=source,
+        startup_seconds=startup, overhead_seconds=overhead, is_measured=is_measured,
     )  # fmt: skip
 
 
@@ -376,14 +398,14 @@ def quick_estimate(scene, solver="sph", max_particles=None, model=None):
         )
     frames = scene.frame_end - scene.frame_start + 1
     substeps = learned_steps_per_frame(scene, model) if solver == "learned" else substeps_per_frame(scene)
-    rate, source = throughput(solver)
-    per_frame = substeps * max(particles, 1) / rate
+    rate, overhead, startup, source, is_measured = time_model(solver)
+    per_frame = overhead + substeps * max(particles, 1) / rate
     frame_size = frame_file_bytes(particles)
     estimate = Estimate(
         scene_name=scene.name, solver=solver, particles=particles, boundary_particles=boundary,
         max_particles=limit, frames=frames, memory_bytes=memory_bytes(particles, boundary, solver),
         frame_bytes=frame_size, disk_bytes=frame_size * frames, substeps_per_frame=substeps,
-        seconds_per_frame=per_frame, seconds=per_frame * max(frames - 1, 0), throughput=rate,
-        throughput_source=source,
+        seconds_per_frame=per_frame, seconds=startup + per_frame * max(frames - 1, 0), throughput=rate,
+        throughput_source=source, startup_seconds=startup, overhead_seconds=overhead, is_measured=is_measured,
     )  # fmt: skip
     return estimate, outside

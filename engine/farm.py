@@ -16,6 +16,14 @@ folder, so ``--out`` must be on storage every worker sees at the same path.
 writes a token file into ``--out`` and each worker must read it back and
 write one of its own; workers that cannot are named.
 
+Speed (measured; DEVELOPERS.md "Wedges and farm bakes"): every task first calls
+``keep_freed_memory`` (Dask starts workers with a malloc setting that made a bake
+spend 40 % more CPU in page faults), and a LocalCluster's workers run without Dask's
+statistical profiler and with every library's thread pool sized to cores / workers.
+
+``run_jobs`` is the same path for other per-shot work (``training.generate`` and
+``bench/eval_learned.py`` with ``--workers``/``--scheduler``).
+
 A worker that dies mid-bake: the scheduler hands the task to another worker
 (Dask's ``allowed-failures``, 3 by default), which resumes the variant from
 its last checkpoint (``engine.bake`` resume). Only the frame being computed
@@ -23,18 +31,21 @@ is lost, and the resumed frames are bit-identical (the bake is deterministic).
 
 Progress: the client polls each variant's cache manifest (written atomically
 by the bake) and reports frames per variant; ``WedgeProgress`` prints lines
-or JSON events. Cancel (Ctrl-C on the client): a Dask ``Event`` that each
+or JSON events. Cancel (Ctrl-C or SIGTERM on the client): a Dask ``Event`` that each
 bake polls after every frame is set, so workers stop after their current
 frame; re-running the same command resumes.
 """
 
+import ctypes
+import ctypes.util
 import logging
 import os
+import threading
 import time
 import uuid
 from pathlib import Path
 
-from .errors import CacheError, DependencyError, UsageError
+from .errors import CacheError, DependencyError, SplashdraftError, UsageError
 from .wedge import apply_report, bake_variant, variant_progress, write_manifest
 
 DASK_INSTALL = "pip install -r requirements.txt (dask[distributed] is an engine dependency)"
@@ -182,6 +193,26 @@ def check_shared_storage(client, out_dir, paths=()):
     return probes
 
 
+#: Environment variables that size the thread pools of the libraries a bake uses.
+THREAD_VARIABLES = ("SPLASHDRAFT_THREADS", "OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+def worker_threads(count):
+    """Threads each of ``count`` worker processes on this machine may use (SPLASHDRAFT_THREADS wins)."""
+    text = os.environ.get("SPLASHDRAFT_THREADS", "").strip()
+    return max(1, int(text)) if text.isdigit() else max(1, local_worker_count() // max(1, int(count)))
+
+
+def worker_environment(threads):
+    """The environment of a local worker process: every library's thread pool sized to ``threads``.
+
+    Two worker processes on two cores, each with numpy's BLAS, the solver's sparse products and
+    onnxruntime running their default pools (one thread per core each), would put several runnable
+    threads on every core; one pool size for all keeps each worker on its share of the cores.
+    """
+    return {name: str(threads) for name in THREAD_VARIABLES}
+
+
 def connect(scheduler=None, workers=None, timeout=30.0):
     """(client, cluster or None): a client of the scheduler at ``scheduler``, or of a new LocalCluster.
 
@@ -202,16 +233,73 @@ def connect(scheduler=None, workers=None, timeout=30.0):
             raise UsageError(f"--scheduler {scheduler}: the scheduler has no workers after {timeout:g} s; "
                              f"start some with `dask worker {scheduler}`") from None  # fmt: skip
         return client, None
+    if workers is not None and int(workers) < 0:
+        raise UsageError(f"--workers {workers}: give a positive count of local worker processes")
     count = int(workers) if workers else local_worker_count()
-    # The reference solver runs its sparse products on a small thread pool (SPLASHDRAFT_THREADS); split the
-    # cores between the workers so that they do not fight over them. A value the user set wins.
-    threads = os.environ.get("SPLASHDRAFT_THREADS") or str(max(1, local_worker_count() // count))
-    cluster = distributed.LocalCluster(
-        n_workers=count, threads_per_worker=1, processes=True, dashboard_address=None,
-        silence_logs=logging.ERROR, env={"SPLASHDRAFT_THREADS": threads},
-    )  # fmt: skip
+    threads = worker_threads(count)
+    # Measured (bench/bench_wedge.py, DEVELOPERS.md "Wedges and farm bakes"): Dask's statistical profiler
+    # samples every worker thread's stack every 10 ms under the GIL, which the pure-Python solver loop
+    # pays for; the bake reports its own progress, so the profiler is off in our workers. Thread-pool
+    # sizes must be in the environment before a worker imports numpy: Dask's pre-spawn environment.
+    import dask.config as config
+
+    environment = dict(config.get("distributed.nanny.pre-spawn-environ"), **worker_environment(threads))
+    saved = {name: os.environ.get(name) for name in environment}
+    try:
+        with config.set({"distributed.worker.profile.enabled": False,
+                         "distributed.nanny.pre-spawn-environ": environment}):  # fmt: skip
+            cluster = distributed.LocalCluster(
+                n_workers=count, threads_per_worker=1, processes=True, dashboard_address=None,
+                silence_logs=logging.ERROR,
+            )  # fmt: skip
+    finally:
+        # Dask writes the pre-spawn environment into this process's own; put back what was here.
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
     client = distributed.Client(cluster, set_as_default=False)
     return client, cluster
+
+
+def collect(futures, on_done, on_poll=None, poll_seconds=0.5):
+    """Call ``on_done(job, future)`` here as each future finishes, ``on_poll(pending)`` in between.
+
+    Args:
+        futures: {future: job}.
+        on_done: called once per finished future (result or error), in this process.
+        on_poll: called with the {future: job} still pending, at most every ``poll_seconds``.
+
+    A KeyboardInterrupt propagates to the caller, which decides how to stop the rest.
+    """
+    pending = dict(futures)
+    finished_one = threading.Event()
+    for future in futures:
+        future.add_done_callback(lambda _: finished_one.set())
+    while pending:
+        finished_one.clear()
+        for future in [f for f in pending if f.done()]:
+            on_done(pending.pop(future), future)
+        if pending and on_poll is not None:
+            on_poll(pending)
+        if pending:
+            # Woken as soon as a task finishes, not at the next poll (the last result ends the run).
+            finished_one.wait(poll_seconds)
+
+
+def wait_until_done(futures, seconds, poll_seconds=0.5):
+    """Wait up to ``seconds`` for every future to finish; True when they all did."""
+    deadline = time.monotonic() + seconds
+    while not all(future.done() for future in futures) and time.monotonic() < deadline:
+        time.sleep(poll_seconds)
+    return all(future.done() for future in futures)
+
+
+def task_error(future):
+    """'ErrorType: message' of a failed (or lost) task."""
+    exc = future.exception()
+    return f"{type(exc).__name__}: {exc}"
 
 
 def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_seconds=0.5):
@@ -228,57 +316,152 @@ def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_se
         future = client.submit(_bake_task, job, stop.name, key=f"splashdraft-bake-{job['name']}-{run_id}",
                                pure=False)  # fmt: skip
         futures[future] = job
-    pending = set(futures)
+
+    def on_done(job, future):
+        entry = _entry(manifest, job["name"])
+        if future.status == "finished":
+            report = future.result()
+        else:
+            report = {"name": job["name"], "state": "failed", "seconds": 0.0, "worker": None,
+                      "error": task_error(future)}  # fmt: skip
+        apply_report(entry, report, frames_total)
+        progress.variant(job["name"], entry["state"], entry["frames_done"], frames_total, entry["worker"])
+        write_manifest(out_dir, manifest)
+
+    def on_poll(pending):
+        if stop_flag.is_set:  # SIGTERM (e.g. the add-on's Stop) or a first Ctrl-C: stop as Ctrl-C does
+            raise KeyboardInterrupt
+        changed = False
+        for job in pending.values():
+            entry = _entry(manifest, job["name"])
+            done, _ = variant_progress(job["cache"])
+            state = "running" if done and entry["state"] != "running" else entry["state"]
+            if done != entry["frames_done"] or state != entry["state"]:
+                entry.update(frames_done=done, state=state, frames_total=frames_total)
+                progress.variant(job["name"], state, done, frames_total)
+                changed = True
+        if changed:
+            write_manifest(out_dir, manifest)
+
+    from .bake import StopFlag
+
+    stop_flag = StopFlag().install()
     try:
-        while pending:
-            for future in [f for f in pending if f.done()]:
-                pending.discard(future)
-                job = futures[future]
-                entry = _entry(manifest, job["name"])
-                if future.status == "finished":
-                    report = future.result()
-                else:
-                    exc = future.exception()
-                    report = {"name": job["name"], "state": "failed", "seconds": 0.0, "worker": None,
-                              "error": f"{type(exc).__name__}: {exc}"}  # fmt: skip
-                apply_report(entry, report, frames_total)
-                progress.variant(job["name"], entry["state"], entry["frames_done"], frames_total, entry["worker"])
-                write_manifest(out_dir, manifest)
-            changed = False
-            for future in pending:
-                job = futures[future]
-                entry = _entry(manifest, job["name"])
-                done, _ = variant_progress(job["cache"])
-                state = "running" if done and entry["state"] != "running" else entry["state"]
-                if done != entry["frames_done"] or state != entry["state"]:
-                    entry.update(frames_done=done, state=state, frames_total=frames_total)
-                    progress.variant(job["name"], state, done, frames_total)
-                    changed = True
-            if changed:
-                write_manifest(out_dir, manifest)
-            if pending:
-                time.sleep(poll_seconds)
+        collect(futures, on_done, on_poll, poll_seconds)
     except KeyboardInterrupt:
         stop.set()
         progress.note("stopping: each running variant finishes its current frame; re-run the same command to resume")
-        try:
-            distributed.wait(list(pending), timeout=120, return_when="ALL_COMPLETED")
-        except TimeoutError:
+        pending = [future for future in futures if not future.done()]
+        if not wait_until_done(pending, 120, poll_seconds):
             progress.note("some variants did not stop within 120 s; their finished frames are kept")
         for future in pending:
             entry = _entry(manifest, futures[future]["name"])
             entry.update(state="partial", frames_done=variant_progress(entry["cache"])[0])
         write_manifest(out_dir, manifest)
         return False
+    finally:
+        stop_flag.restore()
     return True
+
+
+def run_jobs(function, jobs, out_dir, scheduler=None, workers=None, paths=(), on_done=None, log=None):
+    """Run ``function(job)`` for every job on Dask (a LocalCluster, or the scheduler at ``scheduler``).
+
+    The path shared by ``training.generate --scheduler`` and ``bench/eval_learned.py --scheduler``:
+    ``function`` must be importable by the workers (a module-level function of the repository, which
+    must be on their PYTHONPATH), each job a small dict of paths and settings, and each result a small
+    dict; the files themselves stay on storage every worker sees.
+
+    Args:
+        function: called as ``function(job)`` on a worker.
+        jobs: list of dicts; ``job["name"]`` names the task in messages.
+        out_dir: the folder the tasks write into (checked for every worker before anything runs).
+        scheduler, workers: as for ``connect`` (workers None: one per core, at most one per job).
+        paths: further files or folders every worker must see (inputs, models).
+        on_done: ``on_done(job, result)`` here as each task finishes (e.g. rewrite a manifest).
+        log: ``log(text)`` for one line per finished task (or None).
+
+    Returns:
+        [result] in the order of ``jobs``.
+
+    Raises:
+        UsageError: no scheduler at the address, or no workers.
+        CacheError: a worker cannot read and write ``out_dir`` or cannot see one of ``paths``.
+        SplashdraftError: the first task that failed, re-raised once every other task has finished
+            (their results were passed to ``on_done`` first, so no finished work is lost).
+    """
+    if not jobs:
+        return []
+    out_dir = Path(out_dir).resolve()
+    out_dir.mkdir(parents=True, exist_ok=True)
+    client, cluster = connect(scheduler, workers if workers else min(len(jobs), local_worker_count()))
+    results, errors = {}, []
+    try:
+        check_shared_storage(client, out_dir, [str(Path(p).resolve()) for p in paths])
+        run_id = uuid.uuid4().hex[:10]
+        futures = {client.submit(_run_task, function, job, key=f"splashdraft-{job['name']}-{run_id}", pure=False): index
+                   for index, job in enumerate(jobs)}  # fmt: skip
+
+        def done(index, future):
+            job = jobs[index]
+            if future.status != "finished":
+                errors.append((job, future))
+                if log is not None:
+                    log(f"{job['name']}: failed on a worker ({task_error(future)})")
+                return
+            results[index] = future.result()
+            if on_done is not None:
+                on_done(job, results[index])
+
+        collect(futures, done)
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+    if errors:
+        job, future = errors[0]
+        exc = future.exception()
+        if isinstance(exc, SplashdraftError):
+            raise exc
+        raise SplashdraftError(f"{job['name']}: the task failed on a Dask worker ({task_error(future)}); "
+                         "finished results are kept, re-run the same command to retry the rest") from None  # fmt: skip
+    return [results[index] for index in range(len(jobs))]
+
+
+#: glibc's mallopt parameter numbers (malloc.h).
+M_TRIM_THRESHOLD, M_MMAP_THRESHOLD = -1, -3
+
+
+def keep_freed_memory():
+    """In a Dask worker: let glibc keep freed memory for reuse; True when it was set.
+
+    Dask's nanny starts workers with MALLOC_TRIM_THRESHOLD_=65536, which also switches off glibc's
+    adaptive mmap threshold: every array over 128 KiB is then a fresh mmap whose pages the kernel
+    must fault in and zero, and the solver allocates many per substep. Measured on an 8-frame,
+    2.5k-particle bake: 384k minor page faults and 0.7 s system time against 17k and 0.06 s
+    (+40 % CPU). Arrays up to 32 MiB from the heap and trimming only above 256 MiB restore the
+    plain process's behaviour (6.6k faults, 0.03 s). Not glibc (macOS, musl): nothing to do.
+    """
+    try:
+        mallopt = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
+    except (OSError, AttributeError):
+        return False
+    return bool(mallopt(M_MMAP_THRESHOLD, 32 << 20)) and bool(mallopt(M_TRIM_THRESHOLD, 256 << 20))
 
 
 def _bake_task(job, stop_event_name):
     """The Dask task: bake one variant, stopping after a frame once the wedge's stop Event is set."""
     import distributed
 
+    keep_freed_memory()
     event = distributed.Event(stop_event_name)
     return bake_variant(job, should_stop=event.is_set)
+
+
+def _run_task(function, job):
+    """The Dask task of ``run_jobs``: ``function(job)`` in a worker set up as for a bake."""
+    keep_freed_memory()
+    return function(job)
 
 
 def run_wedge(scene_file, vary, solver_name, out_dir, frames=None, model=None, workers=None, scheduler=None,

@@ -25,7 +25,9 @@ def make_solver(name, **options) -> Solver:
             (``engine.learned.LearnedSolver``, the learned preview).
         **options: keyword arguments of that solver's class. ``model`` (learned only) may be a
             model folder, an .onnx file or its .json contract (``find_model``); None or absent is
-            the shipped model.
+            the shipped model. ``threads``: onnxruntime intra-op threads of the learned preview
+            (None or absent: its default); the reference solver's pool is sized by
+            SPLASHDRAFT_THREADS when ``engine.sph`` is imported, so it takes no ``threads``.
 
     Returns:
         The solver (``start(world)``, ``advance(state, world, interval)``, ``settings()``).
@@ -35,15 +37,16 @@ def make_solver(name, **options) -> Solver:
         ModelError: the model is missing or fails its contract check.
     """
     check_model_option(name, options.get("model"))
+    model, threads = options.pop("model", None), options.pop("threads", None)
     if name == "sph":
-        options.pop("model", None)
         from .sph import SphSolver
 
         return SphSolver(**options)
     if name == "learned":
         from .learned import LearnedSolver
 
-        model = options.pop("model", None)
+        if threads is not None:
+            options["threads"] = max(1, int(threads))
         return LearnedSolver(model=None if model is None else find_model(model), **options)
     raise UsageError(f"solver {name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
 

@@ -246,7 +246,9 @@ def bake_variant(job, should_stop=None):
             report.update(state="skipped", last_written=last, seconds=time.monotonic() - started)
             return report
         resume = (cache / MANIFEST_NAME).is_file() and (cache / "checkpoint.npz").is_file()
-        solver = make_solver(job["solver"], model=job.get("model"))
+        # A farm worker's share of the cores (engine.farm.worker_environment); unset: the solver's default.
+        threads = os.environ.get("SPLASHDRAFT_THREADS", "").strip()
+        solver = make_solver(job["solver"], model=job.get("model"), threads=int(threads) if threads.isdigit() else None)
         result = bake(scene, job["solver"], cache, frames=job.get("frames"), resume=resume,
                       should_stop=should_stop, use_signals=False, solver=solver)  # fmt: skip
         report.update(

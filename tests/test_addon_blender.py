@@ -15,6 +15,8 @@ DEVELOPERS.md, Blender's own importers, closed-form volume/bounds of boxes,
 and Blender's extension validator.
 """
 
+import json
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -86,6 +88,7 @@ def test_linux_wheel_build_bundles_a_scipy_that_runs_with_blenders_numpy(tmp_pat
 def test_shot_exports_bakes_plays_back_renders_swaps_and_exports(tmp_path):
     """The whole artist path through the add-on's operators (see the module docstring for the oracles)."""
     result, output = blender_env.run_child(HERE, "child_shot", tmp_path, timeout=900)
+    assert result["engine_modules"] == ["bl_ext.dev.splashdraft."], result["engine_modules"]
     export = result["export"]
     # Closed-form box geometry: bounds of a 1.0 x 0.6 x 0.8 cube centred at (0.5, 0.3, 0.4), in metres.
     np.testing.assert_allclose(export["bounds_min"], [0.0, 0.0, 0.0], atol=1e-6)
@@ -112,7 +115,7 @@ def test_shot_exports_bakes_plays_back_renders_swaps_and_exports(tmp_path):
         assert frame["mesh_count"] == frame["cache_count"] > 0, frame
         assert frame["max_position_error"] <= 1e-6, frame  # float32 copied exactly (BU == m here)
         assert frame["max_speed_error"] <= 1e-5, frame
-        assert frame["ids_equal"], frame
+        assert frame["ids_equal"] and frame["zone_equal"] and frame["foam_equal"], frame
     render = result["render"]
     assert render["std"] > 0.02 and render["liquid_fraction"] > 0.01, render
 
@@ -160,6 +163,7 @@ def test_nodes_playback_reads_the_cache_without_python(tmp_path):
         assert frame["count"] == frame["cache_count"] > 0, frame
         assert frame["position_error_bu"] <= 1e-5 and frame["velocity_error_bu"] <= 1e-5, frame
         assert frame["speed_error_ms"] <= 1e-5 and frame["ids_equal"], frame
+        assert frame["zone_equal"] and frame["foam_error"] == 0.0, frame
     assert result["render"]["std"] > 0.02 and result["render"]["liquid_fraction"] > 0.01, result["render"]
     assert "Splashdraft file reader" not in result["back"]["modifiers"] and result["back"]["vertices"] > 0, result
 
@@ -167,9 +171,9 @@ def test_nodes_playback_reads_the_cache_without_python(tmp_path):
 def test_liquid_surface_of_the_demo_block_is_one_watertight_body_of_the_particles_volume(tmp_path):
     """The joined surface (Geometry Nodes, no Python at evaluation) of the demo shot's resting water
     block at frame 1: one connected, watertight component whose enclosed volume is within 10 % of
-    particles x spacing^3, carrying the particles' speed; under every playback mode this Blender has.
-    A scattered cache (block, one-particle-thick sheet, lone droplet) keeps the sheet and the droplet
-    as their own visible bodies.
+    particles x spacing^3, carrying the particles' speed, zone and foam; under every playback mode this
+    Blender has. A scattered cache (block, one-particle-thick sheet, lone droplet) keeps the sheet and
+    the droplet as their own visible bodies, and the droplet's body reads as spray.
 
     Oracles: the divergence theorem for the enclosed volume (V = sum det[a, b, c] / 6 over the
     triangles; Gauss, any calculus text, common practice), a closed 2-manifold has every edge in
@@ -188,6 +192,10 @@ def test_liquid_surface_of_the_demo_block_is_one_watertight_body_of_the_particle
         assert stats["particle_volume_m3"] > 0
         assert abs(stats["enclosed_volume_m3"] / stats["particle_volume_m3"] - 1.0) <= 0.10, mode
         assert stats["has_velocity"] and stats["has_speed"], mode
+        # White water reaches the surface: zones of the surface are zones the particles have.
+        assert stats["has_zone"] and stats["has_foam"], mode
+        assert set(stats["zones"]) <= set(stats["particle_zones"]), mode
+        assert 0.0 <= stats["foam_min"] <= stats["foam_max"] <= 1.0, mode
         # Frame 3: the block is falling over; the surface's speeds lie within the particles' range.
         moving = mode["frame3"]
         assert moving["speed_max"] > 0.05, moving
@@ -195,6 +203,9 @@ def test_liquid_surface_of_the_demo_block_is_one_watertight_body_of_the_particle
         assert moving["speed_max"] <= moving["particle_speed_max"] + 1e-5, moving
     scattered = result["scattered"]
     assert scattered["components"] == 3, scattered
+    # The lone droplet's body is spray (zone 2: no neighbour within 2 spacings, Ihmsen et al. 2012's
+    # spray class); the block's body is interior and surface only.
+    assert scattered["droplet_zones"] == [2] and 2 not in scattered["block_zones"], scattered
     # The droplet's body: about a spacing across (at least 0.3 spacings), centred on its particle.
     assert scattered["droplet_size"] >= 0.3 * scattered["spacing"], scattered
     assert scattered["droplet_centre_error"] <= 0.1 * scattered["spacing"], scattered
@@ -228,6 +239,57 @@ def test_failures_are_named_in_blenders_words_never_as_tracebacks(tmp_path):
     for frame, word in ((2, "damaged"), (3, "damaged"), (4, "missing")):
         named = [m for m in nodes if f"points_{frame:04d}.ply" in m]
         assert len(named) == 1 and word in named[0], (frame, nodes)
+
+
+def test_preview_against_reference_is_measured_in_the_background_and_shown_again_after_reopening(tmp_path):
+    """Bake the shot with both solvers, press the panel's measure button: the engine's compare runs in
+    a child process, its result is stored beside the preview and the panel shows it, also after the
+    .blend is saved and opened again.
+
+    Oracles: the Chamfer distance recomputed here by brute force from the two caches' PLY files
+    (symmetric mean nearest-neighbour distance, unsquared: Barrow, Tenenbaum, Bolles & Wolf 1977,
+    "Parametric correspondence and chamfer matching"; the point-cloud form of Fan, Su & Guibas 2017;
+    the convention stated in engine/compare.py), and the kinetic energy 1/2 m sum |v|^2 of both
+    (m = rho0 d^3 cancels in the ratio; textbook mechanics)."""
+    result, output = blender_env.run_child(HERE, "child_compare", tmp_path, timeout=900)
+    assert result["bakes"] == [["FINISHED"], ["FINISHED"]], output[-4000:]
+    assert result["versions"] == ["v001_sph", "v002_learned"], result
+    # Each finished bake measures this computer: the estimate's time is rough only before the first
+    # bake with that solver, and the kept figures name both solvers.
+    rough = ["rough" in text for text in result["estimates"]]
+    assert rough == [True, False, True, False], result["estimates"]
+    (machine,) = result["calibration"]["machines"].values()
+    assert sorted(machine) == ["learned", "sph"] and all(entry["rate"] > 0 for entry in machine.values())
+    assert result["before"] == ["v002_learned against v001_sph"], "no figures before measuring"
+    assert result["operator"] == ["FINISHED"], output[-4000:]
+    stored = result["stored"]
+    assert stored["frames"] == [1, 2, 3, 4]
+    np.testing.assert_allclose(stored["chamfer_spacings"], result["brute_force_chamfer_spacings"], rtol=1e-5)
+    assert stored["energy_ratio_line"] == f"Motion energy: {result['brute_force_energy_ratio']:.2f} x reference"
+    assert result["has_table"] and result["has_plot"], result
+    lines = result["panel"]
+    assert "v002_learned against v001_sph" in lines, lines
+    assert f"Distance: mean {np.mean(result['brute_force_chamfer_spacings']):.2f}, worst " \
+        f"{np.max(result['brute_force_chamfer_spacings']):.2f} spacings" in lines, lines
+    assert stored["energy_ratio_line"] in lines and any(line.startswith("Over-energy: preview") for line in lines)
+    assert sum(1 for line in lines if "sp, energy" in line) == 4, lines
+    assert result["panel_after_reopening"] == lines
+    assert result["opens"] == ["compare_v001_sph.txt", "compare_v001_sph.png"], result["opens"]
+    assert all(len(line) <= 60 for line in lines), lines
+
+
+def test_a_preview_bake_outside_the_models_training_shows_its_named_warning_in_the_bakes_panel(tmp_path):
+    """A learned bake at a viscosity above the shipped model's trained range carries the named warning
+    in its manifest (engine side, tests/test_learned.py); the Bakes panel shows it for that version,
+    read back from the manifest the engine wrote (the oracle), and a reference bake shows none."""
+    result, output = blender_env.run_child(HERE, "child_range_warning", tmp_path, timeout=600)
+    assert result["bakes"] == [["FINISHED"], ["FINISHED"]], output[-4000:]
+    assert result["manifest_warnings"] and result["manifest_warnings"][0].startswith("viscosity-outside-training")
+    assert result["notes"] == ["", "\n".join(result["manifest_warnings"])], result
+    shown = " ".join(result["labels_learned"])
+    assert "viscosity-outside-training" in shown and "fluid.viscosity 0.2" in shown, result
+    assert not any("training" in label for label in result["labels_sph"]), result
+    assert all(len(label) <= 60 for label in result["labels_learned"]), result
 
 
 def test_panels_draw_only_existing_properties_and_operators():
@@ -331,10 +393,48 @@ def child_panels():
     for role in ("NONE", "FILL", "STREAM", "COLLIDER", "BOUNDS"):
         obj.splashdraft.role = role
         obj.splashdraft.use_stream_frames = True
-        for panel in ui.classes[1:]:
+        for panel in ui.classes[1:] + sys.modules[module + ".addon.fidelity"].classes[2:]:
             panel.draw(type("Self", (), {"layout": RecordingLayout(log)})(), Context)
     log["category"] = ui.SPLASHDRAFT_PT_shot.bl_category
     return log
+
+
+def child_range_warning(tmp):
+    import bpy
+
+    tmp = Path(tmp)
+    scene = blender_env.reset_scene()
+    module = blender_env.enable_from_source()
+    ui = sys.modules[module + ".addon.ui"]
+    os.environ["SPLASHDRAFT_CALIBRATION"] = str(tmp / "calibration.json")
+    build_shot(scene, tmp / "cache")
+    shot = scene.splashdraft
+    shot.viscosity = 0.2
+    scene.frame_end = 2
+    bakes = []
+    for solver in ("sph", "learned"):
+        shot.solver = solver
+        bakes.append(sorted(bpy.ops.splashdraft.bake()))
+    learned = Path(shot.versions[1].folder)
+    out = {"bakes": bakes, "notes": [v.notes for v in shot.versions],
+           "manifest_warnings": json.loads((learned / "manifest.json").read_text())["warnings"]}
+    for index, key in ((0, "labels_sph"), (1, "labels_learned")):
+        shot.versions_index = index
+        labels = []
+
+        class Recorder(RecordingLayout):
+            def _child(self, *args, **kwargs):
+                return self
+
+            row = column = box = split = grid_flow = _child
+
+            def label(self, text="", **kwargs):
+                labels.append(text)
+
+        log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
+        ui.SPLASHDRAFT_PT_versions.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        out[key] = labels
+    return out
 
 
 def child_wheels(zip_path):
@@ -387,13 +487,14 @@ def build_shot(scene, cache_dir):
 
 
 def parse_ply(path):
-    """Independent reader of the cache frame layout in DEVELOPERS.md (binary little-endian, 9 properties)."""
+    """Independent reader of the cache frame layout in DEVELOPERS.md (binary little-endian, the
+    properties as the header declares them: int or float, 4 bytes each)."""
     data = Path(path).read_bytes()
     end = data.index(b"end_header\n") + len(b"end_header\n")
     header = data[:end].decode("ascii").split("\n")
     count = int(next(line for line in header if line.startswith("element vertex")).split()[-1])
-    dtype = np.dtype([("x", "<f4"), ("y", "<f4"), ("z", "<f4"), ("vx", "<f4"), ("vy", "<f4"), ("vz", "<f4"),
-                      ("id", "<i4"), ("density", "<f4"), ("pressure", "<f4")])
+    props = [line.split()[1:3] for line in header if line.startswith("property")]
+    dtype = np.dtype([(name, "<i4" if kind == "int" else "<f4") for kind, name in props])
     return np.frombuffer(data, dtype, count=count, offset=end)
 
 
@@ -408,6 +509,13 @@ def mesh_arrays(obj):
         mesh.attributes["speed"].data.foreach_get("value", speed)
         mesh.attributes["id"].data.foreach_get("value", ids)
     return positions.reshape(-1, 3), speed, ids
+
+
+def mesh_values(obj, name, dtype):
+    """One scalar point attribute of ``obj``'s own mesh as an array."""
+    values = np.empty(len(obj.data.vertices), dtype)
+    obj.data.attributes[name].data.foreach_get("value", values)
+    return values
 
 
 def signed_volume(vertices, triangles):
@@ -549,7 +657,9 @@ def child_shot(tmp):
             "frame": frame, "mesh_count": len(positions), "cache_count": int(len(records)),
             "max_position_error": float(np.abs(positions - cache_positions).max()) if same else 1.0,
             "max_speed_error": float(np.abs(speed - np.linalg.norm(velocity, axis=1)).max()) if same else 1.0,
-            "ids_equal": bool(same and np.array_equal(ids, records["id"]))})
+            "ids_equal": bool(same and np.array_equal(ids, records["id"])),
+            "zone_equal": bool(same and np.array_equal(mesh_values(obj, "zone", np.int32), records["zone"])),
+            "foam_equal": bool(same and np.array_equal(mesh_values(obj, "foam", np.float32), records["foam"]))})
 
     scene.frame_set(3)
     out["render"] = render_png(scene, tmp / "frame3.png")
@@ -635,6 +745,9 @@ def child_shot(tmp):
     scene.frame_set(2)
     warnings = display.reported_warnings()
     out["corrupt"] = {"count": count, "warned": len(warnings), "messages": warnings}
+    # Inside Blender's process the engine has one name, the add-on's (issue 15).
+    out["engine_modules"] = sorted(name[: -len("engine.scene")] or "(top level)" for name in sys.modules
+                                   if name == "engine.scene" or name.endswith(".engine.scene"))
     return out
 
 
@@ -688,6 +801,12 @@ def child_nodes_playback(tmp):
                 got["velocity_error_bu"] = float(np.abs(velocity.reshape(-1, 3) - 2.0 * want_v).max())
                 got["speed_error_ms"] = float(np.abs(speed - np.linalg.norm(want_v, axis=1)).max())
                 got["ids_equal"] = bool(np.array_equal(ids, records["id"]))
+                zone = np.empty(n, np.int32)
+                mesh.attributes["zone"].data.foreach_get("value", zone)
+                foam = np.empty(n, np.float32)
+                mesh.attributes["foam"].data.foreach_get("value", foam)
+                got["zone_equal"] = bool(np.array_equal(zone, records["zone"]))
+                got["foam_error"] = float(np.abs(foam - records["foam"]).max())
         evaluated.to_mesh_clear()
         frames.append(got)
     spheres.show_viewport = True
@@ -751,16 +870,27 @@ def surface_mesh_stats(obj):
     has_speed = "speed" in mesh.attributes
     if has_speed and n:
         mesh.attributes["speed"].data.foreach_get("value", speed)
+    zone = np.zeros(n, np.int32)
+    has_zone = "zone" in mesh.attributes
+    if has_zone and n:
+        mesh.attributes["zone"].data.foreach_get("value", zone)
+    foam = np.zeros(n, np.float32)
+    if "foam" in mesh.attributes and n:
+        mesh.attributes["foam"].data.foreach_get("value", foam)
     out = {"vertices": n, "components": int(count), "open_edges": int(np.sum(uses == 1)),
+           "has_zone": has_zone, "has_foam": "foam" in mesh.attributes, "zones": sorted(set(zone.tolist())),
+           "foam_min": float(foam.min()) if n else 0.0, "foam_max": float(foam.max()) if n else 0.0,
            "non_manifold_edges": int(np.sum(uses > 2)),
            "enclosed_volume_m3": signed_volume(positions, triangles) if n else 0.0,
            "has_speed": has_speed, "has_velocity": "velocity" in mesh.attributes,
            "speed_min": float(speed.min()) if n else 0.0, "speed_max": float(speed.max()) if n else 0.0}
     evaluated.to_mesh_clear()
-    return out, positions, labels
+    return out, positions, labels, zone
 
 
 def child_surface(tmp):
+    import importlib
+
     import bpy
 
     tmp = Path(tmp)
@@ -786,11 +916,12 @@ def child_surface(tmp):
         entry = {"mode": mode}
         for frame in (1, 3):
             scene.frame_set(frame)
-            stats, _, _ = surface_mesh_stats(shot.display_object)
+            stats, _, _, _ = surface_mesh_stats(shot.display_object)
             records = parse_ply(folder / f"points_{frame:04d}.ply")
             stats["particle_volume_m3"] = len(records) * spacing ** 3
             speeds = np.linalg.norm(np.stack([records["vx"], records["vy"], records["vz"]], axis=1), axis=1)
             stats["particle_speed_min"], stats["particle_speed_max"] = float(speeds.min()), float(speeds.max())
+            stats["particle_zones"] = sorted(set(records["zone"].tolist()))
             entry[f"frame{frame}"] = stats
         out["modes"].append(entry)
 
@@ -808,15 +939,21 @@ def child_surface(tmp):
     writer = cache.CacheWriter(shot_dir / "v001_sph", {
         "scene_name": "spray", "scene_hash": "0" * 64, "solver": {"name": "sph", "settings": {}}, "fps": 24,
         "frame_start": 1, "frame_end": 1, "particle_spacing": h, "rest_density": 1000.0})
+    whitewater = importlib.import_module(module + ".engine.whitewater")
+    marks = whitewater.whitewater(positions, np.zeros((count, 3)), h)
     writer.write_frame(1, {"positions": positions, "velocities": np.zeros((count, 3)), "ids": np.arange(count),
-                           "density": np.full(count, 1000.0), "pressure": np.zeros(count)},
+                           "density": np.full(count, 1000.0), "pressure": np.zeros(count),
+                           **{name: marks[name] for name in whitewater.ATTRIBUTES}},
                        time=0.0, substeps=1, seconds=0.0)
     writer.mark_complete()
     shot.cache_dir, shot.shot_name = str(Path(tmp) / "scattered"), "spray"
     bpy.ops.splashdraft.refresh_versions()
     scene.frame_set(1)
-    stats, points, labels = surface_mesh_stats(shot.display_object)
+    stats, points, labels, zone = surface_mesh_stats(shot.display_object)
     droplet_label = labels[np.argmin(np.linalg.norm(points - droplet[0], axis=1))]
+    block_label = labels[np.argmin(np.linalg.norm(points - block.mean(axis=0), axis=1))]
+    stats["droplet_zones"] = sorted(set(zone[labels == droplet_label].tolist()))
+    stats["block_zones"] = sorted(set(zone[labels == block_label].tolist()))
     sheet_label = labels[np.argmin(np.linalg.norm(points - [0.15, 0.15, 0.6], axis=1))]
     drop = points[labels == droplet_label]
     sheet_points = points[labels == sheet_label]
@@ -826,6 +963,83 @@ def child_surface(tmp):
     out["scattered"] = stats
     return out
 
+
+
+def child_compare(tmp):
+    import bpy
+
+    tmp = Path(tmp)
+    scene = blender_env.reset_scene()
+    module = blender_env.enable_from_source()
+    fidelity = sys.modules[module + ".addon.fidelity"]
+    os.environ["SPLASHDRAFT_CALIBRATION"] = str(tmp / "calibration.json")  # this computer not measured yet
+    build_shot(scene, tmp / "cache")
+    shot = scene.splashdraft
+    bakes, estimates = [], []
+    for solver in ("sph", "learned"):
+        shot.solver = solver
+        bpy.ops.splashdraft.estimate()
+        estimates.append(shot.estimate_text)
+        bakes.append(sorted(bpy.ops.splashdraft.bake()))
+        bpy.ops.splashdraft.estimate()
+        estimates.append(shot.estimate_text)
+    out = {"bakes": bakes, "versions": [v.name for v in shot.versions], "estimates": estimates,
+           "calibration": json.loads((tmp / "calibration.json").read_text())}
+
+    opens = []
+
+    def panel_lines():
+        labels = []
+        opens.clear()
+
+        class Recorder(RecordingLayout):
+            def _child(self, *args, **kwargs):
+                return self
+
+            row = column = box = split = grid_flow = _child
+
+            def label(self, text="", **kwargs):
+                labels.append(text)
+
+            def operator(self, idname, **kwargs):
+                properties = super().operator(idname, **kwargs)
+                if idname == "wm.path_open":
+                    opens.append(properties)
+                return properties
+
+        log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
+        fidelity.SPLASHDRAFT_PT_fidelity.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        assert not log["missing"], log
+        return labels
+
+    out["before"] = panel_lines()
+    out["operator"] = sorted(bpy.ops.splashdraft.compare())
+    reference, preview = (Path(v.folder) for v in shot.versions)
+    stored = json.loads((preview / "compare_v001_sph.json").read_text())
+    comparison = sys.modules[module + ".addon.comparison"]
+    out["stored"] = {"frames": [row["frame"] for row in stored["frames"]],
+                     "chamfer_spacings": [row["chamfer_spacings"] for row in stored["frames"]],
+                     "energy_ratio_line": comparison.summary_lines(stored)[3]}
+    out["has_table"] = (preview / "compare_v001_sph.txt").stat().st_size > 100
+    out["has_plot"] = (preview / "compare_v001_sph.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    chamfers, energy = [], [0.0, 0.0]
+    for frame in range(1, 5):
+        a, b = parse_ply(reference / f"points_{frame:04d}.ply"), parse_ply(preview / f"points_{frame:04d}.ply")
+        pa = np.stack([a["x"], a["y"], a["z"]], 1).astype(np.float64)
+        pb = np.stack([b["x"], b["y"], b["z"]], 1).astype(np.float64)
+        distances = np.linalg.norm(pa[:, None, :] - pb[None, :, :], axis=2)
+        chamfers.append(0.5 * (distances.min(axis=1).mean() + distances.min(axis=0).mean()) / 0.05)
+        for k, records in enumerate((a, b)):
+            energy[k] += float(sum(np.sum(records[c].astype(np.float64) ** 2) for c in ("vx", "vy", "vz")))
+    out["brute_force_chamfer_spacings"] = chamfers
+    out["brute_force_energy_ratio"] = energy[1] / energy[0]
+    out["panel"] = panel_lines()
+    blend = tmp / "shot.blend"
+    bpy.ops.wm.save_as_mainfile(filepath=str(blend))
+    bpy.ops.wm.open_mainfile(filepath=str(blend))
+    out["panel_after_reopening"] = panel_lines()
+    out["opens"] = [Path(o.filepath).name for o in opens]
+    return out
 
 def child_failures(tmp):
     import bpy

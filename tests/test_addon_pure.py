@@ -17,7 +17,7 @@ import pytest
 from tools import blender_env
 
 PKG = blender_env.load_package()
-from splashdraft_src.addon import jobs, motion, versions  # noqa: E402  (needs load_package first)
+from splashdraft_src.addon import comparison, jobs, motion, versions  # noqa: E402  (needs load_package first)
 from splashdraft_src.engine.cache import CacheWriter, open_cache  # noqa: E402
 from splashdraft_src.engine.mesh_io import box_mesh, read_mesh  # noqa: E402
 from splashdraft_src.engine.progress import JsonProgress  # noqa: E402
@@ -253,3 +253,53 @@ def test_counts_read_as_english_in_status_lines():
     assert progress.status_text().endswith("1 particle")
     done = jobs.apply_event(jobs.BakeProgress(), {"event": "finished", "frames": 1, "seconds": 2})
     assert done.status_text() == "Splashdraft: baked 1 frame in 2 s"
+
+
+def test_compare_pair_is_the_shown_version_and_the_newest_of_the_other_solver():
+    """The panel measures the shown preview against the newest reference with frames (or the shown
+    reference against the newest preview); nothing without both kinds."""
+    rows = [{"name": "v001_sph", "solver": "sph", "frames": 4}, {"name": "v002_learned", "solver": "learned", "frames": 4},
+            {"name": "v003_sph", "solver": "sph", "frames": 4}, {"name": "v004_sph", "solver": "sph", "frames": 0}]
+    assert comparison.pick_pair(rows, "v002_learned") == ("v003_sph", "v002_learned")
+    assert comparison.pick_pair(rows, "v001_sph") == ("v001_sph", "v002_learned")
+    assert comparison.pick_pair(rows, "v004_sph") is None  # nothing baked yet
+    assert comparison.pick_pair(rows[:1] + rows[2:], "v001_sph") is None
+
+
+def test_compare_worker_result_matches_the_engine_and_names_a_spacing_mismatch(tmp_path):
+    """The compare command through the add-on's boot code (isolated mode, as in Blender) reports one
+    frame event per frame and prints the engine's own result; bakes at different spacings are
+    refused with the engine's message. Oracle: engine.compare.compare_caches run in this process
+    on the same caches (the add-on must pass the figures through unchanged) and the Chamfer
+    distance of a cache against itself, 0 by definition (Barrow et al. 1977)."""
+    from splashdraft_src.engine.compare import compare_caches
+
+    scene = write_block_scene(tmp_path, frame_end=3)
+    for name in ("v001_sph", "v002_sph"):
+        job = jobs.BakeJob(jobs.bake_command(scene_path=scene, out_dir=tmp_path / name, **worker_args()))
+        run_ticks(job, RecordingUI())
+    argv = comparison.compare_command(reference_dir=tmp_path / "v001_sph", preview_dir=tmp_path / "v002_sph",
+                                      plot_path=tmp_path / "plot.png", **worker_args())
+    job = jobs.BakeJob(argv)
+    ui = RecordingUI()
+    run_ticks(job, ui)
+    assert job.progress.state == "finished", (job.progress.message, job.progress.other_lines)
+    assert ui.frames == [1, 2, 3]
+    result = comparison.parse_result(job.stdout_lines)
+    direct = compare_caches(tmp_path / "v001_sph", tmp_path / "v002_sph")
+    assert [row["chamfer_spacings"] for row in result["frames"]] == [row["chamfer_spacings"] for row in direct["frames"]]
+    assert result["max_chamfer_spacings"] == 0.0  # the bake is deterministic: the same cloud twice
+    assert comparison.summary_lines(result)[3] == "Motion energy: 1.00 x reference"
+    coarse = write_block_scene(tmp_path / "coarse", frame_end=3, spacing=0.05)
+    job = jobs.BakeJob(jobs.bake_command(scene_path=coarse, out_dir=tmp_path / "v003_sph", **worker_args()))
+    run_ticks(job, RecordingUI())
+    argv = comparison.compare_command(reference_dir=tmp_path / "v003_sph", preview_dir=tmp_path / "v002_sph",
+                                      plot_path=tmp_path / "plot2.png", **worker_args())
+    job = jobs.BakeJob(argv)
+    run_ticks(job, RecordingUI())
+    assert job.progress.state == "failed" and "particle spacings differ" in job.progress.message
+    assert comparison.parse_result(job.stdout_lines) is None
+    # In the sidebar the version names stand for their folders.
+    short = comparison.short_message(job.progress.message, {"v003_sph": tmp_path / "v003_sph",
+                                                            "v002_sph": tmp_path / "v002_sph"})
+    assert "(v003_sph: 0.05 m, v002_sph: 0.025 m)" in short and str(tmp_path) not in short, short

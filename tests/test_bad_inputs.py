@@ -18,7 +18,7 @@ import pytest
 
 from engine.cli import main
 from engine.mesh_io import box_mesh, write_obj
-from test_bake import ToySolver, run, write_tiny_scene
+from tests.test_bake import ToySolver, run, write_tiny_scene
 
 
 @pytest.fixture(scope="module")

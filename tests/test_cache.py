@@ -75,19 +75,22 @@ def encode(frame):
 def test_frame_is_readable_by_an_independent_ply_parser():
     """Our frame bytes parse with a struct-based reader written from the PLY description (Turk 1994;
     Bourke) [from memory]: the header declares exactly the DEVELOPERS.md property list, the data is
-    36 bytes per particle, and every value is the float32/int32 rounding of the input (exact match)."""
+    52 bytes per particle (13 four-byte properties), and every value is the float32/int32 rounding of the
+    input (exact match); the white-water properties, not given here, are written as zeros."""
     frame = random_frame(57, seed=1)
     data = encode(frame)
     fmt, props, rows = reference_parse(data)
     assert fmt == "binary_little_endian"
     assert props == [("float", "x"), ("float", "y"), ("float", "z"), ("float", "vx"), ("float", "vy"),
-                     ("float", "vz"), ("int", "id"), ("float", "density"), ("float", "pressure")]  # fmt: skip
+                     ("float", "vz"), ("int", "id"), ("float", "density"), ("float", "pressure"),
+                     ("int", "zone"), ("float", "trapped_air"), ("float", "wave_crest"), ("float", "foam")]  # fmt: skip
     table = np.array(rows, dtype=np.float64)
     np.testing.assert_array_equal(table[:, 0:3], frame["positions"].astype(np.float32))
     np.testing.assert_array_equal(table[:, 3:6], frame["velocities"].astype(np.float32))
     np.testing.assert_array_equal(table[:, 6], frame["ids"])
     np.testing.assert_array_equal(table[:, 7], frame["density"].astype(np.float32))
     np.testing.assert_array_equal(table[:, 8], frame["pressure"].astype(np.float32))
+    np.testing.assert_array_equal(table[:, 9:], 0.0)
 
 
 def test_round_trip_through_our_reader():
@@ -105,7 +108,7 @@ def test_empty_frame_is_a_valid_ply():
     """A frame with no particles is a valid PLY with N = 0 (DEVELOPERS.md), per the reference parser."""
     data = encode(random_frame(0))
     fmt, props, rows = reference_parse(data)
-    assert rows == [] and len(props) == 9
+    assert rows == [] and len(props) == 13
     assert parse_frame(data)["positions"].shape == (0, 3)
 
 
@@ -172,7 +175,8 @@ def test_writer_and_reader_round_trip_with_manifest(tmp_path):
                 "complete"):  # fmt: skip
         assert key in manifest, key
     assert manifest["format"] == "splashdraft-cache" and manifest["version"] == 1 and manifest["complete"]
-    assert manifest["attributes"] == ["x", "y", "z", "vx", "vy", "vz", "id", "density", "pressure"]
+    assert manifest["attributes"] == ["x", "y", "z", "vx", "vy", "vz", "id", "density", "pressure",
+                                      "zone", "trapped_air", "wave_crest", "foam"]
     assert reader.frames == [1, 2, 3]
     for frame, data in written.items():
         entry = manifest["frames"][str(frame)]

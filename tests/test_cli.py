@@ -4,7 +4,7 @@ Conventions checked (DEVELOPERS.md, docs/style.md "Command line"): ``--json`` ou
 is the only thing on stdout; human text, progress and the final summary line go to
 stderr; exit codes are engine.errors.EXIT_CODES and are listed in ``--help``. Disk
 figures are checked against the PLY description (Turk 1994, "The PLY Polygon File
-Format"; Bourke) [from memory]: nine 4-byte properties per vertex = 36 bytes, plus
+Format"; Bourke) [from memory]: thirteen 4-byte properties per vertex = 52 bytes, plus
 the ASCII header; and against the size of a frame actually written.
 """
 
@@ -16,7 +16,7 @@ import pytest
 
 from engine.cli import main
 from engine.errors import EXIT_CODES
-from test_bake import ToySolver, run, write_tiny_scene
+from tests.test_bake import ToySolver, run, write_tiny_scene
 
 
 def run_cli(argv, capsys):
@@ -60,7 +60,7 @@ def test_info_text_and_json(tmp_path, capsys):
 
 def test_estimate_json_matches_the_written_files(tmp_path, capsys):
     """estimate's particle count equals the particles of frame 1 actually baked (the fill), and its
-    bytes per frame equal that frame file's size: the header plus 36 bytes per particle."""
+    bytes per frame equal that frame file's size: the header plus 52 bytes per particle."""
     scene = write_tiny_scene(tmp_path)
     code, out, err = run_cli(["estimate", scene, "--json"], capsys)
     assert code == 0
@@ -73,7 +73,7 @@ def test_estimate_json_matches_the_written_files(tmp_path, capsys):
     assert estimate["particles"] == count > 0
     assert estimate["frame_bytes"] == first.stat().st_size
     header = first.read_bytes().split(b"end_header\n")[0] + b"end_header\n"
-    assert estimate["frame_bytes"] == len(header) + 36 * count
+    assert estimate["frame_bytes"] == len(header) + 52 * count
     assert estimate["disk_bytes"] == 6 * estimate["frame_bytes"]
     assert estimate["memory_bytes"] > count * 1000 and estimate["seconds"] > 0
     assert "rough" in err and err.strip().splitlines()[-1].startswith(f"estimate: 6 frames, {count} particles")

@@ -22,7 +22,7 @@ from engine.cli import main
 from engine.errors import SceneError, UsageError
 from engine.wedge import WEDGE_MANIFEST, parse_vary, set_scene_value, variant_progress
 
-from test_bake import write_tiny_scene
+from tests.test_bake import write_tiny_scene
 
 distributed = pytest.importorskip("distributed", reason="dask[distributed] is in requirements.txt; install it")
 
@@ -262,3 +262,35 @@ def test_killed_worker_loses_only_its_frame(tmp_path, dask_processes):
     _assert_same_frames(serial, farm)
     manifest = json.loads((farm / WEDGE_MANIFEST).read_text())
     assert all(v["state"] == "complete" for v in manifest["variants"])
+
+
+def test_sigterm_stops_a_dask_wedge_after_the_current_frames_and_the_rerun_finishes_it(tmp_path):
+    """SIGTERM to the wedge command (the add-on's Stop) on a LocalCluster: exit 130 (cancelled), the
+    variants are left partial with their finished frames, and re-running the same command finishes
+    them with every frame byte-identical to the serial wedge."""
+    scene = write_tiny_scene(tmp_path / "scene", frame_end=30, spacing=0.0125)
+    vary = ["--vary", "fluid.viscosity=0.01,0.04"]
+    serial, farm = tmp_path / "serial", tmp_path / "farm"
+    command = [sys.executable, "-m", "engine", "wedge", str(scene), *vary, "--out", str(farm), "--workers", "2",
+               "--progress", "json"]  # fmt: skip
+    client = subprocess.Popen(command, cwd=ROOT, env=dict(os.environ, PYTHONPATH=str(ROOT)), stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True)  # fmt: skip
+    deadline = time.monotonic() + 120
+    stopped = False
+    while time.monotonic() < deadline and client.poll() is None:
+        progress = [variant_progress(p.parent) for p in farm.glob("v0*/manifest.json")]
+        if len(progress) == 2 and all(2 <= done <= 20 and not complete for done, complete in progress):
+            client.send_signal(signal.SIGTERM)
+            stopped = True
+            break
+        time.sleep(0.05)
+    out, err = client.communicate(timeout=300)
+    assert stopped, "the wedge finished before it could be stopped; use a longer shot"
+    assert client.returncode == 130, err
+    manifest = json.loads((farm / WEDGE_MANIFEST).read_text())
+    assert {v["state"] for v in manifest["variants"]} == {"partial"}
+    assert all(0 < v["frames_done"] < 30 for v in manifest["variants"])
+    assert subprocess.run(command, cwd=ROOT, env=dict(os.environ, PYTHONPATH=str(ROOT)), capture_output=True,
+                          timeout=600).returncode == 0  # fmt: skip
+    assert main(["wedge", str(scene), *vary, "--out", str(serial), "--workers", "0", "--progress", "none"]) == 0
+    _assert_same_frames(serial, farm)

@@ -23,7 +23,7 @@ from engine.cli import main
 from engine.errors import BudgetError, MeshError, SceneError
 from engine.mesh_io import read_mesh
 from engine.scene import load_scene, scene_hash
-from test_bake import checksums, run, write_tiny_scene
+from tests.test_bake import checksums, run, write_tiny_scene
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -481,7 +481,7 @@ def test_budget_error_is_named_for_stream_layers(tmp_path):
 def test_malformed_model_contract_fields_are_model_errors(tmp_path, key, value, message):
     from engine.errors import ModelError
     from engine.learned import LearnedSolver
-    from test_learned import copy_model
+    from tests.test_learned import copy_model
 
     path = copy_model(tmp_path)
     contract = json.loads(path.with_suffix(".json").read_text())

@@ -23,8 +23,8 @@ from engine.scene import load_scene
 from engine.sph import SphSolver
 from engine.validate import BoxWorld
 from engine.world import build_world
-from test_bake import write_tiny_scene
-from test_learned import copy_model
+from tests.test_bake import write_tiny_scene
+from tests.test_learned import copy_model
 
 
 def test_make_solver_by_name_and_the_errors_name_the_fix():

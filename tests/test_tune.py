@@ -21,7 +21,7 @@ from engine.cli import main
 from engine.learned.contract import find_model, load_contract
 from engine.errors import ModelError
 
-from test_bake import write_tiny_scene
+from tests.test_bake import write_tiny_scene
 
 ROOT = Path(__file__).resolve().parents[1]
 

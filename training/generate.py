@@ -17,6 +17,13 @@ is accepted for clarity but skipping finished shots is always on. Several
 processes can share the work with ``--shard I/N`` (shot k goes to shard k mod N).
 The data manifest is rewritten (atomically) after every shot.
 
+``--workers N`` bakes the shots on a local Dask cluster of N worker processes, and
+``--scheduler tcp://HOST:PORT`` on an existing one, through the same path as
+``python -m engine wedge`` (``engine.farm.run_jobs``): one task per shot
+(``generate_shot``), ``--out`` on storage every worker sees (checked first; an
+error names the workers that cannot), and only this process writes the data
+manifest. Without either flag the shots are baked here, one after another.
+
 ``--heldout`` writes the held-out shots instead (ring obstacle, staircase,
 moving paddle; never in training) with ``--duration`` seconds each.
 """
@@ -39,10 +46,25 @@ DATA_FORMAT = "splashdraft-training-data"
 
 
 def shot_plan(heldout, count, frame_step=scenes.TARGET_STEP_FROUDE):
-    """[(name, scene dict)] of the shots to generate."""
+    """[(name, spec)] of the shots to generate; ``make_scene(spec, frame_step)`` builds each scene dict.
+
+    A spec is plain data (``["heldout", kind]`` or ``["train", index]``) so that it can travel to a worker.
+    """
     if heldout:
-        return [(f"heldout_{kind}", lambda kind=kind: scenes.heldout_scene(kind)) for kind in scenes.HELDOUT_KINDS]
-    return [(f"shot_{i:04d}", lambda i=i: scenes.training_scene(i, frame_step=frame_step)) for i in range(count)]
+        return [(f"heldout_{kind}", ["heldout", kind]) for kind in scenes.HELDOUT_KINDS]
+    return [(f"shot_{i:04d}", ["train", i]) for i in range(count)]
+
+
+def make_scene(spec, frame_step=scenes.TARGET_STEP_FROUDE, duration=None):
+    """The scene dict of a shot spec from ``shot_plan`` (``duration`` in s overrides its length)."""
+    kind, value = spec
+    if kind == "heldout":
+        scene_dict = scenes.heldout_scene(value)
+    else:
+        scene_dict = scenes.training_scene(int(value), frame_step=frame_step)
+    if duration is not None:
+        scene_dict["frame_end"] = scene_dict["frame_start"] + int(round(duration * scene_dict["fps"]))
+    return scene_dict
 
 
 def _cache_state(cache_dir):
@@ -93,17 +115,44 @@ def _write_manifest(out, kind, shots, seed, frame_step=scenes.TARGET_STEP_FROUDE
     write_atomic(out / "data_manifest.json", (json.dumps(manifest, indent=1) + "\n").encode())
 
 
+def generate_shot(job):
+    """Bake (or resume, or skip) one shot; returns {"summary": ..., "message": ...}.
+
+    Args:
+        job: dict with out (folder), name, spec (``shot_plan``), frame_step, duration (s or None).
+
+    Runs here or as a Dask task on a worker (it reads and writes only ``out/<name>``).
+    """
+    folder = Path(job["out"]) / job["name"]
+    scene_dict = make_scene(job["spec"], job["frame_step"], job["duration"])
+    status = _cache_state(folder / "cache")
+    if status == "complete":
+        return {"summary": _summary(job["name"], folder, scene_dict), "message": f"{job['name']}: complete, skipped"}
+    started = time.monotonic()
+    if status == "partial" and (folder / "scene.json").exists():
+        result = bake(folder / "scene.json", "sph", folder / "cache", resume=True, use_signals=False)
+        how = "resumed, "
+    else:
+        save_scene(folder / "scene.json", scene_dict)
+        result = bake(folder / "scene.json", "sph", folder / "cache", overwrite=True, use_signals=False)
+        how = ""
+    message = (f"{job['name']}: {how}{result.frames_written} frames, {result.particles} particles, "
+               f"{time.monotonic() - started:.1f} s")  # fmt: skip
+    return {"summary": _summary(job["name"], folder, scene_dict), "message": message}
+
+
 def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=print,
-             frame_step=scenes.TARGET_STEP_FROUDE):
+             frame_step=scenes.TARGET_STEP_FROUDE, scheduler=None, workers=None):
     """Generate (or finish) the shots; returns the list of shot summaries.
 
     ``frame_step`` (sqrt(d/g)) sets the training shots' fps; held-out shots keep the default.
+    ``scheduler`` (a Dask scheduler address) or ``workers`` (N > 0: a local Dask cluster of N worker
+    processes) bakes the shots as Dask tasks (``engine.farm.run_jobs``); neither: here, in turn.
     """
-    out = Path(out)
+    out = Path(out).resolve()
     out.mkdir(parents=True, exist_ok=True)
     if heldout:
         frame_step = scenes.TARGET_STEP_FROUDE
-    plan = shot_plan(heldout, count, frame_step)
     summaries = {}
     existing = out / "data_manifest.json"
     if existing.exists():
@@ -119,27 +168,14 @@ def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=prin
                 f"{wanted} fps; use another --out folder or the same --frame-step"
             )
     index, total = shard
-    for number, (name, make) in enumerate(plan):
-        if number % total != index:
-            continue
-        folder = out / name
-        scene_dict = make()
-        if duration is not None:
-            scene_dict["frame_end"] = scene_dict["frame_start"] + int(round(duration * scene_dict["fps"]))
-        status = _cache_state(folder / "cache")
-        if status == "complete":
-            summaries[name] = _summary(name, folder, scene_dict)
-            log(f"{name}: complete, skipped")
-            continue
-        started = time.monotonic()
-        if status == "partial" and (folder / "scene.json").exists():
-            log(f"{name}: resuming")
-            result = bake(folder / "scene.json", "sph", folder / "cache", resume=True, use_signals=False)
-        else:
-            save_scene(folder / "scene.json", scene_dict)
-            result = bake(folder / "scene.json", "sph", folder / "cache", overwrite=True, use_signals=False)
-        summaries[name] = _summary(name, folder, scene_dict)
-        log(f"{name}: {result.frames_written} frames, {result.particles} particles, {time.monotonic() - started:.1f} s")
+    jobs = [{"out": str(out), "name": name, "spec": spec, "frame_step": frame_step, "duration": duration}
+            for number, (name, spec) in enumerate(shot_plan(heldout, count, frame_step))
+            if number % total == index]  # fmt: skip
+    kind, seed = ("heldout", scenes.HELDOUT_SEED) if heldout else ("train", scenes.TRAIN_SEED)
+
+    def record(job, result):
+        summaries[job["name"]] = result["summary"]
+        log(result["message"])
         # Re-read so concurrent shards do not drop each other's entries.
         if existing.exists():
             try:
@@ -147,10 +183,17 @@ def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=prin
                     summaries.setdefault(shot["name"], shot)
             except (ValueError, KeyError):
                 pass
-        _write_manifest(out, "heldout" if heldout else "train", [summaries[k] for k in sorted(summaries)],
-                        scenes.HELDOUT_SEED if heldout else scenes.TRAIN_SEED, frame_step)
-    _write_manifest(out, "heldout" if heldout else "train", [summaries[k] for k in sorted(summaries)],
-                    scenes.HELDOUT_SEED if heldout else scenes.TRAIN_SEED, frame_step)
+        _write_manifest(out, kind, [summaries[k] for k in sorted(summaries)], seed, frame_step)
+
+    if scheduler is not None or workers:
+        from engine.farm import run_jobs
+        from training.generate import generate_shot as task  # by module name (not __main__) for the workers
+
+        run_jobs(task, jobs, out, scheduler=scheduler, workers=workers, on_done=record, log=log)
+    else:
+        for job in jobs:
+            record(job, generate_shot(job))
+    _write_manifest(out, kind, [summaries[k] for k in sorted(summaries)], seed, frame_step)
     return [summaries[k] for k in sorted(summaries)]
 
 
@@ -170,7 +213,17 @@ def main(argv=None):
                         "takes learned steps of one or more frames).")
     parser.add_argument("--duration", type=float, default=None,
                         help="Override the shot length in seconds (default 2 s training, 10 s held-out).")
+    where = parser.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=int, default=None, metavar="N",
+                       help="Bake the shots on a local Dask cluster of N worker processes (default: bake here, "
+                       "one shot after another).")
+    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="Bake the shots on the Dask scheduler at ADDRESS (e.g. tcp://farm:8786); --out must be "
+                       "on storage every worker sees at the same path, and the repository on their PYTHONPATH.")
     args = parser.parse_args(argv)
+    if args.workers is not None and args.workers < 0:
+        print(f"error: --workers {args.workers}: give a positive count, or leave it out to bake here", file=sys.stderr)
+        return 64
     try:
         index, total = (int(x) for x in args.shard.split("/"))
         if not 0 <= index < total:
@@ -182,7 +235,8 @@ def main(argv=None):
     started = time.monotonic()
     try:
         shots = generate(out, args.count, args.heldout, (index, total), args.duration,
-                         log=lambda m: print(m, file=sys.stderr, flush=True), frame_step=args.frame_step)
+                         log=lambda m: print(m, file=sys.stderr, flush=True), frame_step=args.frame_step,
+                         scheduler=args.scheduler, workers=args.workers)  # fmt: skip
     except SplashdraftError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return exc.exit_code
