@@ -46,6 +46,9 @@ def make_session(onnx_path, threads=2):
     options.inter_op_num_threads = 1
     options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
     options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    # Memory-pattern planning keeps one pre-planned block per input shape; off, the arena serves
+    # each tensor as it comes: same speed here, about half the peak (bench/profile_learned.py).
+    options.enable_mem_pattern = False
     options.log_severity_level = 3
     try:
         session = ort.InferenceSession(os.fspath(onnx_path), sess_options=options, providers=["CPUExecutionProvider"])

@@ -288,7 +288,10 @@ class LearnedSolver:
         only the nearer pairs.
         """
         d = units.spacing
-        relaxed = relax_density(positions / d, graph.neighbour_index, graph.neighbour_mask, boundary.positions / d,
+        index, mask = graph.neighbour_index, graph.neighbour_mask
+        if graph.truncated_rows:  # rows over the cap make the table one-sided; the relaxation needs both sides
+            index, mask = features.symmetric_table(index, mask)
+        relaxed = relax_density(positions / d, index, mask, boundary.positions / d,
                                 boundary.volumes / d**3, graph.boundary_index, graph.boundary_mask,
                                 iterations=self.relax_iterations, support=self.contract["density_support_spacings"],
                                 boundary_rows=graph.boundary_rows)
