@@ -5,8 +5,8 @@ Each learned step (dt within the model's trained range, see below):
 1. boundary particles of walls and colliders at t (``World.boundary_at``);
 2. features from positions, v_t, v_{t-1} and dt (``features.build_graph``),
    normalised with the contract's statistics;
-3. the ONNX core on onnxruntime (``runtime.CoreRunner``, tiled above
-   ``tile_particles``) predicts the non-gravity acceleration;
+3. the ONNX core on onnxruntime (``runtime.CoreRunner``, tiled on
+   large graphs, see ``runtime.MAX_CALL_SLOTS``) predicts the non-gravity acceleration;
 4. semi-implicit Euler (``features.integrate``);
 5. density relaxation (``relax.relax_density``): ``relax_iterations`` Jacobi
    iterations of a position-based density constraint on the step's own
@@ -96,7 +96,8 @@ class LearnedSolver:
         model: path of the .onnx model (its .json contract beside it); default
             ``models/preview-gn4.onnx``.
         threads: onnxruntime intra-op threads (2 measured best here).
-        tile_particles: run the core in tiles of this many receivers above it.
+        tile_particles: run the core in tiles of this many receivers (None, the default:
+            tiles sized by ``runtime.MAX_CALL_SLOTS``; 0: never tile).
         relax_iterations: density relaxation iterations after each learned step (0: none).
 
     Raises:
