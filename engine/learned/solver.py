@@ -76,7 +76,12 @@ def default_model_path():
 
 @dataclass(frozen=True)
 class LearnedStepStats:
-    """What one ``advance`` did; ``substeps`` is the number of learned steps."""
+    """What one ``advance`` did; ``substeps`` is the number of learned steps.
+
+    Wall seconds: ``neighbour_seconds`` the graph (neighbour search, features, normalisation),
+    ``network_seconds`` the core (onnxruntime and tiling), ``relax_seconds`` the density
+    relaxation, ``constraint_seconds`` the hard constraints and emission.
+    """
 
     substeps: int
     time_step: float
@@ -179,9 +184,11 @@ class LearnedSolver:
         arrays[PREVIOUS_VELOCITY] = state.velocities.copy()
         return dataclasses.replace(state, particle_arrays=arrays)
 
-    def step_acceleration(self, state, world, units, time_step):
+    def step_acceleration(self, state, world, units, time_step, timings=None):
         """World-space accelerations (N, 3) m/s^2 the model predicts for ``state`` and a step of
-        ``time_step`` s; also returns the Graph."""
+        ``time_step`` s; also returns the Graph. Adds the seconds spent on the graph
+        ("neighbours": search and features) and on the core ("network") to ``timings``."""
+        started = time.perf_counter()
         boundary = world.boundary_at(state.time)
         previous = state.particle_arrays.get(PREVIOUS_VELOCITY)
         if previous is None or previous.shape != state.velocities.shape:
@@ -203,7 +210,11 @@ class LearnedSolver:
             step_froude=time_step / units.time,
         )  # fmt: skip
         inputs = features.normalise(graph, self.stats, in_place=True)
+        built = time.perf_counter()
         output = self.runner.run(inputs, state.positions / units.spacing, 4.0)
+        if timings is not None:
+            timings["neighbours"] += built - started
+            timings["network"] += time.perf_counter() - built
         return features.acceleration_from_output(output, self.stats, units), graph
 
     def advance(self, state, world, t_end):
@@ -229,10 +240,8 @@ class LearnedSolver:
             t_next = t_end if k == count - 1 else t + dt
             before = state.positions
             if state.count:
-                started = time.perf_counter()
-                accelerations, graph = self.step_acceleration(state, world, units, t_next - t)
+                accelerations, graph = self.step_acceleration(state, world, units, t_next - t, timings)
                 truncated += graph.truncated_rows
-                timings["network"] += time.perf_counter() - started
                 positions, velocities = features.integrate(state.positions, state.velocities, accelerations, t_next - t)
                 if self.relax_iterations:
                     started = time.perf_counter()
