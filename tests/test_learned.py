@@ -545,8 +545,9 @@ def test_relax_iterations_must_be_a_whole_number():
 def test_halo_nodes_match_a_breadth_first_search_and_tiles_reproduce_the_whole_graph():
     """Tiling (engine.learned.runtime): a tile's node set is its receivers plus every node within
     `rounds` hops, checked against a plain breadth-first search over Python sets (brute-force
-    oracle); and the shipped model run in 300-receiver tiles equals the untiled run (the halo
-    argument in runtime's docstring; float32 rounding only, 1e-5 of the output scale)."""
+    oracle); and the shipped model run in 300-receiver tiles, and in the tiles sized by padded
+    slots, equals the untiled run (the halo argument in runtime's docstring; float32 rounding
+    only, 1e-5 of the output scale)."""
     from engine.learned.runtime import CoreRunner, halo_nodes
 
     rng = np.random.default_rng(11)
@@ -566,6 +567,11 @@ def test_halo_nodes_match_a_breadth_first_search_and_tiles_reproduce_the_whole_g
     whole = CoreRunner(onnx_path, contract["rounds"], tile_particles=0).run(inputs)
     tiled = CoreRunner(onnx_path, contract["rounds"], tile_particles=300, untiled_max=0).run(inputs, x / d, 4.0)
     np.testing.assert_allclose(tiled, whole, atol=1e-5 * np.abs(whole).max())
+    # The stepper's default sizes tiles by padded slots: here 1,728 particles in 5 tiles.
+    width = inputs["neighbour_index"].shape[1]
+    runner = CoreRunner(onnx_path, contract["rounds"], max_call_slots=1000 * width, tile_receiver_slots=400 * width)
+    assert runner.tile_size(len(x), width) == 346 and runner.tile_size(1000, width) == 1000
+    np.testing.assert_allclose(runner.run(inputs, x / d, 4.0), whole, atol=1e-5 * np.abs(whole).max())
 
 
 def test_a_viscosity_the_model_was_not_trained_on_is_a_named_warning_in_the_manifest(tmp_path):

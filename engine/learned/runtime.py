@@ -23,14 +23,17 @@ import numpy as np
 from ..errors import ModelError
 from .contract import INPUT_SPECS, OUTPUT_SPECS, RETRAIN_HINT
 
-#: Padded neighbour slots (particles x table width) the core runs on in one call. Graphs up to
-#: this size run whole (fastest: no halo work); larger ones are split into the fewest equal
-#: tiles of receivers whose own slots stay within it (each with its halo). The core's memory
-#: grows with the slots: at 2M (50k particles, 32 wide, untiled) a learned step peaked at
-#: 1.2 GB, and 100k particles in two tiles at 1.5 GB; with 12,500-receiver tiles (the rule
-#: before) the halos cost 1.4x the CPU time at 50k and 100k (bench/profile_learned.py, 2026-12-04).
+#: Padded neighbour slots (particles x table width) the core runs on in one call: graphs up to
+#: this size run whole (fastest: no halo work). At 2M (50k particles, 36 wide) a learned step
+#: peaked at 1.3 GB (bench/profile_learned.py, 2026-12-04).
 MAX_CALL_SLOTS = 2_000_000
-#: The stepper's default: tile by ``MAX_CALL_SLOTS`` (a number fixes the receivers per tile).
+#: Larger graphs are split into the fewest equal tiles whose receivers hold at most this many
+#: slots; each tile's call also holds its halo, about as many nodes again. At 100k particles
+#: (36 wide, 5 tiles) a step peaked at 1.56 GB; with 1M (4 tiles) 1.8 GB; with the
+#: 12,500-receiver tiles used before, the halos cost 1.4x the CPU time at 50k and 100k.
+TILE_RECEIVER_SLOTS = 750_000
+#: The stepper's default: tile by ``MAX_CALL_SLOTS`` and ``TILE_RECEIVER_SLOTS`` (a number fixes
+#: the receivers per tile).
 DEFAULT_TILE_PARTICLES = None
 #: With a fixed tile size, graphs up to this many particles still run whole.
 UNTILED_MAX_PARTICLES = 25000
@@ -175,16 +178,19 @@ class CoreRunner:
             tiles by ``max_call_slots``.
         untiled_max: with a fixed ``tile_particles``, graphs up to this many particles run whole.
         max_call_slots: with ``tile_particles`` None, the most padded neighbour slots
-            (particles x table width) of one untiled call, and of one tile's receivers.
+            (particles x table width) of one untiled call.
+        tile_receiver_slots: with ``tile_particles`` None, the most slots of one tile's receivers.
     """
 
     def __init__(self, onnx_path, rounds, threads=2, tile_particles=DEFAULT_TILE_PARTICLES,
-                 untiled_max=UNTILED_MAX_PARTICLES, max_call_slots=MAX_CALL_SLOTS):
+                 untiled_max=UNTILED_MAX_PARTICLES, max_call_slots=MAX_CALL_SLOTS,
+                 tile_receiver_slots=TILE_RECEIVER_SLOTS):
         self.onnx_path = onnx_path
         self.rounds = int(rounds)
         self.tile_particles = None if tile_particles is None else int(tile_particles)
         self.untiled_max = max(int(untiled_max), self.tile_particles or 0)
         self.max_call_slots = int(max_call_slots)
+        self.tile_receiver_slots = int(tile_receiver_slots)
         self.session = make_session(onnx_path, threads)
 
     def warm_up(self, particles=2000, neighbours=30, boundary_neighbours=8, seed=0):
@@ -200,8 +206,11 @@ class CoreRunner:
         if self.tile_particles is not None:
             is_whole = self.tile_particles <= 0 or particles <= self.untiled_max
             return particles if is_whole else self.tile_particles
-        tiles = -(-particles * max(width, 1) // self.max_call_slots)
-        return -(-particles // max(tiles, 1))
+        slots = particles * max(width, 1)
+        if slots <= self.max_call_slots:
+            return particles
+        tiles = -(-slots // self.tile_receiver_slots)
+        return -(-particles // tiles)
 
     def run(self, inputs, positions=None, cell=None):
         """Normalised core output (N, 3) float32 for normalised ``inputs``.

@@ -102,7 +102,7 @@ class LearnedSolver:
             ``models/preview-gn4.onnx``.
         threads: onnxruntime intra-op threads (2 measured best here).
         tile_particles: run the core in tiles of this many receivers (None, the default:
-            tiles sized by ``runtime.MAX_CALL_SLOTS``; 0: never tile).
+            tiles sized by ``runtime.MAX_CALL_SLOTS`` and ``TILE_RECEIVER_SLOTS``; 0: never tile).
         relax_iterations: density relaxation iterations after each learned step (0: none).
 
     Raises:
