@@ -94,7 +94,7 @@ def main(argv=None):
     parser.add_argument("--out", default=str(ROOT / "bench" / "results" / "same_output"),
                         help="Folder for the rollouts and the JSON (default bench/results/same_output).")
     args = parser.parse_args(argv)
-    out = Path(args.out)
+    out = Path(args.out).resolve()
     out.mkdir(parents=True, exist_ok=True)
     old = Path(args.old).resolve()
     runs = {name: np.load(rollout(checkout, args.frames, args.preset, nudge, out / f"{name}.npz"), allow_pickle=False)
