@@ -317,21 +317,20 @@ def test_bad_normalisation_and_invalid_json_are_model_errors(tmp_path):
 # ---------------------------------------------------------------- short rollout of the shipped model
 
 
+def golden_script():
+    """tests/data/make_learned_golden.py as a module (its scene and rollout)."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("make_learned_golden", ROOT / "tests" / "data" / "make_learned_golden.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
 def make_small_scene(folder, d=0.025, frame_end=13):
-    from engine import mesh_io
     from engine.scene import save_scene
 
-    mesh = lambda vt: {"vertices": vt[0], "triangles": vt[1]}  # noqa: E731
-    scene = {
-        "format": "splashdraft-scene", "version": 1, "name": "learned_rollout_test", "fps": 24,
-        "frame_start": 1, "frame_end": frame_end, "particle_spacing": d,
-        "bounds": {"min": [-0.5 * d] * 3, "max": [15.5 * d, 9.5 * d, 19.5 * d]},
-        "emitters": [{"name": "block", "type": "fill",
-                      "mesh": mesh(mesh_io.box_mesh(np.array([0.0, 0.0, 3.0]) * d, np.array([7.0, 9.0, 12.0]) * d))}],
-        "colliders": [{"name": "box", "mesh": mesh(mesh_io.box_mesh(np.array([10.0, 2.0, -0.5]) * d,
-                                                                     np.array([14.0, 8.0, 4.0]) * d))}],
-    }  # fmt: skip
-    return save_scene(folder / "scene.json", scene)
+    return save_scene(folder / "scene.json", golden_script().scene_dict(d, frame_end, "learned_rollout_test"))
 
 
 @pytest.fixture(scope="module")
@@ -646,11 +645,7 @@ def test_learned_steps_match_the_stored_output_of_the_code_before_the_speed_work
     (summation order, float32 relaxation sums), which a splash amplifies from frame to frame
     (3e-7 spacings after one frame, 6e-5 after six, measured 2026-12-04): so the bound is 1e-5
     spacings over the first three frames and 1e-3 over all six."""
-    import importlib.util
-
-    spec = importlib.util.spec_from_file_location("make_learned_golden", ROOT / "tests" / "data" / "make_learned_golden.py")
-    golden = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(golden)
+    golden = golden_script()
     stored = np.load(ROOT / "tests" / "data" / "learned_golden.npz", allow_pickle=False)
     positions, ids = golden.rollout()
     np.testing.assert_array_equal(ids, stored["ids"])

@@ -30,14 +30,14 @@ JITTER_SPACINGS = 0.15
 SEED = 20261204
 
 
-def scene_dict(d=0.025):
-    """A block of water beside a box collider in a walled tank (the rollout test's scene)."""
+def scene_dict(d=0.025, frame_end=1 + FRAMES, name="learned_golden"):
+    """A block of water beside a box collider in a walled tank (also the rollout test's scene)."""
     from engine import mesh_io
 
     mesh = lambda vt: {"vertices": vt[0], "triangles": vt[1]}  # noqa: E731
     return {
-        "format": "splashdraft-scene", "version": 1, "name": "learned_golden", "fps": 24,
-        "frame_start": 1, "frame_end": 1 + FRAMES, "particle_spacing": d,
+        "format": "splashdraft-scene", "version": 1, "name": name, "fps": 24,
+        "frame_start": 1, "frame_end": frame_end, "particle_spacing": d,
         "bounds": {"min": [-0.5 * d] * 3, "max": [15.5 * d, 9.5 * d, 19.5 * d]},
         "emitters": [{"name": "block", "type": "fill",
                       "mesh": mesh(mesh_io.box_mesh(np.array([0.0, 0.0, 3.0]) * d, np.array([7.0, 9.0, 12.0]) * d))}],
