@@ -652,3 +652,25 @@ def test_learned_steps_match_the_stored_output_of_the_code_before_the_speed_work
     gap = np.abs(positions - stored["positions"]).max(axis=(1, 2)) / golden.scene_dict()["particle_spacing"]
     assert gap[:3].max() <= 1e-5, gap
     assert gap.max() <= 1e-3, gap
+
+
+def test_a_crowded_scene_gives_the_same_capped_table_from_nearest_neighbour_candidates():
+    """A collapsed cluster (hundreds of points within a spacing, far beyond a liquid's density)
+    must not make the pair list grow as the square of the crowding: the pairs then come from a
+    (cap + 1)-nearest query. The capped table must be the same as from every pair (brute-force
+    oracle: cdist, each row's nearest ``cap``)."""
+    rng = np.random.default_rng(33)
+    cluster = rng.normal(0, 0.3, (400, 3))
+    spread = rng.uniform(-4, 4, (300, 3))
+    points = np.concatenate([cluster, spread])
+    cap = 20
+    first, second = features.neighbour_pairs(points, 1.0, max_neighbours=cap)
+    every = features.neighbour_pairs(points, 1.0)
+    assert len(first) < len(every[0]) / 2  # the candidate list is far shorter than every pair
+    index, mask, distances, _ = features.fluid_neighbour_table(points, 1.0, cap, (first, second))
+    brute = cdist(points, points)
+    np.fill_diagonal(brute, np.inf)
+    for i in range(len(points)):
+        count = int((brute[i] < 1.0).sum())
+        expected = np.argsort(brute[i])[: min(count, cap)]
+        assert set(index[i][mask[i] > 0]) == set(expected)

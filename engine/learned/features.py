@@ -106,24 +106,51 @@ class Units:
         return np.asarray(vectors) @ self.rotation
 
 
-def neighbour_pairs(positions, radius, tree=None):
+def neighbour_pairs(positions, radius, tree=None, max_neighbours=None):
     """Every pair of points closer than ``radius``, each once: (first, second) int64 arrays with first < second.
 
     Args:
         positions: (N, 3) float positions (any length unit).
         radius: search radius, same unit (pairs at exactly ``radius`` are excluded).
         tree: optional ``cKDTree`` of ``positions``.
+        max_neighbours: optional cap of the table the pairs are for (``fluid_neighbour_table``).
+            In a crowded scene (a cell of side ``radius`` holding more than
+            ``CROWDED_CELL_FACTOR * (cap + 1)`` points, far beyond any liquid's density) the pair
+            count grows as the square of the crowding, so the pairs then come from a
+            (cap + 1)-nearest query instead: each point's nearest ``cap`` neighbours, which is all
+            the capped table keeps (rows over the cap may then be under-counted as truncated).
 
     One ``cKDTree.query_pairs`` call: about three times cheaper than a k-nearest query of every
-    point (bench/profile_learned.py), and the pair list is what the density sum and the
-    relaxation need.
+    point (bench/profile_learned.py), and the pair list is what the neighbour table is packed from.
     """
     positions = np.asarray(positions, np.float64).reshape(-1, 3)
-    if len(positions) < 2:
+    n = len(positions)
+    if n < 2:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     tree = cKDTree(positions) if tree is None else tree
-    pairs = tree.query_pairs(radius * (1 - 1e-12), output_type="ndarray").astype(np.int64, copy=False)
+    bound = radius * (1 - 1e-12)
+    if max_neighbours is not None and _most_in_one_cell(positions, radius) > CROWDED_CELL_FACTOR * (max_neighbours + 1):
+        k = min(int(max_neighbours) + 1, n)
+        _, index = tree.query(positions, k=k, distance_upper_bound=bound)
+        index = np.asarray(index).reshape(n, -1)
+        rows = np.broadcast_to(np.arange(n)[:, None], index.shape)
+        real = (index < n) & (index != rows)
+        low, high = np.minimum(rows[real], index[real]), np.maximum(rows[real], index[real])
+        unique = np.unique(low * n + high)
+        return unique // n, unique % n
+    pairs = tree.query_pairs(bound, output_type="ndarray").astype(np.int64, copy=False)
     return pairs[:, 0], pairs[:, 1]
+
+
+#: See ``neighbour_pairs``: a cell of side R holds about 8 particles of a liquid at rest (2 d wide).
+CROWDED_CELL_FACTOR = 2
+
+
+def _most_in_one_cell(positions, size):
+    """The largest number of points in one cubic cell of side ``size`` (hashed cells: never fewer)."""
+    cells = np.floor(positions / size).astype(np.int64)
+    key = cells[:, 0] * 73856093 ^ cells[:, 1] * 19349663 ^ cells[:, 2] * 83492791
+    return int(np.unique(key, return_counts=True)[1].max())
 
 
 def fluid_neighbour_table(positions, radius, max_neighbours=48, pairs=None):
@@ -143,7 +170,7 @@ def fluid_neighbour_table(positions, radius, max_neighbours=48, pairs=None):
         row over the cap the table is symmetric: j is in row i exactly when i is in row j.
     """
     positions = np.asarray(positions, np.float64).reshape(-1, 3)
-    first, second = neighbour_pairs(positions, radius) if pairs is None else pairs
+    first, second = neighbour_pairs(positions, radius, max_neighbours=max_neighbours) if pairs is None else pairs
     offsets = positions[second] - positions[first]
     distance = np.sqrt(np.einsum("pc,pc->p", offsets, offsets))
     return pair_table(first, second, len(positions), distance, max_neighbours)
@@ -380,7 +407,7 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
     radius = float(radius_spacings)
     search = max(radius, float(density_support_spacings))
     tree = cKDTree(x) if n else None
-    pairs = neighbour_pairs(x, search, tree)
+    pairs = neighbour_pairs(x, search, tree, max_neighbours)
     index, mask, distances, truncated = fluid_neighbour_table(x, search, max_neighbours, pairs)
     if boundary is not None and len(boundary.positions):
         bx = units.to_model_vectors(np.asarray(boundary.positions, np.float64)) / d
