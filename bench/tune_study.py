@@ -88,7 +88,7 @@ def main(argv=None):
     args = parser.parse_args(argv)
 
     from engine.learned import contract as contract_module
-    from engine.learned.solver import default_model_path
+    from engine.learned.contract import default_model_path
     from training.train import _normalised_sample
     from training.tune import TUNE_DEFAULTS, _evaluate, load_bakes, split_frames, tune
 

@@ -1,19 +1,13 @@
-"""Shared test set-up.
-
-Tests never read or write the developer's per-machine calibration (engine.calibration): each test
-gets its own empty calibration path, so a bake in one test (the add-on records a calibration after
-a bake) cannot change another test's estimate; a test that wants a calibration writes its own.
-(The engine is imported as installed, or from the checkout through pytest.ini's ``pythonpath``.)
-"""
-
-import os
-import tempfile
+"""Shared test set-up. (The engine is imported as installed, or from the checkout through
+pytest.ini's ``pythonpath``.)"""
 
 import pytest
 
-os.environ["SPLASHDRAFT_CALIBRATION"] = os.path.join(tempfile.mkdtemp(prefix="splashdraft_test_"), "none.json")
-
 
 @pytest.fixture(autouse=True)
-def _own_calibration(tmp_path_factory, monkeypatch):
-    monkeypatch.setenv("SPLASHDRAFT_CALIBRATION", str(tmp_path_factory.mktemp("calibration") / "none.json"))
+def own_calibration(tmp_path_factory, monkeypatch):
+    """Each test starts with no per-machine calibration (engine.calibration) and never touches the
+    developer's: a bake that records its speed (the add-on does) writes into this test's folder,
+    so one test's bake cannot turn another test's estimate from rough into calibrated."""
+    folder = tmp_path_factory.mktemp("calibration")  # not the test's own tmp_path, which some tests list
+    monkeypatch.setenv("SPLASHDRAFT_CALIBRATION", str(folder / "calibration.json"))

@@ -318,21 +318,20 @@ def test_bad_normalisation_and_invalid_json_are_model_errors(tmp_path):
 # ---------------------------------------------------------------- short rollout of the shipped model
 
 
+def golden_script():
+    """tests/data/make_learned_golden.py as a module (its scene and rollout)."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("make_learned_golden", ROOT / "tests" / "data" / "make_learned_golden.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
 def make_small_scene(folder, d=0.025, frame_end=13):
-    from engine import mesh_io
     from engine.scene import save_scene
 
-    mesh = lambda vt: {"vertices": vt[0], "triangles": vt[1]}  # noqa: E731
-    scene = {
-        "format": "splashdraft-scene", "version": 1, "name": "learned_rollout_test", "fps": 24,
-        "frame_start": 1, "frame_end": frame_end, "particle_spacing": d,
-        "bounds": {"min": [-0.5 * d] * 3, "max": [15.5 * d, 9.5 * d, 19.5 * d]},
-        "emitters": [{"name": "block", "type": "fill",
-                      "mesh": mesh(mesh_io.box_mesh(np.array([0.0, 0.0, 3.0]) * d, np.array([7.0, 9.0, 12.0]) * d))}],
-        "colliders": [{"name": "box", "mesh": mesh(mesh_io.box_mesh(np.array([10.0, 2.0, -0.5]) * d,
-                                                                     np.array([14.0, 8.0, 4.0]) * d))}],
-    }  # fmt: skip
-    return save_scene(folder / "scene.json", scene)
+    return save_scene(folder / "scene.json", golden_script().scene_dict(d, frame_end, "learned_rollout_test"))
 
 
 @pytest.fixture(scope="module")
@@ -494,8 +493,7 @@ def test_relaxation_kernel_matches_the_float64_kernel_inside_and_beyond_the_supp
     from engine.learned.relax import _kernel_terms32
 
     r = np.linspace(0.0, 3.0, 601)
-    offsets = np.column_stack([r, np.zeros_like(r), np.zeros_like(r)]).astype(np.float32)
-    w, f, r2 = _kernel_terms32(offsets, 2.0)
+    w, f = _kernel_terms32((r * r).astype(np.float32), 2.0)
     w64, f64 = kernel_terms(r, 2.0)
     np.testing.assert_allclose(w, w64, atol=1e-6 * w64.max())
     np.testing.assert_allclose(f, f64, atol=1e-6 * np.abs(f64).max())
@@ -547,8 +545,9 @@ def test_relax_iterations_must_be_a_whole_number():
 def test_halo_nodes_match_a_breadth_first_search_and_tiles_reproduce_the_whole_graph():
     """Tiling (engine.learned.runtime): a tile's node set is its receivers plus every node within
     `rounds` hops, checked against a plain breadth-first search over Python sets (brute-force
-    oracle); and the shipped model run in 300-receiver tiles equals the untiled run (the halo
-    argument in runtime's docstring; float32 rounding only, 1e-5 of the output scale)."""
+    oracle); and the shipped model run in 300-receiver tiles, and in the tiles sized by padded
+    slots, equals the untiled run (the halo argument in runtime's docstring; float32 rounding
+    only, 1e-5 of the output scale)."""
     from engine.learned.runtime import CoreRunner, halo_nodes
 
     rng = np.random.default_rng(11)
@@ -568,6 +567,11 @@ def test_halo_nodes_match_a_breadth_first_search_and_tiles_reproduce_the_whole_g
     whole = CoreRunner(onnx_path, contract["rounds"], tile_particles=0).run(inputs)
     tiled = CoreRunner(onnx_path, contract["rounds"], tile_particles=300, untiled_max=0).run(inputs, x / d, 4.0)
     np.testing.assert_allclose(tiled, whole, atol=1e-5 * np.abs(whole).max())
+    # The stepper's default sizes tiles by padded slots: here 1,728 particles in 5 tiles.
+    width = inputs["neighbour_index"].shape[1]
+    runner = CoreRunner(onnx_path, contract["rounds"], max_call_slots=1000 * width, tile_receiver_slots=400 * width)
+    assert runner.tile_size(len(x), width) == 346 and runner.tile_size(1000, width) == 1000
+    np.testing.assert_allclose(runner.run(inputs, x / d, 4.0), whole, atol=1e-5 * np.abs(whole).max())
 
 
 def test_a_viscosity_the_model_was_not_trained_on_is_a_named_warning_in_the_manifest(tmp_path):
@@ -659,3 +663,85 @@ def test_raising_viscosity_slows_the_preview_as_it_slows_the_reference(tmp_path)
     preview = energies["learned", 1.0] - energies["learned", 0.02]
     assert reference < 0.0, energies
     assert preview < 0.0 and abs(preview) >= 0.5 * abs(reference), energies
+
+
+def test_capped_rows_keep_their_nearest_and_the_symmetric_table_holds_each_kept_pair_in_both_rows():
+    """Oracle: brute-force distances (cdist). A row with more neighbours than the cap keeps exactly
+    its ``max_neighbours`` nearest, and the count of such rows is reported; ``symmetric_table``
+    holds every pair (i, j), j > i, of row i in both rows i and j, and nothing else."""
+    rng = np.random.default_rng(31)
+    points = rng.uniform(0, 3, (200, 3))
+    cap = 12
+    index, mask, distances, truncated = features.fluid_neighbour_table(points, 1.0, max_neighbours=cap)
+    brute = cdist(points, points)
+    np.fill_diagonal(brute, np.inf)
+    counts = (brute < 1.0).sum(axis=1)
+    assert truncated == np.count_nonzero(counts > cap) > 0
+    for i in range(len(points)):
+        expected = np.argsort(brute[i])[: min(counts[i], cap)]
+        assert set(index[i][mask[i] > 0]) == set(expected)
+        np.testing.assert_allclose(np.sort(distances[i][mask[i] > 0]), np.sort(brute[i][expected]), atol=1e-12)
+    kept = {(i, int(j)) for i in range(len(points)) for j in index[i][mask[i] > 0] if j > i}
+    sym_index, sym_mask = features.symmetric_table(index, mask)
+    both = {(i, int(j)) for i in range(len(points)) for j in sym_index[i][sym_mask[i] > 0]}
+    assert both == kept | {(j, i) for i, j in kept}
+    assert (sym_index[sym_mask == 0] == np.broadcast_to(np.arange(len(points))[:, None], sym_index.shape)[sym_mask == 0]).all()
+
+
+def test_boundary_rows_keep_the_nearest_boundary_particles_nearest_first():
+    """Oracle: cdist. With a cap below some rows' counts, each listed particle keeps its
+    ``max_neighbours`` nearest boundary particles in order of distance; particles with none
+    are not listed."""
+    rng = np.random.default_rng(32)
+    fluid = rng.uniform(0, 3, (150, 3))
+    wall = rng.uniform(0, 3, (120, 3))
+    cap = 4
+    rows, index, mask, distances = features.boundary_neighbour_rows(fluid, wall, 0.8, max_neighbours=cap)
+    brute = cdist(fluid, wall)
+    counts = (brute < 0.8).sum(axis=1)
+    np.testing.assert_array_equal(rows, np.flatnonzero(counts))
+    assert (counts > cap).any()
+    for slot, i in enumerate(rows):
+        expected = np.argsort(brute[i])[: min(counts[i], cap)]
+        real = mask[slot] > 0
+        np.testing.assert_array_equal(index[slot][real], expected)
+        np.testing.assert_allclose(distances[slot][real], brute[i][expected], atol=1e-12)
+
+
+def test_learned_steps_match_the_stored_output_of_the_code_before_the_speed_work():
+    """The speed work (pair-list neighbour search, row-sum relaxation, tiling by slots) must not
+    change what the preview does. tests/data/learned_golden.npz holds 6 frames of the shipped
+    model from a jittered block beside a box, made by tests/data/make_learned_golden.py with
+    commit 80d606c (the code before that work). The new code differs only in float rounding
+    (summation order, float32 relaxation sums), which a splash amplifies from frame to frame
+    (3e-7 spacings after one frame, 6e-5 after six, measured 2026-12-04): so the bound is 1e-5
+    spacings over the first three frames and 1e-3 over all six."""
+    golden = golden_script()
+    stored = np.load(ROOT / "tests" / "data" / "learned_golden.npz", allow_pickle=False)
+    positions, ids = golden.rollout()
+    np.testing.assert_array_equal(ids, stored["ids"])
+    gap = np.abs(positions - stored["positions"]).max(axis=(1, 2)) / golden.scene_dict()["particle_spacing"]
+    assert gap[:3].max() <= 1e-5, gap
+    assert gap.max() <= 1e-3, gap
+
+
+def test_a_crowded_scene_gives_the_same_capped_table_from_nearest_neighbour_candidates():
+    """A collapsed cluster (hundreds of points within a spacing, far beyond a liquid's density)
+    must not make the pair list grow as the square of the crowding: the pairs then come from a
+    (cap + 1)-nearest query. The capped table must be the same as from every pair (brute-force
+    oracle: cdist, each row's nearest ``cap``)."""
+    rng = np.random.default_rng(33)
+    cluster = rng.normal(0, 0.3, (400, 3))
+    spread = rng.uniform(-4, 4, (300, 3))
+    points = np.concatenate([cluster, spread])
+    cap = 20
+    first, second = features.neighbour_pairs(points, 1.0, max_neighbours=cap)
+    every = features.neighbour_pairs(points, 1.0)
+    assert len(first) < len(every[0]) / 2  # the candidate list is far shorter than every pair
+    index, mask, distances, _ = features.fluid_neighbour_table(points, 1.0, cap, (first, second))
+    brute = cdist(points, points)
+    np.fill_diagonal(brute, np.inf)
+    for i in range(len(points)):
+        count = int((brute[i] < 1.0).sum())
+        expected = np.argsort(brute[i])[: min(count, cap)]
+        assert set(index[i][mask[i] > 0]) == set(expected)

@@ -22,8 +22,9 @@ Boundary particles do not move and carry no lambda of their own; the fluid
 particle takes the whole correction against them (from memory: the usual
 Akinci-style coupling in position-based solvers).
 
-The neighbour table is found once and reused by every iteration, as in
-Macklin & Mueller's Algorithm 1; distances are recomputed each iteration.
+The neighbour table is found once (the learned step's own) and reused by every
+iteration, as in Macklin & Mueller's Algorithm 1; distances are recomputed each
+iteration.
 """
 
 import numpy as np
@@ -43,7 +44,9 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
 
     Args:
         positions: (N, 3) float fluid positions in spacings d.
-        neighbour_index: (N, K) int fluid neighbours (padding entries point at the particle itself).
+        neighbour_index: (N, K) int fluid neighbours, a symmetric table: j is in row i exactly
+            when i is in row j (``features.fluid_neighbour_table`` with no row over its cap, or
+            ``features.symmetric_table``); padding entries point at the particle itself.
         neighbour_mask: (N, K) float 1 for a real neighbour, 0 for padding.
         boundary_positions: optional (B, 3) float boundary particle positions in d.
         boundary_volumes: (B,) V_b / d^3.
@@ -63,16 +66,13 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
     n = len(x)
     if n == 0 or iterations <= 0:
         return x
-    # Each table pair once (i < j) as flat lists: padding costs nothing, and every pair term
-    # is evaluated once and added to both ends (the pair terms are symmetric in W, f and r and
-    # antisymmetric in x_i - x_j). A pair missing from one row because that row hit the table's
-    # cap is still used when the other row holds it with i < j. Pair arithmetic runs in
+    # Every pair term is evaluated from both of its rows on the dense table, so each sum over
+    # neighbours is a row sum (no scatter); the terms are symmetric in W, f and r and
+    # antisymmetric in x_i - x_j, so both rows see the same value. Pair arithmetic runs in
     # float32 about the centre (offsets good to ~1e-7 of the scene size, far below the
-    # corrections); positions and sums stay float64.
+    # corrections); positions stay float64.
     index = np.asarray(neighbour_index)
-    real = (np.asarray(neighbour_mask) > 0) & (index > np.arange(n)[:, None])
-    rows = np.broadcast_to(np.arange(n)[:, None], real.shape)[real]
-    cols = index[real]
+    mask = np.asarray(neighbour_mask, np.float32)
     centre = x.mean(axis=0)
     use_boundary = boundary_positions is not None and np.size(boundary_positions) > 0
     if use_boundary:
@@ -84,55 +84,68 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
         bvol = np.asarray(boundary_volumes, np.float64)[bcols].astype(np.float32)
     w0 = float(kernel(0.0, support))
 
-    def pair_sum(values):
-        """sum_j v_ij at each i for a symmetric pair quantity."""
-        return np.bincount(rows, values, minlength=n) + np.bincount(cols, values, minlength=n)
-
-    def pair_sum3(scale, offsets):
-        """sum_j s_ij (x_i - x_j) at each i, s symmetric (offsets are x_i - x_j for i < j)."""
-        out = np.empty((n, 3))
-        for c in range(3):
-            values = scale * offsets[:, c]
-            out[:, c] = np.bincount(rows, values, minlength=n) - np.bincount(cols, values, minlength=n)
-        return out
+    def row_sums(weights, columns):
+        """(N, 3) float64: sum over each row of weights * columns[c], for c = 0, 1, 2."""
+        return np.stack([np.einsum("nk,nk->n", weights, column) for column in columns], axis=1).astype(np.float64)
 
     def boundary_sum3(scale, offsets):
         return np.stack([np.bincount(brows, scale * offsets[:, c], minlength=n) for c in range(3)], axis=1)
 
     for _ in range(int(iterations)):
         x32 = (x - centre).astype(np.float32)
-        offsets = x32[rows] - x32[cols]  # x_i - x_j, (P, 3)
-        w, f, r2 = _kernel_terms32(offsets, support)
-        ratio = w0 + pair_sum(w)
-        grad_self = pair_sum3(f, offsets)
-        grad_others = pair_sum(f * f * r2)  # sum_j |grad_j C_i|^2
+        offsets = [column[:, None] - np.take(column, index) for column in x32.T.copy()]  # x_i - x_j, 3 x (N, K)
+        r2 = offsets[0] * offsets[0]
+        r2 += offsets[1] * offsets[1]
+        r2 += offsets[2] * offsets[2]
+        w, f = _kernel_terms32(r2, support)
+        # Padding entries (j = i) have zero offsets, so they add nothing to the gradient sums;
+        # only the density sum needs the mask.
+        ratio = w0 + np.einsum("nk,nk->n", w, mask).astype(np.float64)
+        grad_self = row_sums(f, offsets)
+        grad_others = np.einsum("nk,nk->n", f * f, r2).astype(np.float64)  # sum_j |grad_j C_i|^2
         if use_boundary:
             boffsets = x32[brows] - bpos
-            wb, fb, _ = _kernel_terms32(boffsets, support)
+            wb, fb = _kernel_terms32(np.einsum("pc,pc->p", boffsets, boffsets), support)
             ratio += np.bincount(brows, wb * bvol, minlength=n)
             fb *= bvol
             grad_self += boundary_sum3(fb, boffsets)
         constraint = np.maximum(ratio - 1.0, 0.0)
         lam = (-constraint / (grad_others + np.einsum("nc,nc->n", grad_self, grad_self) + epsilon)).astype(np.float32)
-        step = pair_sum3((lam[rows] + lam[cols]) * f, offsets)
+        weights = np.take(lam, index)
+        weights += lam[:, None]
+        weights *= f
+        step = row_sums(weights, offsets)  # sum_j (lambda_i + lambda_j) grad_i W_ij
         if use_boundary:
             step += boundary_sum3(lam[brows] * fb, boffsets)
         x += step
     return x
 
 
-def _kernel_terms32(offsets, support):
-    """W, (dW/dr)/r and r^2 of the cubic spline (engine.kernels.kernel_terms) in float32.
+def _kernel_terms32(r2, support):
+    """W and (dW/dr)/r of the cubic spline (engine.kernels.kernel_terms) in float32, for squared distances.
 
-    ``offsets`` (P, 3) float32. Pairs that moved apart beyond the support since the table was
-    found get W = 0 and no gradient; r = 0 takes the inner branch (finite, zero gradient).
+    ``r2`` float32 in d^2. Written as W = sigma (2 a^3 - 8 b^3) with a = max(1 - q, 0) and
+    b = max(1/2 - q, 0), q = r / H (the same piecewise cubic as engine.kernels, without a
+    branch), and (dW/dr)/r = sigma / H^2 (-6 a^2 / max(q, 1/2) - 12 q b), which is
+    6 (3 q - 2) inside q <= 1/2 and -6 (1 - q)^2 / q outside, as there. Pairs beyond the
+    support get W = 0 and no gradient; r = 0 takes the inner branch (finite).
     """
-    r2 = np.einsum("pc,pc->p", offsets, offsets)
-    q = np.sqrt(r2) * np.float32(1.0 / support)
+    q = np.sqrt(r2)
+    q *= np.float32(1.0 / support)
+    a = np.float32(1.0) - q
+    np.maximum(a, np.float32(0.0), out=a)
+    b = np.float32(0.5) - q
+    np.maximum(b, np.float32(0.0), out=b)
+    a2, b2 = a * a, b * b
     sigma = np.float32(8.0 / (np.pi * support**3))
-    inner = q <= 0.5
-    one_minus = np.maximum(np.float32(1.0) - q, np.float32(0.0))
-    w = np.where(inner, 6.0 * (q - 1.0) * q * q + 1.0, 2.0 * one_minus**3).astype(np.float32) * sigma
-    scale = sigma / np.float32(support**2)
-    f = np.where(inner, 6.0 * (3.0 * q - 2.0), -6.0 * one_minus * one_minus / np.maximum(q, np.float32(0.5)))
-    return w, f.astype(np.float32) * scale, r2
+    w = a2 * a
+    w *= np.float32(2.0) * sigma
+    w -= (np.float32(8.0) * sigma) * (b2 * b)
+    f = q * b
+    f *= np.float32(-12.0)
+    np.maximum(q, np.float32(0.5), out=q)
+    a2 *= np.float32(6.0)
+    a2 /= q
+    f -= a2
+    f *= sigma / np.float32(support**2)
+    return w, f

@@ -1,7 +1,8 @@
 """The learned core on onnxruntime (CPU): session set-up, warm-up and tiling.
 
 Session options follow the measurements in shared/docs/learned-surrogate.md:
-2 intra-op threads, graph optimisation level ALL, the CPU memory arena on,
+2 intra-op threads, graph optimisation level ALL, the CPU memory arena on
+(memory-pattern planning off: half the peak at the same speed),
 sequential execution, and one or two warm-up calls before use (the first
 calls are slow).
 
@@ -22,12 +23,20 @@ import numpy as np
 from ..errors import ModelError
 from .contract import INPUT_SPECS, OUTPUT_SPECS, RETRAIN_HINT
 
-#: Up to this many particles the core runs on the whole graph (fastest: no halo work).
+#: Padded neighbour slots (particles x table width) the core runs on in one call: graphs up to
+#: this size run whole (fastest: no halo work). At 2M (50k particles, 36 wide) a learned step
+#: peaked at 1.3 GB (bench/profile_learned.py, 2026-12-04).
+MAX_CALL_SLOTS = 2_000_000
+#: Larger graphs are split into the fewest equal tiles whose receivers hold at most this many
+#: slots; each tile's call also holds its halo, about as many nodes again. At 100k particles
+#: (36 wide, 5 tiles) a step peaked at 1.56 GB; with 1M (4 tiles) 1.8 GB; with the
+#: 12,500-receiver tiles used before, the halos cost 1.4x the CPU time at 50k and 100k.
+TILE_RECEIVER_SLOTS = 750_000
+#: The stepper's default: tile by ``MAX_CALL_SLOTS`` and ``TILE_RECEIVER_SLOTS`` (a number fixes
+#: the receivers per tile).
+DEFAULT_TILE_PARTICLES = None
+#: With a fixed tile size, graphs up to this many particles still run whole.
 UNTILED_MAX_PARTICLES = 25000
-#: Receivers per tile above that. Smaller tiles cost more halo work but bound memory: at 100k
-#: particles, 12,500-receiver tiles peaked at 1.6 GB against 2.2 GB with 25,000 at the same
-#: speed (bench/bench_learned.py, 2026-12-02).
-DEFAULT_TILE_PARTICLES = 12500
 
 
 def make_session(onnx_path, threads=2):
@@ -46,6 +55,9 @@ def make_session(onnx_path, threads=2):
     options.inter_op_num_threads = 1
     options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
     options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    # Memory-pattern planning keeps one pre-planned block per input shape; off, the arena serves
+    # each tensor as it comes: same speed here, about half the peak (bench/profile_learned.py).
+    options.enable_mem_pattern = False
     options.log_severity_level = 3
     try:
         session = ort.InferenceSession(os.fspath(onnx_path), sess_options=options, providers=["CPUExecutionProvider"])
@@ -162,16 +174,23 @@ class CoreRunner:
         onnx_path: the model file (already checked against its contract).
         rounds: message-passing rounds of the model (from the contract).
         threads: onnxruntime intra-op threads.
-        tile_particles: receivers per tile; 0 disables tiling.
-        untiled_max: graphs up to this many particles run whole.
+        tile_particles: receivers per tile; 0 disables tiling; None (the default) sizes the
+            tiles by ``max_call_slots``.
+        untiled_max: with a fixed ``tile_particles``, graphs up to this many particles run whole.
+        max_call_slots: with ``tile_particles`` None, the most padded neighbour slots
+            (particles x table width) of one untiled call.
+        tile_receiver_slots: with ``tile_particles`` None, the most slots of one tile's receivers.
     """
 
     def __init__(self, onnx_path, rounds, threads=2, tile_particles=DEFAULT_TILE_PARTICLES,
-                 untiled_max=UNTILED_MAX_PARTICLES):
+                 untiled_max=UNTILED_MAX_PARTICLES, max_call_slots=MAX_CALL_SLOTS,
+                 tile_receiver_slots=TILE_RECEIVER_SLOTS):
         self.onnx_path = onnx_path
         self.rounds = int(rounds)
-        self.tile_particles = int(tile_particles)
-        self.untiled_max = max(int(untiled_max), self.tile_particles)
+        self.tile_particles = None if tile_particles is None else int(tile_particles)
+        self.untiled_max = max(int(untiled_max), self.tile_particles or 0)
+        self.max_call_slots = int(max_call_slots)
+        self.tile_receiver_slots = int(tile_receiver_slots)
         self.session = make_session(onnx_path, threads)
 
     def warm_up(self, particles=2000, neighbours=30, boundary_neighbours=8, seed=0):
@@ -182,6 +201,17 @@ class CoreRunner:
     def _run(self, inputs):
         return self.session.run(None, inputs)[0]
 
+    def tile_size(self, particles, width):
+        """Receivers per call for a graph of ``particles`` rows ``width`` wide (``particles``: untiled)."""
+        if self.tile_particles is not None:
+            is_whole = self.tile_particles <= 0 or particles <= self.untiled_max
+            return particles if is_whole else self.tile_particles
+        slots = particles * max(width, 1)
+        if slots <= self.max_call_slots:
+            return particles
+        tiles = -(-slots // self.tile_receiver_slots)
+        return -(-particles // tiles)
+
     def run(self, inputs, positions=None, cell=None):
         """Normalised core output (N, 3) float32 for normalised ``inputs``.
 
@@ -191,12 +221,13 @@ class CoreRunner:
         n = len(inputs["node_features"])
         if n == 0:
             return np.zeros((0, 3), np.float32)
-        if self.tile_particles <= 0 or n <= self.untiled_max:
+        size = self.tile_size(n, inputs["neighbour_index"].shape[1])
+        if size >= n:
             return self._run(inputs)
         order = morton_order(positions, cell) if positions is not None else np.arange(n)
         out = np.empty((n, 3), np.float32)
-        for start in range(0, n, self.tile_particles):
-            receivers = order[start:start + self.tile_particles]
+        for start in range(0, n, size):
+            receivers = order[start:start + size]
             nodes = halo_nodes(receivers, inputs["neighbour_index"], self.rounds)
             out[receivers] = self._run(subgraph(inputs, nodes))[: len(receivers)]
         return out

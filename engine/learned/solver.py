@@ -5,8 +5,8 @@ Each learned step (dt within the model's trained range, see below):
 1. boundary particles of walls and colliders at t (``World.boundary_at``);
 2. features from positions, v_t, v_{t-1} and dt (``features.build_graph``),
    normalised with the contract's statistics;
-3. the ONNX core on onnxruntime (``runtime.CoreRunner``, tiled above
-   ``tile_particles``) predicts the non-gravity acceleration;
+3. the ONNX core on onnxruntime (``runtime.CoreRunner``, tiled on
+   large graphs, see ``runtime.MAX_CALL_SLOTS``) predicts the non-gravity acceleration;
 4. semi-implicit Euler (``features.integrate``);
 5. density relaxation (``relax.relax_density``): ``relax_iterations`` Jacobi
    iterations of a position-based density constraint on the step's own
@@ -70,7 +70,12 @@ def step_plan(interval, step_max):
 
 @dataclass(frozen=True)
 class LearnedStepStats:
-    """What one ``advance`` did; ``substeps`` is the number of learned steps."""
+    """What one ``advance`` did; ``substeps`` is the number of learned steps.
+
+    Wall seconds: ``neighbour_seconds`` the graph (neighbour search, features, normalisation),
+    ``network_seconds`` the core (onnxruntime and tiling), ``relax_seconds`` the density
+    relaxation, ``constraint_seconds`` the hard constraints and emission.
+    """
 
     substeps: int
     time_step: float
@@ -90,7 +95,8 @@ class LearnedSolver:
         model: path of the .onnx model (its .json contract beside it); default
             ``models/preview-gn4.onnx``.
         threads: onnxruntime intra-op threads (2 measured best here).
-        tile_particles: run the core in tiles of this many receivers above it.
+        tile_particles: run the core in tiles of this many receivers (None, the default:
+            tiles sized by ``runtime.MAX_CALL_SLOTS`` and ``TILE_RECEIVER_SLOTS``; 0: never tile).
         relax_iterations: density relaxation iterations after each learned step (0: none).
 
     Raises:
@@ -180,9 +186,11 @@ class LearnedSolver:
         arrays[PREVIOUS_VELOCITY] = state.velocities.copy()
         return dataclasses.replace(state, particle_arrays=arrays)
 
-    def step_acceleration(self, state, world, units, time_step):
+    def step_acceleration(self, state, world, units, time_step, timings=None):
         """World-space accelerations (N, 3) m/s^2 the model predicts for ``state`` and a step of
-        ``time_step`` s; also returns the Graph."""
+        ``time_step`` s; also returns the Graph. Adds the seconds spent on the graph
+        ("neighbours": search and features) and on the core ("network") to ``timings``."""
+        started = time.perf_counter()
         boundary = world.boundary_at(state.time)
         previous = state.particle_arrays.get(PREVIOUS_VELOCITY)
         if previous is None or previous.shape != state.velocities.shape:
@@ -204,7 +212,11 @@ class LearnedSolver:
             step_froude=time_step / units.time,
         )  # fmt: skip
         inputs = features.normalise(graph, self.stats, in_place=True)
+        built = time.perf_counter()
         output = self.runner.run(inputs, state.positions / units.spacing, 4.0)
+        if timings is not None:
+            timings["neighbours"] += built - started
+            timings["network"] += time.perf_counter() - built
         return features.acceleration_from_output(output, self.stats, units), graph
 
     def advance(self, state, world, t_end):
@@ -230,10 +242,8 @@ class LearnedSolver:
             t_next = t_end if k == count - 1 else t + dt
             before = state.positions
             if state.count:
-                started = time.perf_counter()
-                accelerations, graph = self.step_acceleration(state, world, units, t_next - t)
+                accelerations, graph = self.step_acceleration(state, world, units, t_next - t, timings)
                 truncated += graph.truncated_rows
-                timings["network"] += time.perf_counter() - started
                 positions, velocities = features.integrate(state.positions, state.velocities, accelerations, t_next - t)
                 if self.relax_iterations:
                     started = time.perf_counter()
@@ -315,7 +325,10 @@ class LearnedSolver:
         only the nearer pairs.
         """
         d = units.spacing
-        relaxed = relax_density(positions / d, graph.neighbour_index, graph.neighbour_mask, boundary.positions / d,
+        index, mask = graph.neighbour_index, graph.neighbour_mask
+        if graph.truncated_rows:  # rows over the cap make the table one-sided; the relaxation needs both sides
+            index, mask = features.symmetric_table(index, mask)
+        relaxed = relax_density(positions / d, index, mask, boundary.positions / d,
                                 boundary.volumes / d**3, graph.boundary_index, graph.boundary_mask,
                                 iterations=self.relax_iterations, support=self.contract["density_support_spacings"],
                                 boundary_rows=graph.boundary_rows)
