@@ -17,18 +17,16 @@ as the diagonal. One substep, with one neighbour search:
    (an over-dense particle may not compress further: the divergence-free condition;
    an under-dense one, at a free surface or in spray, may fill up to rest density);
    warm-started from ``WARM_START_FACTOR`` of the previous substep's kappa
-   (``warm_start_kappa``), but only on particles that are still being compressed: a
-   carried-over push on a particle whose impact is over added kinetic energy that no
-   later iteration takes back (measured: without this gate the velocity solve raised the
-   total kinetic energy in some impact substeps, with it never);
+   (``warm_start_kappa``), but only on particles that are still being compressed (a
+   carried-over push on a particle whose impact is over is energy nothing takes back);
 4. drift solve: a position shift s (pseudo-velocity, m/s) with
    rho_i + dt (D rho / Dt)_i(v + s) <= rho0, so a particle that is denser than rho0 is
    moved back, and x(t + dt) = x(t) + dt (v + s) while v is kept. This is the split
    of velocity and position correction used for contacts in rigid-body engines (common
    practice, from memory): folding the density error into v, as the SCA listing does,
    turns every position error (a corner of a fill, a particle driven into a wall in one
-   step) into a velocity that nothing takes back, and the liquid gains energy (the
-   splash suite in bench/ measured a dam break at 1.5x the energy it started with).
+   step) into a velocity that nothing takes back, and the liquid gains energy
+   (DEVELOPERS.md, "Solver notes", has the measurements behind these choices).
 
 Both solves are the SCA paper's Jacobi iterations with compression-only increments
 (``_jacobi_solve``): kappa_i += alpha_i max(r_i, 0) / dt^2. The drift solve starts from
@@ -318,18 +316,7 @@ class PairOperators:
     (i, j) for each pair i < j, the full antisymmetric gradient operator is
     G_c = U_c - U_c^T, so each product is two sparse matvecs per axis.
 
-    Why this layout (measured back to back on 20k and 100k particle blocks):
-    scipy's CSR kernels cost about the same per stored entry and per input
-    column whatever the layout (one vector or a dense (N, 4) block), so the cost
-    of an iteration is set by the entry-columns visited, 12 P here (P pairs).
-    Writing m grad W_ij = F_ij (x_i - x_j) with a symmetric scalar F needs four
-    columns against F, 16 P entry-columns, and measured 17-37 % slower per
-    iteration. One interleaved (N, 3N) and one (3N, N) matrix stored both ways
-    (6 P entries, one product per operator) was 5-17 % faster per iteration,
-    but permuting the pairs into rows cost more each substep than it saved
-    (20k cube: 42-47k instead of 48-50k particle-substeps/s).
-    A Morton order of the particles measured the same as the lattice order of
-    the benchmark blocks (a random order was 1.2x slower at 20k, 1.6x at 100k).
+    Why this layout and not others (measured): DEVELOPERS.md, "Solver notes".
 
     Attributes:
         count: N fluid particles.
