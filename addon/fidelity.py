@@ -129,19 +129,15 @@ class SPLASHDRAFT_OT_compare(bpy.types.Operator):
         return {"FINISHED"}
 
 
-class SPLASHDRAFT_OT_stop_compare(bpy.types.Operator):
+class SPLASHDRAFT_OT_stop_compare(jobs.StopJob, bpy.types.Operator):
     """Stop the running measurement; nothing is stored"""
 
     bl_idname = "splashdraft.stop_compare"
     bl_label = "Stop measuring"
 
     @classmethod
-    def poll(cls, context):
-        return is_comparing()
-
-    def execute(self, context):
-        _state["job"].cancel()
-        return {"FINISHED"}
+    def running_job(cls):
+        return _state.get("job")
 
 
 class SPLASHDRAFT_PT_fidelity(bpy.types.Panel):

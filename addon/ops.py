@@ -338,20 +338,16 @@ def _ui_for(context, operator):
     return _BakeUI(context, _job_context["scene"], _job_context["shot"], _job_context["version"], operator.report)
 
 
-class SPLASHDRAFT_OT_stop_bake(bpy.types.Operator):
+class SPLASHDRAFT_OT_stop_bake(jobs.StopJob, bpy.types.Operator):
     """Stop the running bake after its current frame; finished frames are kept (press again to stop at once)"""
 
     bl_idname = "splashdraft.stop_bake"
     bl_label = "Stop bake"
+    stopping_message = "Stopping the bake after the current frame"
 
     @classmethod
-    def poll(cls, context):
-        return is_baking()
-
-    def execute(self, context):
-        _job.cancel()
-        self.report({"INFO"}, "Stopping the bake after the current frame")
-        return {"FINISHED"}
+    def running_job(cls):
+        return _job
 
 
 class SPLASHDRAFT_OT_refresh_versions(bpy.types.Operator):

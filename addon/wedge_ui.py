@@ -200,20 +200,16 @@ class SPLASHDRAFT_OT_wedge_start(bpy.types.Operator):
         return {"FINISHED"} if progress.state == "finished" else {"CANCELLED"}
 
 
-class SPLASHDRAFT_OT_wedge_stop(bpy.types.Operator):
+class SPLASHDRAFT_OT_wedge_stop(jobs.StopJob, bpy.types.Operator):
     """Stop the running wedge after each variant's current frame; finished frames are kept (again: at once)"""
 
     bl_idname = "splashdraft.wedge_stop"
     bl_label = "Stop wedge"
+    stopping_message = "Stopping the wedge after the current frames"
 
     @classmethod
-    def poll(cls, context):
-        return is_wedging()
-
-    def execute(self, context):
-        _job.cancel()
-        self.report({"INFO"}, "Stopping the wedge after the current frames")
-        return {"FINISHED"}
+    def running_job(cls):
+        return _job
 
 
 class SPLASHDRAFT_PT_wedge(bpy.types.Panel):
