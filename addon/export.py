@@ -14,9 +14,10 @@ from pathlib import Path
 import bpy
 import numpy as np
 
+from ..engine.boundary import FACE_NAMES
+from ..engine.scene import FORMAT, VERSION, Fluid
 from . import motion
 from .errors_ui import AddonError
-from .props import FACE_NAMES
 from .versions import SCENE_FILE, safe_name
 
 MESH_FOLDER = "meshes"
@@ -253,13 +254,13 @@ def build_scene(scene, input_dir):
 
     spacing = float(shot.particle_spacing) * scale
     data = {
-        "format": "splashdraft-scene", "version": 1,
+        "format": FORMAT, "version": VERSION,
         "name": safe_name(shot.shot_name or scene.name),
         "fps": shot_fps(scene), "frame_start": frame_start, "frame_end": frame_end,
         "particle_spacing": spacing,
         "seed": int(shot.seed),
         "gravity": [float(g) for g in shot.gravity],
-        "fluid": {"rest_density": 1000.0, "viscosity": float(shot.viscosity)},
+        "fluid": {"rest_density": Fluid.rest_density, "viscosity": float(shot.viscosity)},
         "bounds": bounds,
         "budget": {"max_particles": int(shot.max_particles)},
         "emitters": emitters,

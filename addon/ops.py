@@ -13,6 +13,7 @@ from pathlib import Path
 import bpy
 from bpy.props import BoolProperty, EnumProperty, StringProperty
 
+from ..engine.cache import MANIFEST_NAME
 from ..engine.errors import CacheError
 from . import display, export, jobs, paths
 from .errors_ui import AddonError
@@ -510,7 +511,7 @@ def copy_points(folder, target):
     target.mkdir(parents=True, exist_ok=True)
     for frame in reader.frames:
         shutil.copy2(reader.frame_path(frame), target / reader.frame_path(frame).name)
-    shutil.copy2(Path(folder) / "manifest.json", target / "manifest.json")
+    shutil.copy2(Path(folder) / MANIFEST_NAME, target / MANIFEST_NAME)
     return len(reader.frames)
 
 

@@ -14,9 +14,10 @@ import time
 import bpy
 from bpy.props import CollectionProperty, FloatProperty, IntProperty, PointerProperty, StringProperty
 
+from ..engine.wedge import WEDGE_MANIFEST
 from . import display, jobs, ops, paths, wedge_jobs
 from .errors_ui import AddonError
-from .versions import INPUT_FOLDER, WEDGE_MANIFEST, next_version_dir
+from .versions import INPUT_FOLDER, next_version_dir
 
 _job = None  # the running jobs.BakeJob of the wedge
 _run = {}  # scene name, wedge folder, progress (wedge_jobs.WedgeProgress), has_selected
