@@ -17,6 +17,7 @@ from bpy.props import CollectionProperty, FloatProperty, IntProperty, PointerPro
 from ..engine.wedge import WEDGE_MANIFEST
 from . import display, jobs, ops, paths, wedge_jobs
 from .errors_ui import AddonError
+from .ui import SidebarPanel
 from .versions import INPUT_FOLDER, next_version_dir
 
 _job = None  # the running jobs.BakeJob of the wedge
@@ -213,12 +214,9 @@ class SPLASHDRAFT_OT_wedge_stop(jobs.StopJob, bpy.types.Operator):
         return _job
 
 
-class SPLASHDRAFT_PT_wedge(bpy.types.Panel):
+class SPLASHDRAFT_PT_wedge(SidebarPanel, bpy.types.Panel):
     bl_label = "Wedge"
     bl_idname = "SPLASHDRAFT_PT_wedge"
-    bl_space_type = "VIEW_3D"
-    bl_region_type = "UI"
-    bl_category = "Splashdraft"
     bl_options = {"DEFAULT_CLOSED"}
 
     def draw(self, context):
