@@ -85,6 +85,8 @@ def _add_command(commands, name, summary, description):
 
 
 def build_parser():
+    from .farm import add_where_options
+
     parser = _Parser(
         prog="python -m engine",
         description="Splashdraft engine: bake liquid splash shots to per-frame PLY point caches, "
@@ -182,13 +184,12 @@ def build_parser():
     _add_model(wedge)
     wedge.add_argument("--frames", metavar="A:B", help="Bake frames A to B of each variant. Default: the whole shot.")
     wedge.add_argument("--out", required=True, help="The wedge folder (one cache folder per variant inside).")
-    where = wedge.add_mutually_exclusive_group()
-    where.add_argument("--workers", type=int, metavar="N",
-                       help="Worker processes of the local Dask cluster; 0 bakes the variants one after another "
-                       "in this process. Default: one per CPU core (at most one per variant).")  # fmt: skip
-    where.add_argument("--scheduler", metavar="ADDRESS",
-                       help="Send the variants to the Dask scheduler at ADDRESS (e.g. tcp://farm:8786); --out, "
-                       "the scene and its meshes must be on storage every worker sees at the same path.")  # fmt: skip
+    add_where_options(
+        wedge,
+        "Worker processes of the local Dask cluster; 0 bakes the variants one after another "
+        "in this process. Default: one per CPU core (at most one per variant).",
+        "Send the variants to the Dask scheduler at ADDRESS (e.g. tcp://farm:8786); --out, "
+        "the scene and its meshes must be on storage every worker sees at the same path.")
     wedge.add_argument("--sheet-frame", type=int, metavar="F",
                        help="The frame shown for each variant in the contact sheet. Default: the last frame.")
     wedge.add_argument("--json", action="store_true", help="Print the summary table as JSON on stdout.")
