@@ -377,6 +377,22 @@ class RecordingLayout:
         pass
 
 
+class LabelLayout(RecordingLayout):
+    """A RecordingLayout whose sub-layouts are itself and that keeps the text of every label in ``labels``."""
+
+    def __init__(self, log, labels):
+        super().__init__(log)
+        self.labels = labels
+
+    def _child(self, *args, **kwargs):
+        return self
+
+    row = column = box = split = grid_flow = _child
+
+    def label(self, text="", **kwargs):
+        self.labels.append(text)
+
+
 def child_panels():
     import bpy
 
@@ -419,18 +435,8 @@ def child_range_warning(tmp):
     for index, key in ((0, "labels_sph"), (1, "labels_learned")):
         shot.versions_index = index
         labels = []
-
-        class Recorder(RecordingLayout):
-            def _child(self, *args, **kwargs):
-                return self
-
-            row = column = box = split = grid_flow = _child
-
-            def label(self, text="", **kwargs):
-                labels.append(text)
-
         log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
-        ui.SPLASHDRAFT_PT_versions.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        ui.SPLASHDRAFT_PT_versions.draw(type("Self", (), {"layout": LabelLayout(log, labels)})(), bpy.context)
         out[key] = labels
     return out
 
@@ -988,15 +994,7 @@ def child_compare(tmp):
         labels = []
         opens.clear()
 
-        class Recorder(RecordingLayout):
-            def _child(self, *args, **kwargs):
-                return self
-
-            row = column = box = split = grid_flow = _child
-
-            def label(self, text="", **kwargs):
-                labels.append(text)
-
+        class Recorder(LabelLayout):
             def operator(self, idname, **kwargs):
                 properties = super().operator(idname, **kwargs)
                 if idname == "wm.path_open":
@@ -1004,7 +1002,7 @@ def child_compare(tmp):
                 return properties
 
         log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
-        fidelity.SPLASHDRAFT_PT_fidelity.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        fidelity.SPLASHDRAFT_PT_fidelity.draw(type("Self", (), {"layout": Recorder(log, labels)})(), bpy.context)
         assert not log["missing"], log
         return labels
 
