@@ -37,7 +37,7 @@ from pathlib import Path
 import bpy
 import numpy as np
 
-from ..engine.cache import FRAME_FILE_PATTERN, open_cache
+from ..engine.cache import FRAME_FILE_PATTERN, MANIFEST_NAME, open_cache
 from ..engine.errors import CacheError
 
 POINTS_GROUP = "Splashdraft points"
@@ -83,7 +83,7 @@ def reader_for(folder):
         CacheError: no readable cache there.
     """
     folder = str(folder)
-    manifest = Path(folder) / "manifest.json"
+    manifest = Path(folder) / MANIFEST_NAME
     try:
         mtime = manifest.stat().st_mtime_ns
     except OSError as exc:
@@ -191,7 +191,7 @@ def show_frame(scene, frame=None, force=False):
     frame = scene.frame_current if frame is None else int(frame)
     version = current_version(scene)
     folder = version.folder if version is not None else ""
-    manifest = Path(folder) / "manifest.json" if folder else None
+    manifest = Path(folder) / MANIFEST_NAME if folder else None
     try:
         mtime = manifest.stat().st_mtime_ns if manifest is not None else 0
     except OSError:

@@ -14,9 +14,10 @@ from pathlib import Path
 import bpy
 import numpy as np
 
+from ..engine.boundary import FACE_NAMES
+from ..engine.scene import FORMAT, VERSION, Fluid
 from . import motion
 from .errors_ui import AddonError
-from .props import FACE_NAMES
 from .versions import SCENE_FILE, safe_name
 
 MESH_FOLDER = "meshes"
@@ -138,7 +139,34 @@ def _unique_stem(name, used):
     return candidate
 
 
-def build_scene(scene, input_dir):
+def _checked_shot(scene, groups) -> tuple[int, int]:
+    """The shot's (first, last) frame, once it has liquid, exactly one bounds object and a frame range;
+    raises AddonError naming what is missing."""
+    if not groups["FILL"] and not groups["STREAM"]:
+        raise AddonError("the shot has no liquid: give at least one object the role Liquid fill or Liquid source")
+    if not groups["BOUNDS"]:
+        raise AddonError("the shot has no bounds: give one object (a box around the action) the role Shot bounds")
+    if len(groups["BOUNDS"]) > 1:
+        names = ", ".join(f'"{o.name}"' for o in groups["BOUNDS"])
+        raise AddonError(f"several objects have the role Shot bounds ({names}); keep it on one of them")
+    frame_start, frame_end = int(scene.frame_start), int(scene.frame_end)
+    if frame_end < frame_start:
+        raise AddonError(f"scene frame range {frame_start}..{frame_end} is empty; set End after Start")
+    return frame_start, frame_end
+
+
+def _box_bounds(box, entry, scale) -> dict:
+    """The scene file's "bounds": the world box of the bounds object at the first frame (metres) and its sides."""
+    world = motion.world_vertices(entry["local"][0], entry["matrices"][0]) * scale
+    low, high = world.min(axis=0), world.max(axis=0)
+    if np.any(high - low <= 0):
+        raise AddonError(f'shot bounds "{box.name}": its box is flat ({(high - low).round(4).tolist()} m); '
+                         "use an object with volume, e.g. a cube")
+    return {"min": low.tolist(), "max": high.tolist(),
+            "faces": {name: getattr(box.splashdraft, f"face_{name}") for name in FACE_NAMES}}
+
+
+def build_scene(scene, input_dir) -> tuple[Path, dict]:
     """Write the scene file and meshes of ``scene``'s shot into ``input_dir``.
 
     Args:
@@ -155,16 +183,7 @@ def build_scene(scene, input_dir):
     shot = scene.splashdraft
     scale = float(scene.unit_settings.scale_length) or 1.0
     groups = role_objects(scene)
-    if not groups["FILL"] and not groups["STREAM"]:
-        raise AddonError("the shot has no liquid: give at least one object the role Liquid fill or Liquid source")
-    if not groups["BOUNDS"]:
-        raise AddonError("the shot has no bounds: give one object (a box around the action) the role Shot bounds")
-    if len(groups["BOUNDS"]) > 1:
-        names = ", ".join(f'"{o.name}"' for o in groups["BOUNDS"])
-        raise AddonError(f"several objects have the role Shot bounds ({names}); keep it on one of them")
-    frame_start, frame_end = int(scene.frame_start), int(scene.frame_end)
-    if frame_end < frame_start:
-        raise AddonError(f"scene frame range {frame_start}..{frame_end} is empty; set End after Start")
+    frame_start, frame_end = _checked_shot(scene, groups)
     frames = list(range(frame_start, frame_end + 1))
 
     input_dir = Path(input_dir)
@@ -242,24 +261,17 @@ def build_scene(scene, input_dir):
         colliders.append(entry)
 
     box = groups["BOUNDS"][0]
-    entry = samples[box.name]
-    world = motion.world_vertices(entry["local"][0], entry["matrices"][0]) * scale
-    low, high = world.min(axis=0), world.max(axis=0)
-    if np.any(high - low <= 0):
-        raise AddonError(f'shot bounds "{box.name}": its box is flat ({(high - low).round(4).tolist()} m); '
-                         "use an object with volume, e.g. a cube")
-    bounds = {"min": low.tolist(), "max": high.tolist(),
-              "faces": {name: getattr(box.splashdraft, f"face_{name}") for name in FACE_NAMES}}
+    bounds = _box_bounds(box, samples[box.name], scale)
 
     spacing = float(shot.particle_spacing) * scale
     data = {
-        "format": "splashdraft-scene", "version": 1,
+        "format": FORMAT, "version": VERSION,
         "name": safe_name(shot.shot_name or scene.name),
         "fps": shot_fps(scene), "frame_start": frame_start, "frame_end": frame_end,
         "particle_spacing": spacing,
         "seed": int(shot.seed),
         "gravity": [float(g) for g in shot.gravity],
-        "fluid": {"rest_density": 1000.0, "viscosity": float(shot.viscosity)},
+        "fluid": {"rest_density": Fluid.rest_density, "viscosity": float(shot.viscosity)},
         "bounds": bounds,
         "budget": {"max_particles": int(shot.max_particles)},
         "emitters": emitters,

@@ -11,6 +11,7 @@ import sys
 import bpy
 
 from . import comparison, display, jobs, paths
+from .ui import SidebarPanel
 
 _state = {}          # "job": the running compare BakeJob; "pair", "folders", "paths", "scene"
 _reports = {}        # json path -> (mtime_ns, result or None)
@@ -129,25 +130,18 @@ class SPLASHDRAFT_OT_compare(bpy.types.Operator):
         return {"FINISHED"}
 
 
-class SPLASHDRAFT_OT_stop_compare(bpy.types.Operator):
+class SPLASHDRAFT_OT_stop_compare(jobs.StopJob, bpy.types.Operator):
     """Stop the running measurement; nothing is stored"""
 
     bl_idname = "splashdraft.stop_compare"
     bl_label = "Stop measuring"
 
     @classmethod
-    def poll(cls, context):
-        return is_comparing()
-
-    def execute(self, context):
-        _state["job"].cancel()
-        return {"FINISHED"}
+    def running_job(cls):
+        return _state.get("job")
 
 
-class SPLASHDRAFT_PT_fidelity(bpy.types.Panel):
-    bl_space_type = "VIEW_3D"
-    bl_region_type = "UI"
-    bl_category = "Splashdraft"
+class SPLASHDRAFT_PT_fidelity(SidebarPanel, bpy.types.Panel):
     bl_label = "Preview against reference"
     bl_idname = "SPLASHDRAFT_PT_fidelity"
     bl_parent_id = "SPLASHDRAFT_PT_versions"

@@ -326,6 +326,28 @@ class BakeJob:
             time.sleep(interval)
 
 
+class StopJob:
+    """Mixin of the operators that stop a running job: ``running_job()`` names the job (or None) and
+    ``stopping_message``, when set, is reported as the job is asked to stop (a second press stops it at once)."""
+
+    stopping_message = ""
+
+    @classmethod
+    def running_job(cls):
+        raise NotImplementedError
+
+    @classmethod
+    def poll(cls, context):
+        job = cls.running_job()
+        return job is not None and job.is_running
+
+    def execute(self, context):
+        self.running_job().cancel()
+        if self.stopping_message:
+            self.report({"INFO"}, self.stopping_message)
+        return {"FINISHED"}
+
+
 def tick(job, ui):
     """One timer step of a bake: drain the worker, tell ``ui``, settle at the end.
 

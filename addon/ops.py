@@ -13,6 +13,7 @@ from pathlib import Path
 import bpy
 from bpy.props import BoolProperty, EnumProperty, StringProperty
 
+from ..engine.cache import MANIFEST_NAME
 from ..engine.errors import CacheError
 from . import display, export, jobs, paths
 from .errors_ui import AddonError
@@ -338,20 +339,16 @@ def _ui_for(context, operator):
     return _BakeUI(context, _job_context["scene"], _job_context["shot"], _job_context["version"], operator.report)
 
 
-class SPLASHDRAFT_OT_stop_bake(bpy.types.Operator):
+class SPLASHDRAFT_OT_stop_bake(jobs.StopJob, bpy.types.Operator):
     """Stop the running bake after its current frame; finished frames are kept (press again to stop at once)"""
 
     bl_idname = "splashdraft.stop_bake"
     bl_label = "Stop bake"
+    stopping_message = "Stopping the bake after the current frame"
 
     @classmethod
-    def poll(cls, context):
-        return is_baking()
-
-    def execute(self, context):
-        _job.cancel()
-        self.report({"INFO"}, "Stopping the bake after the current frame")
-        return {"FINISHED"}
+    def running_job(cls):
+        return _job
 
 
 class SPLASHDRAFT_OT_refresh_versions(bpy.types.Operator):
@@ -514,7 +511,7 @@ def copy_points(folder, target):
     target.mkdir(parents=True, exist_ok=True)
     for frame in reader.frames:
         shutil.copy2(reader.frame_path(frame), target / reader.frame_path(frame).name)
-    shutil.copy2(Path(folder) / "manifest.json", target / "manifest.json")
+    shutil.copy2(Path(folder) / MANIFEST_NAME, target / MANIFEST_NAME)
     return len(reader.frames)
 
 

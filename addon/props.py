@@ -9,6 +9,8 @@ import bpy
 from bpy.props import (BoolProperty, CollectionProperty, EnumProperty, FloatProperty, FloatVectorProperty,
                        IntProperty, PointerProperty, StringProperty)
 
+from ..engine.scene import DEFAULT_FACES
+
 ROLE_ITEMS = (
     ("NONE", "Not used", "This object takes no part in the liquid shot", "BLANK1", 0),
     ("FILL", "Liquid fill", "The closed volume of this mesh starts filled with liquid", "SNAP_VOLUME", 1),
@@ -25,7 +27,13 @@ FACE_ITEMS = (
     ("open", "Open", "Liquid that leaves through this side is dropped from the simulation"),
 )
 
-FACE_NAMES = ("x_min", "x_max", "y_min", "y_max", "z_min", "z_max")
+
+
+def _box_side(label, facing, face):
+    """The property of one side of the shot box (``face`` is the engine's face name, e.g. ``z_max``)."""
+    return EnumProperty(name=label, description=f"Behaviour of the box side facing {facing}", items=FACE_ITEMS,
+                        default=DEFAULT_FACES[face])
+
 
 #: Blender 4.5 and newer warn about a "//" default unless the path property says it accepts one
 #: (the option does not exist in 4.2, where no warning is shown).
@@ -68,18 +76,12 @@ class SPLASHDRAFT_PG_object(bpy.types.PropertyGroup):
         name="Grip", description="Tangential friction of the collider surface (0 slippery, 1 sticky)",
         default=0.0, min=0.0, max=1.0, subtype="FACTOR")
     # Bounds: one side kind per face of the box
-    face_x_min: EnumProperty(name="-X side", description="Behaviour of the box side facing -X", items=FACE_ITEMS,
-                             default="wall")
-    face_x_max: EnumProperty(name="+X side", description="Behaviour of the box side facing +X", items=FACE_ITEMS,
-                             default="wall")
-    face_y_min: EnumProperty(name="-Y side", description="Behaviour of the box side facing -Y", items=FACE_ITEMS,
-                             default="wall")
-    face_y_max: EnumProperty(name="+Y side", description="Behaviour of the box side facing +Y", items=FACE_ITEMS,
-                             default="wall")
-    face_z_min: EnumProperty(name="Floor", description="Behaviour of the box side facing -Z", items=FACE_ITEMS,
-                             default="wall")
-    face_z_max: EnumProperty(name="Top", description="Behaviour of the box side facing +Z", items=FACE_ITEMS,
-                             default="open")
+    face_x_min: _box_side("-X side", "-X", "x_min")
+    face_x_max: _box_side("+X side", "+X", "x_max")
+    face_y_min: _box_side("-Y side", "-Y", "y_min")
+    face_y_max: _box_side("+Y side", "+Y", "y_max")
+    face_z_min: _box_side("Floor", "-Z", "z_min")
+    face_z_max: _box_side("Top", "+Z", "z_max")
 
 
 class SPLASHDRAFT_PG_version(bpy.types.PropertyGroup):

@@ -9,7 +9,9 @@ from . import display, ops, paths
 TAB = "Splashdraft"
 
 
-class _SidebarPanel:
+class SidebarPanel:
+    """Where every Splashdraft panel sits: its tab in the 3D view's sidebar."""
+
     bl_space_type = "VIEW_3D"
     bl_region_type = "UI"
     bl_category = TAB
@@ -25,7 +27,7 @@ class SPLASHDRAFT_UL_versions(bpy.types.UIList):
         row.label(text=f"{item.particles:,} pts")
 
 
-class SPLASHDRAFT_PT_shot(_SidebarPanel, bpy.types.Panel):
+class SPLASHDRAFT_PT_shot(SidebarPanel, bpy.types.Panel):
     bl_label = "Liquid shot"
     bl_idname = "SPLASHDRAFT_PT_shot"
 
@@ -65,7 +67,7 @@ class SPLASHDRAFT_PT_shot(_SidebarPanel, bpy.types.Panel):
                 layout.label(text=shot.bake_message)
 
 
-class SPLASHDRAFT_PT_liquid(_SidebarPanel, bpy.types.Panel):
+class SPLASHDRAFT_PT_liquid(SidebarPanel, bpy.types.Panel):
     bl_label = "Liquid behaviour"
     bl_idname = "SPLASHDRAFT_PT_liquid"
     bl_parent_id = "SPLASHDRAFT_PT_shot"
@@ -80,7 +82,7 @@ class SPLASHDRAFT_PT_liquid(_SidebarPanel, bpy.types.Panel):
         layout.prop(shot, "seed")
 
 
-class SPLASHDRAFT_PT_object(_SidebarPanel, bpy.types.Panel):
+class SPLASHDRAFT_PT_object(SidebarPanel, bpy.types.Panel):
     bl_label = "Object role"
     bl_idname = "SPLASHDRAFT_PT_object"
 
@@ -117,7 +119,7 @@ class SPLASHDRAFT_PT_object(_SidebarPanel, bpy.types.Panel):
                 grid.prop(settings, f"face_{name}")
 
 
-class SPLASHDRAFT_PT_versions(_SidebarPanel, bpy.types.Panel):
+class SPLASHDRAFT_PT_versions(SidebarPanel, bpy.types.Panel):
     bl_label = "Bakes"
     bl_idname = "SPLASHDRAFT_PT_versions"
 
@@ -149,7 +151,7 @@ class SPLASHDRAFT_PT_versions(_SidebarPanel, bpy.types.Panel):
             layout.label(text=warnings[-1], icon="ERROR")
 
 
-class SPLASHDRAFT_PT_handoff(_SidebarPanel, bpy.types.Panel):
+class SPLASHDRAFT_PT_handoff(SidebarPanel, bpy.types.Panel):
     bl_label = "Hand-off"
     bl_idname = "SPLASHDRAFT_PT_handoff"
     bl_options = {"DEFAULT_CLOSED"}

@@ -12,11 +12,13 @@ import json
 import re
 from pathlib import Path
 
+from ..engine.cache import MANIFEST_NAME
+from ..engine.wedge import WEDGE_MANIFEST
+
 VERSION_PATTERN = re.compile(r"^v(\d{3,})_([a-z]+)$")
 VARIANT_PATTERN = re.compile(r"^v\d{2,}(_[A-Za-z0-9._-]*)?$")
 INPUT_FOLDER = "input"
 SCENE_FILE = "scene.json"
-WEDGE_MANIFEST = "wedge.json"  # engine.wedge.WEDGE_MANIFEST
 
 
 def safe_name(text, fallback="shot"):
@@ -69,7 +71,7 @@ def _version_info(name, number, solver, path):
     info = {"name": name, "number": number, "solver": solver, "path": path,
             "frames": 0, "complete": False, "particles": 0, "readable": False, "warnings": []}
     try:
-        manifest = json.loads((path / "manifest.json").read_text(encoding="utf-8"))
+        manifest = json.loads((path / MANIFEST_NAME).read_text(encoding="utf-8"))
         frames = manifest.get("frames", {})
         info["frames"] = len(frames)
         info["complete"] = bool(manifest.get("complete", False))

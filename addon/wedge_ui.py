@@ -14,9 +14,11 @@ import time
 import bpy
 from bpy.props import CollectionProperty, FloatProperty, IntProperty, PointerProperty, StringProperty
 
+from ..engine.wedge import WEDGE_MANIFEST
 from . import display, jobs, ops, paths, wedge_jobs
 from .errors_ui import AddonError
-from .versions import INPUT_FOLDER, WEDGE_MANIFEST, next_version_dir
+from .ui import SidebarPanel
+from .versions import INPUT_FOLDER, next_version_dir
 
 _job = None  # the running jobs.BakeJob of the wedge
 _run = {}  # scene name, wedge folder, progress (wedge_jobs.WedgeProgress), has_selected
@@ -200,28 +202,21 @@ class SPLASHDRAFT_OT_wedge_start(bpy.types.Operator):
         return {"FINISHED"} if progress.state == "finished" else {"CANCELLED"}
 
 
-class SPLASHDRAFT_OT_wedge_stop(bpy.types.Operator):
+class SPLASHDRAFT_OT_wedge_stop(jobs.StopJob, bpy.types.Operator):
     """Stop the running wedge after each variant's current frame; finished frames are kept (again: at once)"""
 
     bl_idname = "splashdraft.wedge_stop"
     bl_label = "Stop wedge"
+    stopping_message = "Stopping the wedge after the current frames"
 
     @classmethod
-    def poll(cls, context):
-        return is_wedging()
-
-    def execute(self, context):
-        _job.cancel()
-        self.report({"INFO"}, "Stopping the wedge after the current frames")
-        return {"FINISHED"}
+    def running_job(cls):
+        return _job
 
 
-class SPLASHDRAFT_PT_wedge(bpy.types.Panel):
+class SPLASHDRAFT_PT_wedge(SidebarPanel, bpy.types.Panel):
     bl_label = "Wedge"
     bl_idname = "SPLASHDRAFT_PT_wedge"
-    bl_space_type = "VIEW_3D"
-    bl_region_type = "UI"
-    bl_category = "Splashdraft"
     bl_options = {"DEFAULT_CLOSED"}
 
     def draw(self, context):

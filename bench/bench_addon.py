@@ -10,7 +10,6 @@ bench/results/addon.json.
 """
 
 import argparse
-import json
 import os
 import platform
 import sys
@@ -20,6 +19,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 
+from bench.report import write_result
 from tools import blender_env
 
 HERE = Path(__file__).resolve()
@@ -143,9 +143,7 @@ def main(argv=None):
         print(f"{label:52s} "
               f"{item['install_enable_s']:8.2f}s {'':9s}  < {TARGETS['install_enable_s']:g} s {ok} "
               f"(import bpy {item['import_bpy_s']:.2f} s, not counted)")
-    target = ROOT / "bench" / "results" / "addon.json"
-    target.parent.mkdir(parents=True, exist_ok=True)
-    target.write_text(json.dumps(results, indent=1) + "\n")
+    target = write_result("addon.json", results)
     print(f"wrote {target.relative_to(ROOT)}")
     return 0
 

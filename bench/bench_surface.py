@@ -15,7 +15,6 @@ Prints a table and writes bench/results/surface.json.
 """
 
 import argparse
-import json
 import platform
 import sys
 import time
@@ -23,6 +22,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 
+from bench.report import write_result
 from tools import blender_env
 
 HERE = Path(__file__).resolve()
@@ -140,9 +140,7 @@ def main(argv=None):
                               "median_cpu_seconds": other_cpu, "all_seconds": other["seconds"],
                               "vertices": other["vertices"], "faces": other["faces"],
                               "default_over_this_wall": median / other_median, "default_over_this_cpu": cpu / other_cpu}
-    target = ROOT / "bench" / "results" / "surface.json"
-    target.parent.mkdir(parents=True, exist_ok=True)
-    target.write_text(json.dumps(results, indent=1) + "\n")
+    target = write_result("surface.json", results)
     print(f"wrote {target.relative_to(ROOT)}")
     return 0
 

@@ -37,7 +37,7 @@ import tempfile
 import time
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
+from bench.report import write_result
 
 
 def frames_of(wedge):
@@ -143,9 +143,7 @@ def main(argv=None):
         free = statistics.median(m.free_cores for m in runs[name])
         print(f"{name:<12}{wall[name]:>10.2f}{ratio:>10}{cpu:>11.2f}{free:>12.2f}  {same}")
     print(json.dumps(result))
-    out = ROOT / "bench" / "results"
-    out.mkdir(parents=True, exist_ok=True)
-    (out / "bench_wedge.json").write_text(json.dumps(result, indent=1) + "\n")
+    write_result("bench_wedge.json", result)
     return 0
 
 

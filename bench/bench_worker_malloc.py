@@ -24,6 +24,8 @@ import sys
 import tempfile
 from pathlib import Path
 
+from bench.report import write_result
+
 ROOT = Path(__file__).resolve().parents[1]
 
 CHILD = """
@@ -72,9 +74,7 @@ def main(argv=None):
         result["cases"][name] = {k: round(v, 3) for k, v in summary.items()}
         print(f"{name:<14}{summary['user']:>9.2f}{summary['system']:>10.2f}{summary['minor_faults']:>14,.0f}")
     print(json.dumps(result))
-    out = ROOT / "bench" / "results"
-    out.mkdir(parents=True, exist_ok=True)
-    (out / "bench_worker_malloc.json").write_text(json.dumps(result, indent=1) + "\n")
+    write_result("bench_worker_malloc.json", result)
     return 0
 
 

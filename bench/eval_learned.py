@@ -40,6 +40,7 @@ from engine.bake import bake  # noqa: E402
 from engine.cache import open_cache  # noqa: E402
 from engine.compare import compare_caches  # noqa: E402
 from engine.errors import SplashdraftError  # noqa: E402
+from engine.farm import add_where_options  # noqa: E402
 from engine.measures import kinetic_energy  # noqa: E402
 from engine.scene import load_scene  # noqa: E402
 
@@ -187,13 +188,11 @@ def main(argv=None):
     parser.add_argument("--out", default=str(ROOT / "bench" / "results" / "eval"),
                         help="Folder for the learned bakes and eval_learned.json (default bench/results/eval; "
                         "with the default, bench/results/eval_learned.json is written too).")
-    where = parser.add_mutually_exclusive_group()
-    where.add_argument("--workers", type=int, default=None, metavar="N",
-                       help="Evaluate the shots on a local Dask cluster of N worker processes (default: here, "
-                       "one after another).")
-    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                       help="Evaluate the shots on the Dask scheduler at ADDRESS (tcp://HOST:PORT); --out, "
-                       "--heldout and --model must be on storage every worker sees at the same path.")
+    add_where_options(
+        parser,
+        "Evaluate the shots on a local Dask cluster of N worker processes (default: here, one after another).",
+        "Evaluate the shots on the Dask scheduler at ADDRESS (tcp://HOST:PORT); --out, "
+        "--heldout and --model must be on storage every worker sees at the same path.")
     args = parser.parse_args(argv)
     out = Path(args.out).resolve()
     out.mkdir(parents=True, exist_ok=True)

@@ -45,6 +45,10 @@ def _add_progress(parser):
     )  # fmt: skip
 
 
+def _add_solver(parser, meaning):
+    parser.add_argument("--solver", choices=SOLVER_NAMES, default="sph", help=f"{meaning} Default: sph.")
+
+
 def _add_model(parser):
     parser.add_argument(
         "--model", metavar="MODEL",
@@ -74,26 +78,32 @@ def _add_budget(parser):
     )
 
 
+def _add_command(commands, name, summary, description):
+    """A subcommand's parser, with the exit codes under its --help."""
+    return commands.add_parser(name, help=summary, description=description, epilog=_exit_code_epilog(),
+                               formatter_class=argparse.RawDescriptionHelpFormatter)
+
+
 def build_parser():
-    formatter = argparse.RawDescriptionHelpFormatter
+    from .farm import add_where_options
+
     parser = _Parser(
         prog="python -m engine",
         description="Splashdraft engine: bake liquid splash shots to per-frame PLY point caches, "
         "inspect caches, estimate bakes and run the validation cases.",
         epilog=_exit_code_epilog(),
-        formatter_class=formatter,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     commands = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     commands.required = True
 
-    bake = commands.add_parser(
-        "bake", help="Bake a scene into a cache folder.", epilog=_exit_code_epilog(), formatter_class=formatter,
-        description="Bake a scene file into a cache folder, one PLY file per frame. Ctrl-C or SIGTERM stops "
+    bake = _add_command(
+        commands, "bake", "Bake a scene into a cache folder.",
+        "Bake a scene file into a cache folder, one PLY file per frame. Ctrl-C or SIGTERM stops "
         "after the frame being computed; --resume continues from the last finished frame.",
     )  # fmt: skip
     bake.add_argument("scene", help="The scene file (splashdraft-scene JSON).")
-    bake.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
-                      help="The reference DFSPH solver or the learned preview. Default: sph.")  # fmt: skip
+    _add_solver(bake, "The reference DFSPH solver or the learned preview.")
     bake.add_argument("--out", required=True, help="The cache folder to write; it is created if missing.")
     bake.add_argument("--frames", metavar="A:B",
                       help="Bake frames A to B only (inclusive). A must be the scene's first frame, or the "
@@ -106,24 +116,22 @@ def build_parser():
     _add_progress(bake)
     _add_budget(bake)
 
-    info = commands.add_parser(
-        "info", help="Describe a cache folder.", epilog=_exit_code_epilog(), formatter_class=formatter,
-        description="Describe a cache folder: frames, particles per frame, disk use, solver and its settings.",
+    info = _add_command(
+        commands, "info", "Describe a cache folder.",
+        "Describe a cache folder: frames, particles per frame, disk use, solver and its settings.",
     )  # fmt: skip
     info.add_argument("cache", help="The cache folder.")
     info.add_argument("--json", action="store_true", help="Print the description as JSON on stdout.")
     info.add_argument("--verify", action="store_true",
                       help="Also read every frame and check its checksum. Default: read the manifest only.")
 
-    estimate = commands.add_parser(
-        "estimate", help="Estimate particles, memory, disk and time of a bake.", epilog=_exit_code_epilog(),
-        formatter_class=formatter,
-        description="Estimate a bake before running it: particle count, memory, disk per frame and for the "
+    estimate = _add_command(
+        commands, "estimate", "Estimate particles, memory, disk and time of a bake.",
+        "Estimate a bake before running it: particle count, memory, disk per frame and for the "
         "shot, and a rough time. Exits with status 3 when the scene exceeds its particle budget.",
     )  # fmt: skip
     estimate.add_argument("scene", help="The scene file.")
-    estimate.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
-                          help="The solver the estimate is for. Default: sph.")
+    _add_solver(estimate, "The solver the estimate is for.")
     estimate.add_argument("--json", action="store_true", help="Print the estimate as JSON on stdout.")
     estimate.add_argument("--calibrate", action="store_true",
                           help="First measure how fast this computer bakes with the solver (two short bakes "
@@ -133,24 +141,21 @@ def build_parser():
     _add_model(estimate)
     _add_budget(estimate)
 
-    validate = commands.add_parser(
-        "validate", help="Run a validation case against published values.", epilog=_exit_code_epilog(),
-        formatter_class=formatter,
-        description="Run a validation case and print simulated against published values and the error. "
+    validate = _add_command(
+        commands, "validate", "Run a validation case against published values.",
+        "Run a validation case and print simulated against published values and the error. "
         "Exits with status 7 when a value falls outside its tolerance. CASE 'all' runs every case.",
     )  # fmt: skip
     validate.add_argument("case", help="The case name (see the list printed for an unknown name), or 'all'.")
     validate.add_argument("--json", action="store_true", help="Print the results as JSON on stdout.")
     _add_progress(validate)
 
-    demo = commands.add_parser(
-        "demo", help="Write the built-in demo shot and bake it.", epilog=_exit_code_epilog(),
-        formatter_class=formatter,
-        description="Write the built-in demo shot (a block of water let go in an open-topped trough with a "
+    demo = _add_command(
+        commands, "demo", "Write the built-in demo shot and bake it.",
+        "Write the built-in demo shot (a block of water let go in an open-topped trough with a "
         "rough boulder) into OUT/scene and bake it into OUT/<solver>.",
     )  # fmt: skip
-    demo.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
-                      help="The solver to bake with. Default: sph.")
+    _add_solver(demo, "The solver to bake with.")
     demo.add_argument("--out", default="out/demo", help="The output folder. Default: out/demo.")
     demo.add_argument("--frames", metavar="A:B", help="Bake frames A to B only. Default: the whole shot.")
     demo.add_argument("--preset", choices=("full", "small"), default="full",
@@ -162,10 +167,9 @@ def build_parser():
     _add_progress(demo)
     _add_budget(demo)
 
-    wedge = commands.add_parser(
-        "wedge", help="Bake one scene once per combination of setting values.", epilog=_exit_code_epilog(),
-        formatter_class=formatter,
-        description="Bake a scene once per combination of --vary values, each variant into its own cache "
+    wedge = _add_command(
+        commands, "wedge", "Bake one scene once per combination of setting values.",
+        "Bake a scene once per combination of --vary values, each variant into its own cache "
         "folder under --out, on a local Dask cluster (default), an existing Dask scheduler, or serially "
         "here (--workers 0). Re-running the same command resumes: complete variants are skipped, partial "
         "ones continue from their last frame. Ends with a table of the variants and a contact sheet "
@@ -176,27 +180,24 @@ def build_parser():
                        help="A scene field by its dotted path and the values to try, e.g. fluid.viscosity=0.01,0.05 "
                        "or emitters.spout.speed=1,2 (emitters and colliders by name). Repeat for more fields; "
                        "the wedge is every combination.")  # fmt: skip
-    wedge.add_argument("--solver", choices=SOLVER_NAMES, default="sph",
-                       help="The solver every variant is baked with. Default: sph.")
+    _add_solver(wedge, "The solver every variant is baked with.")
     _add_model(wedge)
     wedge.add_argument("--frames", metavar="A:B", help="Bake frames A to B of each variant. Default: the whole shot.")
     wedge.add_argument("--out", required=True, help="The wedge folder (one cache folder per variant inside).")
-    where = wedge.add_mutually_exclusive_group()
-    where.add_argument("--workers", type=int, metavar="N",
-                       help="Worker processes of the local Dask cluster; 0 bakes the variants one after another "
-                       "in this process. Default: one per CPU core (at most one per variant).")  # fmt: skip
-    where.add_argument("--scheduler", metavar="ADDRESS",
-                       help="Send the variants to the Dask scheduler at ADDRESS (e.g. tcp://farm:8786); --out, "
-                       "the scene and its meshes must be on storage every worker sees at the same path.")  # fmt: skip
+    add_where_options(
+        wedge,
+        "Worker processes of the local Dask cluster; 0 bakes the variants one after another "
+        "in this process. Default: one per CPU core (at most one per variant).",
+        "Send the variants to the Dask scheduler at ADDRESS (e.g. tcp://farm:8786); --out, "
+        "the scene and its meshes must be on storage every worker sees at the same path.")
     wedge.add_argument("--sheet-frame", type=int, metavar="F",
                        help="The frame shown for each variant in the contact sheet. Default: the last frame.")
     wedge.add_argument("--json", action="store_true", help="Print the summary table as JSON on stdout.")
     _add_progress(wedge)
 
-    tune = commands.add_parser(
-        "tune", help="Fine-tune the learned preview on reference bakes (needs PyTorch).",
-        epilog=_exit_code_epilog(), formatter_class=formatter,
-        description="Continue training the learned preview's model on reference (--solver sph) bakes you "
+    tune = _add_command(
+        commands, "tune", "Fine-tune the learned preview on reference bakes (needs PyTorch).",
+        "Continue training the learned preview's model on reference (--solver sph) bakes you "
         "already have, holding back the last frames of each, and write a new model folder: the model, its "
         "contract, and a card with the mean Chamfer distance and energy ratio on the held-back frames "
         "before and after. Re-running the same command resumes from its checkpoint. Use the result with "

@@ -108,7 +108,39 @@ def _world_from(scene_path, dir_b, manifest):
     return None, None
 
 
-def compare_caches(dir_a, dir_b, frames=None, scene=None, on_frame=None):
+def _shared_spacing(cache_a, cache_b, dir_a, dir_b) -> float:
+    """The particle spacing both bakes were made at (metres); raises SplashdraftError when it is missing or differs."""
+    spacing = float(cache_b.manifest.get("particle_spacing", cache_a.manifest.get("particle_spacing", 0)))
+    spacing_a = float(cache_a.manifest.get("particle_spacing", spacing))
+    if spacing <= 0:
+        raise SplashdraftError(f"compare: {dir_b} manifest has no particle_spacing; bake it again")
+    if abs(spacing_a - spacing) > 1e-9 * spacing:
+        raise SplashdraftError(
+            f"compare: particle spacings differ ({dir_a}: {spacing_a} m, {dir_b}: {spacing} m); "
+            "compare bakes of the same scene at the same spacing"
+        )
+    return spacing
+
+
+def _frames_to_compare(cache_a, cache_b, frames, dir_a, dir_b) -> list:
+    """The frames both caches hold (``frames``, sorted, if given); raises SplashdraftError when one is missing
+    or none is shared."""
+    common = sorted(set(cache_a.frames) & set(cache_b.frames))
+    if frames is not None:
+        wanted = sorted(set(int(f) for f in frames))
+        missing = [f for f in wanted if f not in common]
+        if missing:
+            raise SplashdraftError(
+                f"compare: frames {missing[:5]} are not in both caches (common: "
+                f"{common[0] if common else '-'}..{common[-1] if common else '-'}); pick frames both bakes have"
+            )
+        common = wanted
+    if not common:
+        raise SplashdraftError(f"compare: {dir_a} and {dir_b} share no frame; bake the same frame range")
+    return common
+
+
+def compare_caches(dir_a, dir_b, frames=None, scene=None, on_frame=None) -> dict:
     """Compare bake B against bake A frame by frame.
 
     Args:
@@ -132,29 +164,10 @@ def compare_caches(dir_a, dir_b, frames=None, scene=None, on_frame=None):
         SplashdraftError: the caches share no frame or disagree in spacing.
     """
     cache_a, cache_b = open_cache(dir_a), open_cache(dir_b)
-    spacing = float(cache_b.manifest.get("particle_spacing", cache_a.manifest.get("particle_spacing", 0)))
-    spacing_a = float(cache_a.manifest.get("particle_spacing", spacing))
-    if spacing <= 0:
-        raise SplashdraftError(f"compare: {dir_b} manifest has no particle_spacing; bake it again")
-    if abs(spacing_a - spacing) > 1e-9 * spacing:
-        raise SplashdraftError(
-            f"compare: particle spacings differ ({dir_a}: {spacing_a} m, {dir_b}: {spacing} m); "
-            "compare bakes of the same scene at the same spacing"
-        )
+    spacing = _shared_spacing(cache_a, cache_b, dir_a, dir_b)
     rest_density = float(cache_b.manifest.get("rest_density", 1000.0))
     mass = particle_mass(rest_density, spacing)
-    common = sorted(set(cache_a.frames) & set(cache_b.frames))
-    if frames is not None:
-        wanted = sorted(set(int(f) for f in frames))
-        missing = [f for f in wanted if f not in common]
-        if missing:
-            raise SplashdraftError(
-                f"compare: frames {missing[:5]} are not in both caches (common: "
-                f"{common[0] if common else '-'}..{common[-1] if common else '-'}); pick frames both bakes have"
-            )
-        common = wanted
-    if not common:
-        raise SplashdraftError(f"compare: {dir_a} and {dir_b} share no frame; bake the same frame range")
+    common = _frames_to_compare(cache_a, cache_b, frames, dir_a, dir_b)
     world, scene_used = _world_from(scene, dir_b, cache_b.manifest)
     fps = float(cache_b.manifest.get("fps", 24))
     frame_start = int(cache_b.manifest.get("frame_start", common[0]))

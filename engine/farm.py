@@ -51,6 +51,14 @@ from .wedge import apply_report, bake_variant, variant_progress, write_manifest
 DASK_INSTALL = "pip install -r requirements.txt (dask[distributed] is an engine dependency)"
 
 
+def add_where_options(parser, workers_help, scheduler_help):
+    """Add the two exclusive ways of choosing where jobs run: ``--workers N`` (a local Dask cluster of N
+    worker processes) or ``--scheduler ADDRESS`` (an existing Dask scheduler); both default to None."""
+    where = parser.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=int, default=None, metavar="N", help=workers_help)
+    where.add_argument("--scheduler", default=None, metavar="ADDRESS", help=scheduler_help)
+
+
 def import_distributed():
     """The ``distributed`` module, or DependencyError naming the install command."""
     try:

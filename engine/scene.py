@@ -611,6 +611,22 @@ def _array_source(context, value, label, key, what):
     return np.array(array, np.float64), source
 
 
+def _check_frames(check, label, frames, noun, bounds, not_finite, out_of_bounds):
+    """The checks per-frame arrays (F, ...) share: at most the frame limit, finite, every entry within ``bounds``.
+    ``not_finite`` and ``out_of_bounds[0]`` are messages with ``{frame}`` (and ``{high}``) to fill in."""
+    if len(frames) > LIMITS["frames"][1]:
+        check.fail(label, f"{noun} hold {len(frames):,} frames, more than {LIMITS['frames'][1]:,}", "store one per frame")
+    axes = tuple(range(1, frames.ndim))
+    if not np.all(np.isfinite(frames)):
+        frame = int(np.argmax(~np.all(np.isfinite(frames), axis=axes)))
+        check.fail(label, not_finite.format(frame=frame), "re-export the motion")
+    low, high = bounds
+    if np.any((frames < low) | (frames > high)):
+        frame = int(np.argmax(np.any((frames < low) | (frames > high), axis=axes)))
+        problem, fix = out_of_bounds
+        check.fail(label, problem.format(frame=frame, high=high), fix)
+
+
 def _transforms(context, value, label):
     if value is None:
         return None, None
@@ -619,15 +635,9 @@ def _transforms(context, value, label):
     if matrices.ndim != 3 or matrices.shape[1:] != (4, 4) or len(matrices) == 0:
         check.fail(label, f"transforms have shape {matrices.shape}, expected (F, 4, 4) with F >= 1",
                    "store one 4x4 world matrix per frame from the scene's frame_start")
-    if len(matrices) > LIMITS["frames"][1]:
-        check.fail(label, f"transforms hold {len(matrices):,} frames, more than {LIMITS['frames'][1]:,}", "store one per frame")
-    if not np.all(np.isfinite(matrices)):
-        frame = int(np.argmax(~np.all(np.isfinite(matrices), axis=(1, 2))))
-        check.fail(label, f"transform {frame} has NaN or infinite entries", "re-export the motion")
-    low, high = LIMITS["matrix"]
-    if np.any((matrices < low) | (matrices > high)):
-        frame = int(np.argmax(np.any((matrices < low) | (matrices > high), axis=(1, 2))))
-        check.fail(label, f"transform {frame} has an entry beyond {high:g}", "keep translations and scales within the shot")
+    _check_frames(check, label, matrices, "transforms", LIMITS["matrix"],
+                  "transform {frame} has NaN or infinite entries",
+                  ("transform {frame} has an entry beyond {high:g}", "keep translations and scales within the shot"))
     bottom = np.abs(matrices[:, 3, :] - np.array([0.0, 0.0, 0.0, 1.0])).max(axis=1)
     if np.any(bottom > 1e-9):
         frame = int(np.argmax(bottom > 1e-9))
@@ -650,16 +660,10 @@ def _frame_vertices(context, value, label, vertex_count):
     if frames.shape[1] != vertex_count:
         check.fail(label, f"per-frame vertices have {frames.shape[1]} vertices but the mesh has {vertex_count}",
                    "export the per-frame vertices from the same mesh (same topology)")
-    if len(frames) > LIMITS["frames"][1]:
-        check.fail(label, f"per-frame vertices hold {len(frames):,} frames, more than {LIMITS['frames'][1]:,}", "store one per frame")
-    if not np.all(np.isfinite(frames)):
-        frame = int(np.argmax(~np.all(np.isfinite(frames), axis=(1, 2))))
-        check.fail(label, f"per-frame vertices of frame {frame} hold NaN or infinite values", "re-export the motion")
-    low, high = LIMITS["coordinate"]
-    if np.any((frames < low) | (frames > high)):
-        frame = int(np.argmax(np.any((frames < low) | (frames > high), axis=(1, 2))))
-        check.fail(label, f"per-frame vertices of frame {frame} lie farther than {high:g} m from the origin",
-                   "model the shot near the origin in metres")
+    _check_frames(check, label, frames, "per-frame vertices", LIMITS["coordinate"],
+                  "per-frame vertices of frame {frame} hold NaN or infinite values",
+                  ("per-frame vertices of frame {frame} lie farther than {high:g} m from the origin",
+                   "model the shot near the origin in metres"))
     return frames, source
 
 

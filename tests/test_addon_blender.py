@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 
 from tools import blender_env
+from tools.blender_demo import mesh_triangles
 
 pytestmark = [pytest.mark.blender,
               pytest.mark.skipif(not blender_env.has_bpy(), reason="the bpy module is not installed")]
@@ -376,6 +377,22 @@ class RecordingLayout:
         pass
 
 
+class LabelLayout(RecordingLayout):
+    """A RecordingLayout whose sub-layouts are itself and that keeps the text of every label in ``labels``."""
+
+    def __init__(self, log, labels):
+        super().__init__(log)
+        self.labels = labels
+
+    def _child(self, *args, **kwargs):
+        return self
+
+    row = column = box = split = grid_flow = _child
+
+    def label(self, text="", **kwargs):
+        self.labels.append(text)
+
+
 def child_panels():
     import bpy
 
@@ -402,12 +419,9 @@ def child_panels():
 def child_range_warning(tmp):
     import bpy
 
-    tmp = Path(tmp)
-    scene = blender_env.reset_scene()
-    module = blender_env.enable_from_source()
+    tmp, scene, module = start_shot_child(tmp)
     ui = sys.modules[module + ".addon.ui"]
     os.environ["SPLASHDRAFT_CALIBRATION"] = str(tmp / "calibration.json")
-    build_shot(scene, tmp / "cache")
     shot = scene.splashdraft
     shot.viscosity = 0.2
     scene.frame_end = 2
@@ -421,18 +435,8 @@ def child_range_warning(tmp):
     for index, key in ((0, "labels_sph"), (1, "labels_learned")):
         shot.versions_index = index
         labels = []
-
-        class Recorder(RecordingLayout):
-            def _child(self, *args, **kwargs):
-                return self
-
-            row = column = box = split = grid_flow = _child
-
-            def label(self, text="", **kwargs):
-                labels.append(text)
-
         log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
-        ui.SPLASHDRAFT_PT_versions.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        ui.SPLASHDRAFT_PT_versions.draw(type("Self", (), {"layout": LabelLayout(log, labels)})(), bpy.context)
         out[key] = labels
     return out
 
@@ -461,6 +465,16 @@ def _cube(name, location, size):
     obj.name = name
     obj.scale = size
     return obj
+
+
+def start_shot_child(tmp):
+    """A child's start: a factory-fresh scene, the add-on enabled from this checkout and the test shot
+    (build_shot) caching under tmp/cache; returns (tmp as a Path, the scene, the add-on's module prefix)."""
+    tmp = Path(tmp)
+    scene = blender_env.reset_scene()  # before enabling: factory settings also reset the add-on list
+    module = blender_env.enable_from_source()
+    build_shot(scene, tmp / "cache")
+    return tmp, scene, module
 
 
 def build_shot(scene, cache_dir):
@@ -581,12 +595,9 @@ def render_png(scene, path):
 def child_shot(tmp):
     import bpy
 
-    tmp = Path(tmp)
-    scene = blender_env.reset_scene()  # before enabling: factory settings also reset the add-on list
-    module = blender_env.enable_from_source()
+    tmp, scene, module = start_shot_child(tmp)
     export_module = sys.modules[module + ".addon.export"]
     display = sys.modules[module + ".addon.display"]
-    build_shot(scene, tmp / "cache")
     scene.splashdraft.playback = "REFILL"  # this child checks the mesh the add-on writes; NODES has its own
     out = {}
 
@@ -855,13 +866,7 @@ def surface_mesh_stats(obj):
     evaluated = obj.evaluated_get(bpy.context.evaluated_depsgraph_get())
     mesh = evaluated.to_mesh()
     n = len(mesh.vertices)
-    positions = np.empty(n * 3, np.float32)
-    mesh.attributes["position"].data.foreach_get("vector", positions)
-    positions = positions.reshape(-1, 3).astype(np.float64)
-    mesh.calc_loop_triangles()
-    triangles = np.empty(len(mesh.loop_triangles) * 3, np.int32)
-    mesh.loop_triangles.foreach_get("vertices", triangles)
-    triangles = triangles.reshape(-1, 3)
+    positions, triangles = mesh_triangles(mesh)
     edges = np.sort(np.concatenate([triangles[:, [0, 1]], triangles[:, [1, 2]], triangles[:, [2, 0]]]), axis=1)
     _, uses = np.unique(edges, axis=0, return_counts=True)
     graph = coo_matrix((np.ones(len(edges)), (edges[:, 0], edges[:, 1])), shape=(n, n))
@@ -968,12 +973,9 @@ def child_surface(tmp):
 def child_compare(tmp):
     import bpy
 
-    tmp = Path(tmp)
-    scene = blender_env.reset_scene()
-    module = blender_env.enable_from_source()
+    tmp, scene, module = start_shot_child(tmp)
     fidelity = sys.modules[module + ".addon.fidelity"]
     os.environ["SPLASHDRAFT_CALIBRATION"] = str(tmp / "calibration.json")  # this computer not measured yet
-    build_shot(scene, tmp / "cache")
     shot = scene.splashdraft
     bakes, estimates = [], []
     for solver in ("sph", "learned"):
@@ -992,15 +994,7 @@ def child_compare(tmp):
         labels = []
         opens.clear()
 
-        class Recorder(RecordingLayout):
-            def _child(self, *args, **kwargs):
-                return self
-
-            row = column = box = split = grid_flow = _child
-
-            def label(self, text="", **kwargs):
-                labels.append(text)
-
+        class Recorder(LabelLayout):
             def operator(self, idname, **kwargs):
                 properties = super().operator(idname, **kwargs)
                 if idname == "wm.path_open":
@@ -1008,7 +1002,7 @@ def child_compare(tmp):
                 return properties
 
         log = {"missing": [], "props_drawn": 0, "operators_drawn": 0}
-        fidelity.SPLASHDRAFT_PT_fidelity.draw(type("Self", (), {"layout": Recorder(log)})(), bpy.context)
+        fidelity.SPLASHDRAFT_PT_fidelity.draw(type("Self", (), {"layout": Recorder(log, labels)})(), bpy.context)
         assert not log["missing"], log
         return labels
 
@@ -1044,11 +1038,8 @@ def child_compare(tmp):
 def child_failures(tmp):
     import bpy
 
-    tmp = Path(tmp)
-    scene = blender_env.reset_scene()
-    module = blender_env.enable_from_source()
+    tmp, scene, module = start_shot_child(tmp)
     display = sys.modules[module + ".addon.display"]
-    build_shot(scene, tmp / "cache")
     shot = scene.splashdraft
     out = {}
 

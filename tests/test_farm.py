@@ -177,25 +177,20 @@ def _start(args, log):
                             start_new_session=True)  # fmt: skip
 
 
-@pytest.fixture
-def dask_processes(tmp_path):
-    """A ``dask scheduler`` and two ``dask worker`` processes (no nanny, one thread each)."""
-    address_file = tmp_path / "scheduler.json"
-    log = open(tmp_path / "dask.log", "w")
-    processes = [_start(["scheduler", "--scheduler-file", str(address_file), "--host", "127.0.0.1", "--port", "0",
-                         "--no-dashboard"], log)]  # fmt: skip
+def start_scheduler(address_file, log):
+    """A ``dask scheduler`` process writing its address to ``address_file``; returns (process, address)."""
+    scheduler = _start(["scheduler", "--scheduler-file", str(address_file), "--host", "127.0.0.1", "--port", "0",
+                        "--no-dashboard"], log)  # fmt: skip
     deadline = time.monotonic() + 60
     while not address_file.exists() and time.monotonic() < deadline:
         time.sleep(0.2)
-    assert address_file.exists(), (tmp_path / "dask.log").read_text()
+    assert address_file.exists(), Path(log.name).read_text()
     time.sleep(0.3)
-    address = json.loads(address_file.read_text())["address"]
-    workers = [_start(["worker", address, "--nthreads", "1", "--no-nanny", "--no-dashboard", "--host", "127.0.0.1"],
-                      log) for _ in range(2)]  # fmt: skip
-    processes += workers
-    with distributed.Client(address, timeout="30s") as client:
-        client.wait_for_workers(2, timeout=60)
-    yield address, workers
+    return scheduler, json.loads(address_file.read_text())["address"]
+
+
+def stop_processes(processes):
+    """SIGTERM the processes still running, last started first; kill any not gone within 20 s."""
     for process in reversed(processes):
         if process.poll() is None:
             process.send_signal(signal.SIGTERM)
@@ -205,6 +200,22 @@ def dask_processes(tmp_path):
         except subprocess.TimeoutExpired:
             process.kill()
             process.wait()
+
+
+@pytest.fixture
+def dask_processes(tmp_path):
+    """A ``dask scheduler`` and two ``dask worker`` processes (no nanny, one thread each)."""
+    address_file = tmp_path / "scheduler.json"
+    log = open(tmp_path / "dask.log", "w")
+    scheduler, address = start_scheduler(address_file, log)
+    processes = [scheduler]
+    workers = [_start(["worker", address, "--nthreads", "1", "--no-nanny", "--no-dashboard", "--host", "127.0.0.1"],
+                      log) for _ in range(2)]  # fmt: skip
+    processes += workers
+    with distributed.Client(address, timeout="30s") as client:
+        client.wait_for_workers(2, timeout=60)
+    yield address, workers
+    stop_processes(processes)
     log.close()
 
 

@@ -17,14 +17,13 @@ import os
 import shutil
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import pytest
 
 from engine.errors import CacheError
 
-from tests.test_farm import _frame_bytes, _start, dask_processes  # noqa: F401 (a fixture)
+from tests.test_farm import _frame_bytes, dask_processes, start_scheduler, stop_processes  # noqa: F401 (a fixture)
 
 distributed = pytest.importorskip("distributed", reason="dask[distributed] is in requirements.txt; install it")
 
@@ -104,13 +103,7 @@ def blind_worker(tmp_path):
         pytest.skip(f"cannot make a private mount namespace here: {probe.stderr.decode().strip()}")
     address_file = tmp_path.parent / f"{tmp_path.name}-scheduler.json"
     log = open(tmp_path.parent / f"{tmp_path.name}-dask.log", "w")
-    scheduler = _start(["scheduler", "--scheduler-file", str(address_file), "--host", "127.0.0.1", "--port", "0",
-                        "--no-dashboard"], log)  # fmt: skip
-    deadline = time.monotonic() + 60
-    while not address_file.exists() and time.monotonic() < deadline:
-        time.sleep(0.2)
-    time.sleep(0.3)
-    address = json.loads(address_file.read_text())["address"]
+    scheduler, address = start_scheduler(address_file, log)
     worker_command = (f"mount -t tmpfs tmpfs {tmp_path} && exec {sys.executable} -m dask worker {address} "
                       "--nthreads 1 --no-nanny --no-dashboard --host 127.0.0.1")  # fmt: skip
     worker = subprocess.Popen(["unshare", "-m", "sh", "-c", worker_command], cwd=ROOT, stdout=log, stderr=log,
@@ -118,13 +111,7 @@ def blind_worker(tmp_path):
     with distributed.Client(address, timeout="30s") as client:
         client.wait_for_workers(1, timeout=60)
     yield address
-    for process in (worker, scheduler):
-        process.terminate()
-        try:
-            process.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
+    stop_processes([scheduler, worker])
     log.close()
 
 

@@ -245,11 +245,13 @@ def test_output_transform_round_trips_and_zero_means_free_fall():
 # ---------------------------------------------------------------- contract and load errors
 
 
-def copy_model(tmp_path):
-    """Copy the shipped pair as m.onnx / m.json (the contract's onnx_file renamed to match)."""
+def copy_model(tmp_path, **changes):
+    """Copy the shipped pair as m.onnx / m.json (the contract's onnx_file renamed to match, then ``changes``
+    written over its fields)."""
     shutil.copyfile(SHIPPED.with_suffix(".onnx"), tmp_path / "m.onnx")
     contract = json.loads(SHIPPED.with_suffix(".json").read_text())
     contract["onnx_file"] = "m.onnx"
+    contract.update(changes)
     (tmp_path / "m.json").write_text(json.dumps(contract))
     return tmp_path / "m.onnx"
 
@@ -295,10 +297,7 @@ def test_unloadable_model_with_matching_checksum_is_a_model_error(tmp_path):
     ("step_froude_min", 50.0, "step_froude_min .* is larger than"),
 ])  # fmt: skip
 def test_mismatched_contract_fields_are_model_errors(tmp_path, key, value, message):
-    path = copy_model(tmp_path)
-    contract = json.loads(path.with_suffix(".json").read_text())
-    contract[key] = value
-    path.with_suffix(".json").write_text(json.dumps(contract))
+    path = copy_model(tmp_path, **{key: value})
     with pytest.raises(ModelError, match=rf"m\.json.*{message}"):
         LearnedSolver(model=path)
 

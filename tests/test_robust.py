@@ -483,10 +483,7 @@ def test_malformed_model_contract_fields_are_model_errors(tmp_path, key, value, 
     from engine.learned import LearnedSolver
     from tests.test_learned import copy_model
 
-    path = copy_model(tmp_path)
-    contract = json.loads(path.with_suffix(".json").read_text())
-    contract[key] = value
-    path.with_suffix(".json").write_text(json.dumps(contract))
+    path = copy_model(tmp_path, **{key: value})
     with pytest.raises(ModelError, match=message):
         LearnedSolver(model=path)
 

@@ -125,6 +125,18 @@ def build_demo_shot(scene, demo, mesh_io, spacing, frame_end, cache_dir):
     return {"bounds": trough, "fill": water, "collider": boulder}
 
 
+def mesh_triangles(mesh):
+    """A mesh's vertex positions ((V, 3) float64, its own space) and loop triangles ((T, 3) int32 vertex indices)."""
+    import numpy as np
+
+    positions = np.empty(len(mesh.vertices) * 3, np.float32)
+    mesh.attributes["position"].data.foreach_get("vector", positions)
+    mesh.calc_loop_triangles()
+    triangles = np.empty(len(mesh.loop_triangles) * 3, np.int32)
+    mesh.loop_triangles.foreach_get("vertices", triangles)
+    return positions.reshape(-1, 3).astype(np.float64), triangles.reshape(-1, 3)
+
+
 def surface_stats(obj, particles, spacing):
     """The evaluated liquid surface of ``obj`` at the current frame, as one row of surface.json.
 
@@ -139,13 +151,8 @@ def surface_stats(obj, particles, spacing):
     evaluated = obj.evaluated_get(bpy.context.evaluated_depsgraph_get())
     mesh = evaluated.to_mesh()
     count = len(mesh.vertices)
-    positions = np.empty(count * 3, np.float32)
-    mesh.attributes["position"].data.foreach_get("vector", positions)
-    positions = positions.reshape(-1, 3).astype(np.float64)
-    mesh.calc_loop_triangles()
-    triangles = np.empty(len(mesh.loop_triangles) * 3, np.int32)
-    mesh.loop_triangles.foreach_get("vertices", triangles)
-    corners = positions[triangles.reshape(-1, 3)]
+    positions, triangles = mesh_triangles(mesh)
+    corners = positions[triangles]
     volume = float(np.einsum("ij,ij->i", corners[:, 0], np.cross(corners[:, 1], corners[:, 2])).sum() / 6.0)
     edges = np.empty(len(mesh.edges) * 2, np.int32)
     mesh.edges.foreach_get("vertices", edges)

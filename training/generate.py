@@ -38,6 +38,7 @@ from pathlib import Path
 from engine.bake import bake
 from engine.cache import open_cache, write_atomic
 from engine.errors import SplashdraftError
+from engine.farm import add_where_options
 from engine.scene import save_scene
 
 from . import scenes
@@ -213,13 +214,11 @@ def main(argv=None):
                         "takes learned steps of one or more frames).")
     parser.add_argument("--duration", type=float, default=None,
                         help="Override the shot length in seconds (default 2 s training, 10 s held-out).")
-    where = parser.add_mutually_exclusive_group()
-    where.add_argument("--workers", type=int, default=None, metavar="N",
-                       help="Bake the shots on a local Dask cluster of N worker processes (default: bake here, "
-                       "one shot after another).")
-    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                       help="Bake the shots on the Dask scheduler at ADDRESS (e.g. tcp://farm:8786); --out must be "
-                       "on storage every worker sees at the same path, and the repository on their PYTHONPATH.")
+    add_where_options(
+        parser,
+        "Bake the shots on a local Dask cluster of N worker processes (default: bake here, one shot after another).",
+        "Bake the shots on the Dask scheduler at ADDRESS (e.g. tcp://farm:8786); --out must be "
+        "on storage every worker sees at the same path, and the repository on their PYTHONPATH.")
     args = parser.parse_args(argv)
     if args.workers is not None and args.workers < 0:
         print(f"error: --workers {args.workers}: give a positive count, or leave it out to bake here", file=sys.stderr)

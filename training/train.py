@@ -143,6 +143,14 @@ def export(model, run, name, sample_inputs, config, stats, training_info):
     return onnx_path, check
 
 
+def train_on_pool(model, optimiser, pool, config, stats, rng, batch, noise):
+    """Pick ``batch`` (shot, k, stride) entries of ``pool`` at random (with replacement), normalise them with
+    ``noise`` and take one ``train_step``. Returns (the loss or None, the samples)."""
+    picks = rng.integers(0, len(pool), batch)
+    samples = [_normalised_sample(*pool[i], config, stats, rng, noise) for i in picks]
+    return train_step(model, optimiser, samples), samples
+
+
 def train_step(model, optimiser, samples):
     """One optimiser step on a batch of (normalised inputs, target, mask) samples: the mean squared
     error over the masked particles, gradients clipped to norm 1. Returns the loss, or None when no
@@ -270,9 +278,7 @@ def train(data, out, resume=False, overrides=None, minutes=None, export_to=None,
             break
         for group in optimiser.param_groups:
             group["lr"] = config["lr"] * decay**iteration
-        picks = rng.integers(0, len(pool), config["batch"])
-        samples = [_normalised_sample(*pool[i], config, stats, rng, config["noise"]) for i in picks]
-        loss = train_step(model, optimiser, samples)
+        loss, samples = train_on_pool(model, optimiser, pool, config, stats, rng, config["batch"], config["noise"])
         iteration += 1
         if loss is None:
             continue

@@ -185,7 +185,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
 
         raise DependencyError("fine-tuning needs PyTorch, which is not installed; run "
                               "pip install -r requirements-train.txt (CPU build, about 200 MB)") from None  # fmt: skip
-    from .train import _normalised_sample, _save_torch, export, train_step
+    from .train import _normalised_sample, _save_torch, export, train_on_pool
 
     torch.set_num_threads(2)
     started_wall = time.monotonic()
@@ -272,9 +272,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         if minutes is not None and time.monotonic() - started > 60 * minutes:
             log(f"tune: time budget of {minutes} min reached at iteration {iteration}")
             break
-        picks = rng.integers(0, len(pool), settings["batch"])
-        samples = [_normalised_sample(*pool[i], config, stats, rng, settings["noise"]) for i in picks]
-        loss = train_step(model, optimiser, samples)
+        loss, _ = train_on_pool(model, optimiser, pool, config, stats, rng, settings["batch"], settings["noise"])
         iteration += 1
         if loss is None:
             continue
