@@ -51,7 +51,7 @@ from ..errors import ModelError, SolverError
 from . import features
 from .contract import default_model_path, load_contract
 from .relax import relax_density
-from .viscosity import APPLICATIONS, pass_coefficient, reference_substeps, smooth_velocities
+from .viscosity import reference_substeps, smooth_velocities, smoothing_plan
 from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
 
 PREVIOUS_VELOCITY = "learned_previous_velocity"
@@ -157,7 +157,7 @@ class LearnedSolver:
         trained step range are taken as one short step (``step_plan``).
         """
         warnings = []
-        trained = self.contract.get("training", {}).get("viscosity_range") or [0.02, 0.02]
+        trained = self.trained_viscosity_range()
         viscosity = float(world.viscosity)
         name = self.contract["name"]
         if viscosity > trained[1] + 1e-12:
@@ -245,16 +245,16 @@ class LearnedSolver:
                 accelerations, graph = self.step_acceleration(state, world, units, t_next - t, timings)
                 truncated += graph.truncated_rows
                 positions, velocities = features.integrate(state.positions, state.velocities, accelerations, t_next - t)
+                boundary = world.boundary_at(state.time)
                 if self.relax_iterations:
                     started = time.perf_counter()
-                    relaxed = self.relax(positions, graph, world.boundary_at(state.time), units)
+                    relaxed = self.relax(positions, graph, boundary, units)
                     velocities = velocities + (relaxed - positions) / (t_next - t)
                     positions = relaxed
                     timings["relax"] += time.perf_counter() - started
-                extra = self.viscosity_above_training(world)
+                extra = max(0.0, float(world.viscosity) - self.trained_viscosity_range()[1])
                 if extra > 0.0:
-                    velocities = self.smooth(positions, velocities, graph, world, world.boundary_at(state.time),
-                                             t_next - t, extra)
+                    velocities = self.smooth(positions, velocities, graph, world, boundary, t_next - t, extra)
                 del graph
                 if not (np.isfinite(positions).all() and np.isfinite(velocities).all()):
                     bad = int(np.flatnonzero(~np.isfinite(positions).all(axis=1) | ~np.isfinite(velocities).all(axis=1))[0])
@@ -293,10 +293,11 @@ class LearnedSolver:
         """(n, dt): n = ceil(interval / step_max) equal learned steps of dt s (see the module docstring)."""
         return step_plan(interval, self.contract["step_froude"] * units.time)
 
-    def viscosity_above_training(self, world):
-        """How far ``fluid.viscosity`` lies above the highest the model was trained at (0 if not)."""
-        trained = self.contract.get("training", {}).get("viscosity_range") or [0.02, 0.02]
-        return max(0.0, float(world.viscosity) - float(trained[1]))
+    def trained_viscosity_range(self):
+        """(low, high) ``fluid.viscosity`` of the model's training bakes (contract record; models
+        without it were trained at the scene default 0.02)."""
+        low, high = self.contract.get("training", {}).get("viscosity_range") or (0.02, 0.02)
+        return float(low), float(high)
 
     def smooth(self, positions, velocities, graph, world, boundary, step, epsilon):
         """``velocities`` after the XSPH smoothing of ``epsilon`` over a learned step (``viscosity``),
@@ -304,14 +305,14 @@ class LearnedSolver:
         solver = world.solver_settings
         substeps = reference_substeps(velocities, step, world.particle_spacing, solver.cfl_factor,
                                       solver.max_time_step)
-        passes = min(APPLICATIONS, substeps)
+        coefficient, passes = smoothing_plan(epsilon, substeps)
         d = world.particle_spacing
         wall = None
         if len(boundary.positions):
             wall = (graph.boundary_rows, boundary.positions / d, boundary.volumes / d**3, boundary.velocities,
                     graph.boundary_index, graph.boundary_mask)
         return smooth_velocities(positions / d, velocities, graph.neighbour_index,
-                                 graph.neighbour_mask, pass_coefficient(epsilon, substeps), passes,
+                                 graph.neighbour_mask, coefficient, passes,
                                  support=self.contract["density_support_spacings"], wall=wall)
 
     def relax(self, positions, graph, boundary, units):

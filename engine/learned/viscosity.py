@@ -40,12 +40,13 @@ def reference_substeps(velocities, step, spacing, cfl_factor, max_time_step):
     return max(1, math.ceil(step / reference_step - 1e-9))
 
 
-def pass_coefficient(epsilon, substeps, applications=APPLICATIONS):
-    """Per-pass XSPH coefficient for ``applications`` passes standing for ``substeps`` passes of ``epsilon``."""
+def smoothing_plan(epsilon, substeps, applications=APPLICATIONS):
+    """(coefficient, passes): ``passes`` = min(applications, substeps) XSPH passes whose per-pass
+    coefficient stands for ``substeps`` passes of ``epsilon`` (module docstring); (0, 0) for none."""
     if epsilon <= 0.0:
-        return 0.0
+        return 0.0, 0
     passes = min(applications, substeps)
-    return 1.0 - (1.0 - min(epsilon, 1.0)) ** (substeps / passes)
+    return 1.0 - (1.0 - min(epsilon, 1.0)) ** (substeps / passes), passes
 
 
 def smooth_velocities(positions, velocities, neighbour_index, neighbour_mask, epsilon, passes, support=2.0,
