@@ -260,28 +260,27 @@ MARTIN_MOYCE_ETA = np.array([0.94, 0.89, 0.83, 0.78, 0.72, 0.67, 0.61, 0.56, 0.5
                              0.17, 0.11, 0.06])
 
 
-def dam_front(positions, spacing, floor, slab_layers):
-    """Surge front x (m): the ``slab_layers``-th largest x among particles within
-    1.5 spacings of the floor, plus half a spacing (a particle's extent).
+def _row_edge(positions, spacing, near_axis, plane, along_axis, slab_layers, empty):
+    """Among particles within 1.5 spacings of ``plane`` on ``near_axis``, the ``slab_layers``-th
+    largest coordinate on ``along_axis`` plus half a spacing (a particle's extent); ``empty`` if none.
 
     Taking the row-th largest instead of the maximum needs a full row across the
-    slab to have arrived, so one stray droplet does not move the front.
+    slab to have arrived, so one stray droplet does not move the edge.
     """
-    near = positions[:, 2] < floor + 1.5 * spacing
-    xs = np.sort(positions[near, 0])
-    if len(xs) == 0:
-        return float("nan")
-    return float(xs[max(0, len(xs) - slab_layers)] + 0.5 * spacing)
+    values = np.sort(positions[positions[:, near_axis] < plane + 1.5 * spacing, along_axis])
+    if len(values) == 0:
+        return empty
+    return float(values[max(0, len(values) - slab_layers)] + 0.5 * spacing)
+
+
+def dam_front(positions, spacing, floor, slab_layers):
+    """Surge front x (m): the edge of the leading full row on the floor (``_row_edge``)."""
+    return _row_edge(positions, spacing, 2, floor, 0, slab_layers, float("nan"))
 
 
 def column_height(positions, spacing, back, slab_layers):
-    """Residual column height (m) at the back wall: the ``slab_layers``-th largest z among particles
-    within 1.5 spacings of the back wall at x = ``back``, plus half a spacing (as ``dam_front``)."""
-    near = positions[:, 0] < back + 1.5 * spacing
-    zs = np.sort(positions[near, 2])
-    if len(zs) == 0:
-        return 0.0
-    return float(zs[max(0, len(zs) - slab_layers)] + 0.5 * spacing)
+    """Residual column height (m): the top of the full row at the back wall at x = ``back`` (``_row_edge``)."""
+    return _row_edge(positions, spacing, 0, back, 2, slab_layers, 0.0)
 
 
 def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45):
