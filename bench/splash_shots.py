@@ -8,6 +8,7 @@ liquid's lattice (fill lattices are cell centres (k + 1/2) d) and an open top.
 - ``free_stream``: the same stream 1.6 m up in a tall tank, for 0.35 s: it meets nothing.
 - ``throw_wall``: a ball of water 0.24 m across thrown at 3 m/s against a tank wall.
 - ``ring_dam``: a 0.4 m water block released beside a ring-shaped obstacle.
+- ``dam_column``: a plain dam break: a 0.6 m column, 0.3 m deep, released along a 1.6 m tank.
 - ``drop_pool``: a ball dropped into a shallow pool.
 - ``thin_glass``: a ball dropped into a glass whose walls are one spacing thick.
 - ``sheet_drop``: a block falling onto a thin open sheet spanning the tank that sags (deforming collider).
@@ -23,7 +24,11 @@ from engine import mesh_io
 
 SPACING = 0.025
 GRAVITY = 9.81
-SHOTS = ("pour_steps", "free_stream", "throw_wall", "ring_dam", "drop_pool", "thin_glass", "sheet_drop")
+SHOTS = ("pour_steps", "free_stream", "throw_wall", "ring_dam", "dam_column", "drop_pool", "thin_glass", "sheet_drop")
+
+#: Shots whose liquid surges along +x over a floor at z = 0: the surge front is measured on them
+#: (``bench.eval_learned``).
+SURGE_SHOTS = ("ring_dam", "dam_column")
 
 
 def _mesh(vertices_triangles):
@@ -100,6 +105,11 @@ def shot(name, spacing=SPACING, seconds=None):
         scene["colliders"].append({"name": "ring", "mesh": _mesh(ring), "motion": "static"})
         block = mesh_io.box_mesh((0.0, 0.0, 0.0), (0.2, 0.6 - d, 0.4))
         scene["emitters"].append({"name": "block", "type": "fill", "mesh": _mesh(block)})
+        return scene
+    if name == "dam_column":
+        scene = _tank(name, (1.6, 0.3, 0.8), 1.0 if seconds is None else seconds, d)
+        column = mesh_io.box_mesh((0.0, 0.0, 0.0), (0.3, 0.3 - d, 0.6))
+        scene["emitters"].append({"name": "column", "type": "fill", "mesh": _mesh(column)})
         return scene
     if name == "drop_pool":
         scene = _tank(name, (0.6, 0.4, 0.7), 1.0 if seconds is None else seconds, d)

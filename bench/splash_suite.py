@@ -43,18 +43,19 @@ from engine.world import build_world  # noqa: E402
 from bench.splash_shots import SHOTS, SPACING, shot  # noqa: E402
 
 
-def thin_crossings(world, before, after, ids_before, ids_after, t):
+def thin_crossings(triangle_sets, before, after, ids_before, ids_after):
     """Particles whose straight path between two frames crosses a collider surface an odd number of times.
 
-    Counted with the segment-triangle test on every collider's triangles at the later time
-    (thin walls and sheets only move slowly in the suite, so the later surface stands for both).
+    Counted with the segment-triangle test on each (T, 3, 3) array of ``triangle_sets``: the
+    colliders at the later time (thin walls and sheets only move slowly in the suite, so the
+    later surface stands for both).
     """
     common, ia, ib = np.intersect1d(ids_before, ids_after, return_indices=True)
     if len(common) == 0:
         return 0
     p0, p1 = before[ia], after[ib]
     crossings = np.zeros(len(common), np.int64)
-    for _, triangles in world.collider_triangles_at(t):
+    for triangles in triangle_sets:
         crossings += _segment_hits(p0, p1, triangles)
     return int(np.count_nonzero(crossings % 2))
 
@@ -109,7 +110,8 @@ def run_shot(name, spacing=SPACING, seconds=None, solver=None):
         iterations += stats.iterations
         unconverged += getattr(stats, "unconverged_substeps", 0)
         if world.colliders:
-            crossings += thin_crossings(world, before, state.positions, ids_before, state.ids, state.time)
+            triangles = [corners for _, corners in world.collider_triangles_at(state.time)]
+            crossings += thin_crossings(triangles, before, state.positions, ids_before, state.ids)
         audit = energy.frame_audit(state, world, top)
         supplied = start_energy + audit["emitted_j"]
         if supplied > 0:
