@@ -3,19 +3,21 @@
 Reads the role of every object (``Object.splashdraft.role``), samples the
 evaluated world-space triangles of the role objects, decides each one's
 motion (``motion.classify_motion``) and writes, into ``<version>/input/``:
-``scene.json``, ``meshes/<name>.obj`` (world space at the first frame, metres)
-and, for moving objects, ``meshes/<name>_transforms.npz`` (``matrices``,
-(F, 4, 4)) or ``meshes/<name>_vertices.npz`` (``vertices``, (F, V, 3)).
+``meshes/<name>.obj`` (world space at the first frame, metres), for moving
+objects ``meshes/<name>_transforms.npz`` (``matrices``, (F, 4, 4)) or
+``meshes/<name>_vertices.npz`` (``vertices``, (F, V, 3)), and last
+``scene.json`` through the engine's own writer (``engine.scene.save_scene``),
+which validates the whole scene here, in Blender's Python, before any worker starts.
 """
 
-import json
 from pathlib import Path
+from typing import NamedTuple
 
 import bpy
 import numpy as np
 
 from ..engine.boundary import FACE_NAMES
-from ..engine.scene import FORMAT, VERSION, Fluid
+from ..engine.scene import FORMAT, VERSION, Scene, save_scene
 from . import motion
 from .errors_ui import AddonError
 from .versions import SCENE_FILE, safe_name
@@ -166,19 +168,29 @@ def _box_bounds(box, entry, scale) -> dict:
             "faces": {name: getattr(box.splashdraft, f"face_{name}") for name in FACE_NAMES}}
 
 
-def build_scene(scene, input_dir) -> tuple[Path, dict]:
-    """Write the scene file and meshes of ``scene``'s shot into ``input_dir``.
+class Export(NamedTuple):
+    """What ``build_scene`` wrote: the scene file, the dict written to it, and the engine's validated Scene."""
+
+    path: Path
+    data: dict
+    scene: Scene
+
+
+def build_scene(scene, input_dir) -> Export:
+    """Write the scene file and meshes of ``scene``'s shot into ``input_dir`` and validate them with the engine.
 
     Args:
         scene: the bpy Scene with ``splashdraft`` settings and role objects.
         input_dir: folder to create (``<version>/input``).
 
     Returns:
-        (Path of scene.json, the scene dict).
+        Export: the path of scene.json, the scene dict and the engine's Scene loaded from the file.
 
     Raises:
         AddonError naming the object or setting at fault (no fill or source, no bounds,
         a deforming source, changing topology).
+        SceneError / MeshError (engine): the engine's validation refuses the exported scene
+        (e.g. an open fill mesh, a source faster than the solver can follow).
     """
     shot = scene.splashdraft
     scale = float(scene.unit_settings.scale_length) or 1.0
@@ -271,12 +283,11 @@ def build_scene(scene, input_dir) -> tuple[Path, dict]:
         "particle_spacing": spacing,
         "seed": int(shot.seed),
         "gravity": [float(g) for g in shot.gravity],
-        "fluid": {"rest_density": Fluid.rest_density, "viscosity": float(shot.viscosity)},
+        "fluid": {"viscosity": float(shot.viscosity)},
         "bounds": bounds,
         "budget": {"max_particles": int(shot.max_particles)},
         "emitters": emitters,
         "colliders": colliders,
     }
     scene_path = input_dir / SCENE_FILE
-    scene_path.write_text(json.dumps(data, indent=1) + "\n", encoding="utf-8")
-    return scene_path, data
+    return Export(scene_path, data, save_scene(scene_path, data))

@@ -25,6 +25,7 @@ import json
 import os
 import re
 from pathlib import Path
+from typing import Optional
 
 import numpy as np
 
@@ -294,6 +295,30 @@ def _load_manifest(folder):
         raise CacheError(f"{path}: no manifest; {folder} is not a bake folder (bake into it first)")
     manifest = read_json(path, CacheError, "manifest", "bake the cache again")
     return validate_manifest(manifest, path)
+
+
+def read_manifest(folder) -> dict:
+    """The validated manifest of the bake folder ``folder`` (see ``validate_manifest``).
+
+    Raises:
+        CacheError naming the file and what is wrong: no manifest, unreadable JSON, a bad field.
+    """
+    return _load_manifest(folder)
+
+
+def manifest_or_problem(folder) -> tuple[Optional[dict], Optional[str]]:
+    """``read_manifest`` for listings that must show every bake folder, finished, running or damaged.
+
+    Returns:
+        (manifest, None) when the manifest reads and validates; (None, None) when there is no manifest
+        yet (a bake that has not finished its first frame); else (None, the CacheError's message).
+    """
+    if not (Path(folder) / MANIFEST_NAME).exists():
+        return None, None
+    try:
+        return _load_manifest(folder), None
+    except CacheError as exc:
+        return None, str(exc)
 
 
 def validate_manifest(manifest, path):
