@@ -25,7 +25,7 @@ from .versions import SCENE_FILE, safe_name
 MESH_FOLDER = "meshes"
 
 
-def role_objects(scene):
+def role_objects(scene) -> dict:
     """Objects of the scene with a role, grouped: {"FILL": [...], "STREAM": [...], "COLLIDER": [...], "BOUNDS": [...]}."""
     groups = {"FILL": [], "STREAM": [], "COLLIDER": [], "BOUNDS": []}
     for obj in scene.objects:
@@ -37,7 +37,7 @@ def role_objects(scene):
     return groups
 
 
-def may_move(obj):
+def may_move(obj) -> bool:
     """True if anything on the object could move or deform it over time.
 
     Looks at animation data (actions, drivers), constraints, modifiers, shape
@@ -64,7 +64,7 @@ def may_move(obj):
     return False
 
 
-def evaluated_geometry(obj, depsgraph):
+def evaluated_geometry(obj, depsgraph) -> tuple:
     """Object-space vertices (V, 3) float32, triangles (T, 3) int32 and world matrix (4, 4) of the evaluated object.
 
     Raises:
@@ -90,7 +90,7 @@ def evaluated_geometry(obj, depsgraph):
     return vertices.reshape(-1, 3), triangles.reshape(-1, 3), matrix
 
 
-def sample_objects(scene, objects, frames):
+def sample_objects(scene, objects, frames) -> dict:
     """Sample every object on every frame of ``frames``.
 
     Returns:
@@ -127,7 +127,7 @@ def sample_objects(scene, objects, frames):
     return samples
 
 
-def shot_fps(scene):
+def shot_fps(scene) -> float:
     fps = scene.render.fps / scene.render.fps_base
     return int(fps) if float(fps).is_integer() else float(fps)
 

@@ -10,6 +10,7 @@ engine's wedge layout (``wedge.json``, one cache folder per variant); each varia
 
 import re
 from pathlib import Path
+from typing import Optional
 
 from ..engine.cache import manifest_or_problem
 from ..engine.errors import CacheError
@@ -22,13 +23,13 @@ INPUT_FOLDER = "input"
 SCENE_FILE = "scene.json"
 
 
-def safe_name(text, fallback="shot"):
+def safe_name(text, fallback="shot") -> str:
     """``text`` reduced to letters, digits, ``_`` and ``-`` (for folder and file names)."""
     cleaned = re.sub(r"[^A-Za-z0-9_-]+", "_", str(text)).strip("_")
     return cleaned or fallback
 
 
-def list_versions(shot_dir):
+def list_versions(shot_dir) -> list:
     """Version folders of a shot, oldest first; a wedge folder lists one version per variant.
 
     Returns:
@@ -57,7 +58,7 @@ def list_versions(shot_dir):
     return found
 
 
-def wedge_variants(folder):
+def wedge_variants(folder) -> Optional[list]:
     """[(variant name, solver)] of the wedge manifest in ``folder`` (engine/wedge.py layout), or None."""
     path = Path(folder) / WEDGE_MANIFEST
     if not path.is_file():
@@ -89,7 +90,7 @@ def _version_info(name, number, solver, path) -> dict:
     return info
 
 
-def next_version_dir(shot_dir, solver):
+def next_version_dir(shot_dir, solver) -> Path:
     """Path of the next version folder (not created): one past the highest number present."""
     numbers = [item["number"] for item in list_versions(shot_dir)]
     return Path(shot_dir) / f"v{(max(numbers) + 1) if numbers else 1:03d}_{safe_name(solver).lower()}"

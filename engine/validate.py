@@ -19,7 +19,7 @@ import time
 
 import numpy as np
 
-from .boundary import make_boundary, sample_box_walls
+from .boundary import BoundaryParticles, make_boundary, sample_box_walls
 from .errors import SplashdraftError
 from .particle_model import particle_mass, support_radius
 from .scene import DEFAULT_GRAVITY, Fluid, SolverSettings
@@ -60,22 +60,22 @@ class BoxWorld:
         self._velocities = np.asarray(velocities, np.float64)
         self._boundary = boundary
 
-    def initial_state(self):
+    def initial_state(self) -> State:
         n = len(self._positions)
         return State(time=0.0, positions=self._positions.copy(), velocities=self._velocities.copy(),
                      ids=np.arange(n, dtype=np.int64), next_id=n)
 
-    def emit(self, state, t0, t1):
+    def emit(self, state, t0, t1) -> State:
         return state
 
-    def boundary_at(self, t):
+    def boundary_at(self, t) -> BoundaryParticles:
         return self._boundary
 
-    def enforce_bounds(self, state, previous=None):
+    def enforce_bounds(self, state, previous=None) -> State:
         return state
 
 
-def lattice(counts, spacing, origin):
+def lattice(counts, spacing, origin) -> np.ndarray:
     """(prod(counts), 3) cubic lattice points origin + spacing * (i, j, k), ordered x-major."""
     axes = [np.arange(c) for c in counts]
     idx = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, 3)
@@ -306,17 +306,17 @@ def _row_edge(positions, spacing, near_axis, plane, along_axis, slab_layers, emp
     return float(values[max(0, len(values) - slab_layers)] + 0.5 * spacing)
 
 
-def dam_front(positions, spacing, floor, slab_layers):
+def dam_front(positions, spacing, floor, slab_layers) -> float:
     """Surge front x (m): the edge of the leading full row on the floor (``_row_edge``)."""
     return _row_edge(positions, spacing, 2, floor, 0, slab_layers, float("nan"))
 
 
-def column_height(positions, spacing, back, slab_layers):
+def column_height(positions, spacing, back, slab_layers) -> float:
     """Residual column height (m): the top of the full row at the back wall at x = ``back`` (``_row_edge``)."""
     return _row_edge(positions, spacing, 0, back, 2, slab_layers, 0.0)
 
 
-def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45):
+def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45) -> dict:
     """Martin & Moyce 1952 dam break, n^2 = 2, a = 0.05715 m, in a thin 3D slab.
 
     Set-up: fluid block of width a (x) and height 2a (z), ``across`` particles over
@@ -425,7 +425,8 @@ def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45):
 
 
 
-def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01, amplitude=0.01, periods=3.0):
+def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01, amplitude=0.01,
+             periods=3.0) -> dict:
     """First sloshing mode of a rectangular tank: its period against linear theory.
 
     Linear surface-wave dispersion (Airy theory; Lamb 1932, "Hydrodynamics", ch. IX [M];
@@ -531,7 +532,7 @@ def _fit_damped_period(times, signal, guess):
     return float(abs(fitted[3])), float(fitted[2])
 
 
-def run_case(name, progress=None):
+def run_case(name, progress=None) -> dict:
     """Run validation case ``name`` (one of ``CASES``) and return its result dict.
 
     Raises:

@@ -31,6 +31,7 @@ import shutil
 import sys
 import time
 from pathlib import Path
+from typing import Optional
 
 import numpy as np
 
@@ -85,19 +86,19 @@ def _normalised_sample(shot, k, stride, config, stats, rng, noise):
     return inputs, target, mask
 
 
-def sample_pool(shots, strides):
+def sample_pool(shots, strides) -> list:
     """[(shot, frame position, stride)] of every usable sample."""
     return [(s, k, stride) for s in shots for stride in strides for k in s.sample_indices(stride)]
 
 
-def compute_statistics(shots, config, rng):
+def compute_statistics(shots, config, rng) -> dict:
     pool = sample_pool(shots, config["strides"])
     picks = rng.choice(len(pool), size=min(config["statistics_samples"], len(pool)), replace=False)
     samples = [dataset.make_sample(pool[i][0], pool[i][1], config, stride=pool[i][2]) for i in picks]
     return dataset.feature_statistics(samples)
 
 
-def plot_losses(history, path):
+def plot_losses(history, path) -> None:
     series = [("train", [h[0] for h in history["train"]], [h[1] for h in history["train"]])]
     if history["validation"]:
         series.append(("validation", [h[0] for h in history["validation"]], [h[1] for h in history["validation"]]))
@@ -111,7 +112,7 @@ def plot_losses(history, path):
     line_plot_png(series, path, log_y=True, x_label="iteration", y_label="mse")
 
 
-def export(model, run, name, sample_inputs, config, stats, training_info):
+def export(model, run, name, sample_inputs, config, stats, training_info) -> tuple:
     """Export ONNX + contract into ``run``; check onnxruntime vs PyTorch; return (onnx path, check dict)."""
     import torch
 
@@ -144,7 +145,7 @@ def export(model, run, name, sample_inputs, config, stats, training_info):
     return onnx_path, check
 
 
-def train_on_pool(model, optimiser, pool, config, stats, rng, batch, noise):
+def train_on_pool(model, optimiser, pool, config, stats, rng, batch, noise) -> tuple:
     """Pick ``batch`` (shot, k, stride) entries of ``pool`` at random (with replacement), normalise them with
     ``noise`` and take one ``train_step``. Returns (the loss or None, the samples)."""
     picks = rng.integers(0, len(pool), batch)
@@ -152,7 +153,7 @@ def train_on_pool(model, optimiser, pool, config, stats, rng, batch, noise):
     return train_step(model, optimiser, samples), samples
 
 
-def train_step(model, optimiser, samples):
+def train_step(model, optimiser, samples) -> Optional[float]:
     """One optimiser step on a batch of (normalised inputs, target, mask) samples: the mean squared
     error over the masked particles, gradients clipped to norm 1. Returns the loss, or None when no
     particle in the batch has a target."""
@@ -406,7 +407,7 @@ def _copy_model(onnx_path, target) -> str:
     return str(target.with_suffix(".onnx"))
 
 
-def main(argv=None):
+def main(argv=None) -> int:
     parser = argparse.ArgumentParser(prog="python -m training.train",
                                      description="Train the learned core on baked shots and export it to ONNX.")
     parser.add_argument("--data", default="data/train", help="Data folder from training.generate (default data/train).")
