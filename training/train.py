@@ -324,21 +324,28 @@ def _validation_samples(validation_shots, config, stats) -> list:
     return validation
 
 
-def _validation_loss(model, validation) -> float:
-    """Mean squared error of ``model`` over the validation samples' masked particles and components."""
+def masked_mse(model, samples) -> float:
+    """Mean squared error of ``model`` over the (normalised inputs, target, mask) ``samples``: every
+    component of every particle with a target, without gradients (the model's mode is left as it is)."""
     import torch
 
     from .model import as_tensors
 
-    model.eval()
     total, count = 0.0, 0
     with torch.no_grad():
-        for inputs, target, mask in validation:
+        for inputs, target, mask in samples:
             out = model(*as_tensors(inputs)).numpy()
             total += float(((out - target)[mask] ** 2).sum())
             count += int(mask.sum()) * 3
-    model.train()
     return total / max(count, 1)
+
+
+def _validation_loss(model, validation) -> float:
+    """``masked_mse`` over the validation samples, in evaluation mode; the model is left in training mode."""
+    model.eval()
+    loss = masked_mse(model, validation)
+    model.train()
+    return loss
 
 
 def _fit(session, pool, validation, config, stats, minutes, save_checkpoint, log) -> list:
