@@ -196,84 +196,14 @@ def build_scene(scene, input_dir) -> Export:
     scale = float(scene.unit_settings.scale_length) or 1.0
     groups = role_objects(scene)
     frame_start, frame_end = _checked_shot(scene, groups)
-    frames = list(range(frame_start, frame_end + 1))
-
     input_dir = Path(input_dir)
     mesh_dir = input_dir / MESH_FOLDER
     mesh_dir.mkdir(parents=True, exist_ok=True)
-
-    everyone = [o for objs in groups.values() for o in objs]
-    moving = [o for o in groups["STREAM"] + groups["COLLIDER"] if may_move(o)]
-    moving_names = {o.name for o in moving}
-    still = [o for o in everyone if o.name not in moving_names]
-    samples = sample_objects(scene, still, [frame_start])
-    samples.update(sample_objects(scene, moving, frames))
-
-    used = set()
-
-    def write_mesh(obj):
-        entry = samples[obj.name]
-        stem = _unique_stem(obj.name, used)
-        world0 = motion.world_vertices(entry["local"][0], entry["matrices"][0]) * scale
-        motion.write_obj(mesh_dir / f"{stem}.obj", world0, entry["triangles"], name=stem)
-        return stem, f"{MESH_FOLDER}/{stem}.obj"
-
-    def motion_of(obj):
-        entry = samples[obj.name]
-        if len(entry["local"]) < 2:
-            return "static"
-        return motion.classify_motion(entry["local"], entry["matrices"])
-
-    def write_transforms(obj, stem):
-        matrices = motion.relative_matrices(samples[obj.name]["matrices"], scale)
-        np.savez(mesh_dir / f"{stem}_transforms.npz", matrices=matrices)
-        return f"{MESH_FOLDER}/{stem}_transforms.npz"
-
-    def write_vertices(obj, stem):
-        entry = samples[obj.name]
-        world = np.stack([motion.world_vertices(v, m) for v, m in zip(entry["local"], entry["matrices"])]) * scale
-        np.savez(mesh_dir / f"{stem}_vertices.npz", vertices=world.astype(np.float32))
-        return f"{MESH_FOLDER}/{stem}_vertices.npz"
-
-    emitters = []
-    for obj in groups["FILL"]:
-        _, path = write_mesh(obj)
-        settings = obj.splashdraft
-        emitters.append({"name": obj.name, "type": "fill", "mesh": path,
-                         "velocity": [float(v) * scale for v in settings.fill_velocity],
-                         "jitter": float(settings.fill_jitter)})
-    for obj in groups["STREAM"]:
-        stem, path = write_mesh(obj)
-        settings = obj.splashdraft
-        direction = np.array(settings.stream_direction, np.float64)
-        if np.linalg.norm(direction) < 1e-9:
-            raise AddonError(f'liquid source "{obj.name}": direction is zero; set a Direction')
-        kind = motion_of(obj)
-        if kind == "deforming":
-            raise AddonError(f'liquid source "{obj.name}": its shape changes over the shot (modifiers or shape keys); '
-                             "a source may only move rigidly: animate its transform instead")
-        start, end = (settings.stream_frame_start, settings.stream_frame_end) if settings.use_stream_frames \
-            else (frame_start, frame_end)
-        if end < start:
-            raise AddonError(f'liquid source "{obj.name}": frame range {start}..{end} is empty; set Until after From')
-        emitters.append({"name": obj.name, "type": "stream", "shape": "mesh", "mesh": path,
-                         "direction": (direction / np.linalg.norm(direction)).tolist(),
-                         "speed": float(settings.stream_speed) * scale,
-                         "frame_start": int(start), "frame_end": int(end),
-                         "transforms": write_transforms(obj, stem) if kind == "rigid" else None})
-    colliders = []
-    for obj in groups["COLLIDER"]:
-        stem, path = write_mesh(obj)
-        kind = motion_of(obj)
-        entry = {"name": obj.name, "mesh": path, "motion": kind, "friction": float(obj.splashdraft.friction)}
-        if kind == "rigid":
-            entry["transforms"] = write_transforms(obj, stem)
-        elif kind == "deforming":
-            entry["vertices"] = write_vertices(obj, stem)
-        colliders.append(entry)
-
+    files = _MeshFiles(mesh_dir, _sample_roles(scene, groups, frame_start, frame_end), scale)
+    emitters = _emitters(groups, files, frame_start, frame_end, scale)
+    colliders = _colliders(groups, files)
     box = groups["BOUNDS"][0]
-    bounds = _box_bounds(box, samples[box.name], scale)
+    bounds = _box_bounds(box, files.samples[box.name], scale)
 
     spacing = float(shot.particle_spacing) * scale
     data = {
@@ -291,3 +221,102 @@ def build_scene(scene, input_dir) -> Export:
     }
     scene_path = input_dir / SCENE_FILE
     return Export(scene_path, data, save_scene(scene_path, data))
+
+
+def _sample_roles(scene, groups, frame_start, frame_end) -> dict:
+    """``sample_objects`` of every role object: once at the first frame, or on every frame for a source
+    or collider that may move (``may_move``)."""
+    everyone = [o for objs in groups.values() for o in objs]
+    moving = [o for o in groups["STREAM"] + groups["COLLIDER"] if may_move(o)]
+    moving_names = {o.name for o in moving}
+    still = [o for o in everyone if o.name not in moving_names]
+    samples = sample_objects(scene, still, [frame_start])
+    samples.update(sample_objects(scene, moving, list(range(frame_start, frame_end + 1))))
+    return samples
+
+
+class _MeshFiles:
+    """Writes sampled objects into ``meshes/`` (world space, metres, a unique file stem each) and
+    returns the paths as the scene file names them (relative to the scene file)."""
+
+    def __init__(self, mesh_dir, samples, scale):
+        self.mesh_dir, self.samples, self.scale = mesh_dir, samples, scale
+        self.used = set()
+
+    def mesh(self, obj) -> tuple[str, str]:
+        """(stem, path) of the object's OBJ file at the first frame."""
+        entry = self.samples[obj.name]
+        stem = _unique_stem(obj.name, self.used)
+        world0 = motion.world_vertices(entry["local"][0], entry["matrices"][0]) * self.scale
+        motion.write_obj(self.mesh_dir / f"{stem}.obj", world0, entry["triangles"], name=stem)
+        return stem, f"{MESH_FOLDER}/{stem}.obj"
+
+    def motion_of(self, obj) -> str:
+        """The object's motion over the shot, static, rigid or deforming (``motion.classify_motion``)."""
+        entry = self.samples[obj.name]
+        if len(entry["local"]) < 2:
+            return "static"
+        return motion.classify_motion(entry["local"], entry["matrices"])
+
+    def transforms(self, obj, stem) -> str:
+        """Path of the object's per-frame rigid transforms (relative to the first frame)."""
+        matrices = motion.relative_matrices(self.samples[obj.name]["matrices"], self.scale)
+        np.savez(self.mesh_dir / f"{stem}_transforms.npz", matrices=matrices)
+        return f"{MESH_FOLDER}/{stem}_transforms.npz"
+
+    def vertices(self, obj, stem) -> str:
+        """Path of the object's per-frame world-space vertices."""
+        entry = self.samples[obj.name]
+        world = np.stack([motion.world_vertices(v, m) for v, m in zip(entry["local"], entry["matrices"])])
+        np.savez(self.mesh_dir / f"{stem}_vertices.npz", vertices=(world * self.scale).astype(np.float32))
+        return f"{MESH_FOLDER}/{stem}_vertices.npz"
+
+
+def _emitters(groups, files, frame_start, frame_end, scale) -> list:
+    """The scene file's "emitters": every liquid fill, then every liquid source (meshes written by ``files``).
+
+    Raises:
+        AddonError: a source with a zero direction, an empty frame range, or a changing shape.
+    """
+    emitters = []
+    for obj in groups["FILL"]:
+        _, path = files.mesh(obj)
+        settings = obj.splashdraft
+        emitters.append({"name": obj.name, "type": "fill", "mesh": path,
+                         "velocity": [float(v) * scale for v in settings.fill_velocity],
+                         "jitter": float(settings.fill_jitter)})
+    for obj in groups["STREAM"]:
+        stem, path = files.mesh(obj)
+        settings = obj.splashdraft
+        direction = np.array(settings.stream_direction, np.float64)
+        if np.linalg.norm(direction) < 1e-9:
+            raise AddonError(f'liquid source "{obj.name}": direction is zero; set a Direction')
+        kind = files.motion_of(obj)
+        if kind == "deforming":
+            raise AddonError(f'liquid source "{obj.name}": its shape changes over the shot (modifiers or shape keys); '
+                             "a source may only move rigidly: animate its transform instead")
+        start, end = (settings.stream_frame_start, settings.stream_frame_end) if settings.use_stream_frames \
+            else (frame_start, frame_end)
+        if end < start:
+            raise AddonError(f'liquid source "{obj.name}": frame range {start}..{end} is empty; set Until after From')
+        emitters.append({"name": obj.name, "type": "stream", "shape": "mesh", "mesh": path,
+                         "direction": (direction / np.linalg.norm(direction)).tolist(),
+                         "speed": float(settings.stream_speed) * scale,
+                         "frame_start": int(start), "frame_end": int(end),
+                         "transforms": files.transforms(obj, stem) if kind == "rigid" else None})
+    return emitters
+
+
+def _colliders(groups, files) -> list:
+    """The scene file's "colliders", each with its motion (meshes and motion arrays written by ``files``)."""
+    colliders = []
+    for obj in groups["COLLIDER"]:
+        stem, path = files.mesh(obj)
+        kind = files.motion_of(obj)
+        entry = {"name": obj.name, "mesh": path, "motion": kind, "friction": float(obj.splashdraft.friction)}
+        if kind == "rigid":
+            entry["transforms"] = files.transforms(obj, stem)
+        elif kind == "deforming":
+            entry["vertices"] = files.vertices(obj, stem)
+        colliders.append(entry)
+    return colliders
