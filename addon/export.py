@@ -3,19 +3,21 @@
 Reads the role of every object (``Object.splashdraft.role``), samples the
 evaluated world-space triangles of the role objects, decides each one's
 motion (``motion.classify_motion``) and writes, into ``<version>/input/``:
-``scene.json``, ``meshes/<name>.obj`` (world space at the first frame, metres)
-and, for moving objects, ``meshes/<name>_transforms.npz`` (``matrices``,
-(F, 4, 4)) or ``meshes/<name>_vertices.npz`` (``vertices``, (F, V, 3)).
+``meshes/<name>.obj`` (world space at the first frame, metres), for moving
+objects ``meshes/<name>_transforms.npz`` (``matrices``, (F, 4, 4)) or
+``meshes/<name>_vertices.npz`` (``vertices``, (F, V, 3)), and last
+``scene.json`` through the engine's own writer (``engine.scene.save_scene``),
+which validates the whole scene here, in Blender's Python, before any worker starts.
 """
 
-import json
 from pathlib import Path
+from typing import NamedTuple
 
 import bpy
 import numpy as np
 
 from ..engine.boundary import FACE_NAMES
-from ..engine.scene import FORMAT, VERSION, Fluid
+from ..engine.scene import FORMAT, VERSION, Scene, save_scene
 from . import motion
 from .errors_ui import AddonError
 from .versions import SCENE_FILE, safe_name
@@ -23,7 +25,7 @@ from .versions import SCENE_FILE, safe_name
 MESH_FOLDER = "meshes"
 
 
-def role_objects(scene):
+def role_objects(scene) -> dict:
     """Objects of the scene with a role, grouped: {"FILL": [...], "STREAM": [...], "COLLIDER": [...], "BOUNDS": [...]}."""
     groups = {"FILL": [], "STREAM": [], "COLLIDER": [], "BOUNDS": []}
     for obj in scene.objects:
@@ -35,7 +37,7 @@ def role_objects(scene):
     return groups
 
 
-def may_move(obj):
+def may_move(obj) -> bool:
     """True if anything on the object could move or deform it over time.
 
     Looks at animation data (actions, drivers), constraints, modifiers, shape
@@ -62,7 +64,7 @@ def may_move(obj):
     return False
 
 
-def evaluated_geometry(obj, depsgraph):
+def evaluated_geometry(obj, depsgraph) -> tuple:
     """Object-space vertices (V, 3) float32, triangles (T, 3) int32 and world matrix (4, 4) of the evaluated object.
 
     Raises:
@@ -88,7 +90,7 @@ def evaluated_geometry(obj, depsgraph):
     return vertices.reshape(-1, 3), triangles.reshape(-1, 3), matrix
 
 
-def sample_objects(scene, objects, frames):
+def sample_objects(scene, objects, frames) -> dict:
     """Sample every object on every frame of ``frames``.
 
     Returns:
@@ -125,7 +127,7 @@ def sample_objects(scene, objects, frames):
     return samples
 
 
-def shot_fps(scene):
+def shot_fps(scene) -> float:
     fps = scene.render.fps / scene.render.fps_base
     return int(fps) if float(fps).is_integer() else float(fps)
 
@@ -166,77 +168,130 @@ def _box_bounds(box, entry, scale) -> dict:
             "faces": {name: getattr(box.splashdraft, f"face_{name}") for name in FACE_NAMES}}
 
 
-def build_scene(scene, input_dir) -> tuple[Path, dict]:
-    """Write the scene file and meshes of ``scene``'s shot into ``input_dir``.
+class Export(NamedTuple):
+    """What ``build_scene`` wrote: the scene file, the dict written to it, and the engine's validated Scene."""
+
+    path: Path
+    data: dict
+    scene: Scene
+
+
+def build_scene(scene, input_dir) -> Export:
+    """Write the scene file and meshes of ``scene``'s shot into ``input_dir`` and validate them with the engine.
 
     Args:
         scene: the bpy Scene with ``splashdraft`` settings and role objects.
         input_dir: folder to create (``<version>/input``).
 
     Returns:
-        (Path of scene.json, the scene dict).
+        Export: the path of scene.json, the scene dict and the engine's Scene loaded from the file.
 
     Raises:
         AddonError naming the object or setting at fault (no fill or source, no bounds,
         a deforming source, changing topology).
+        SceneError / MeshError (engine): the engine's validation refuses the exported scene
+        (e.g. an open fill mesh, a source faster than the solver can follow).
     """
     shot = scene.splashdraft
     scale = float(scene.unit_settings.scale_length) or 1.0
     groups = role_objects(scene)
     frame_start, frame_end = _checked_shot(scene, groups)
-    frames = list(range(frame_start, frame_end + 1))
-
     input_dir = Path(input_dir)
     mesh_dir = input_dir / MESH_FOLDER
     mesh_dir.mkdir(parents=True, exist_ok=True)
+    files = _MeshFiles(mesh_dir, _sample_roles(scene, groups, frame_start, frame_end), scale)
+    emitters = _emitters(groups, files, frame_start, frame_end, scale)
+    colliders = _colliders(groups, files)
+    box = groups["BOUNDS"][0]
+    bounds = _box_bounds(box, files.samples[box.name], scale)
 
+    spacing = float(shot.particle_spacing) * scale
+    data = {
+        "format": FORMAT, "version": VERSION,
+        "name": safe_name(shot.shot_name or scene.name),
+        "fps": shot_fps(scene), "frame_start": frame_start, "frame_end": frame_end,
+        "particle_spacing": spacing,
+        "seed": int(shot.seed),
+        "gravity": [float(g) for g in shot.gravity],
+        "fluid": {"viscosity": float(shot.viscosity)},
+        "bounds": bounds,
+        "budget": {"max_particles": int(shot.max_particles)},
+        "emitters": emitters,
+        "colliders": colliders,
+    }
+    scene_path = input_dir / SCENE_FILE
+    return Export(scene_path, data, save_scene(scene_path, data))
+
+
+def _sample_roles(scene, groups, frame_start, frame_end) -> dict:
+    """``sample_objects`` of every role object: once at the first frame, or on every frame for a source
+    or collider that may move (``may_move``)."""
     everyone = [o for objs in groups.values() for o in objs]
     moving = [o for o in groups["STREAM"] + groups["COLLIDER"] if may_move(o)]
     moving_names = {o.name for o in moving}
     still = [o for o in everyone if o.name not in moving_names]
     samples = sample_objects(scene, still, [frame_start])
-    samples.update(sample_objects(scene, moving, frames))
+    samples.update(sample_objects(scene, moving, list(range(frame_start, frame_end + 1))))
+    return samples
 
-    used = set()
 
-    def write_mesh(obj):
-        entry = samples[obj.name]
-        stem = _unique_stem(obj.name, used)
-        world0 = motion.world_vertices(entry["local"][0], entry["matrices"][0]) * scale
-        motion.write_obj(mesh_dir / f"{stem}.obj", world0, entry["triangles"], name=stem)
+class _MeshFiles:
+    """Writes sampled objects into ``meshes/`` (world space, metres, a unique file stem each) and
+    returns the paths as the scene file names them (relative to the scene file)."""
+
+    def __init__(self, mesh_dir, samples, scale):
+        self.mesh_dir, self.samples, self.scale = mesh_dir, samples, scale
+        self.used = set()
+
+    def mesh(self, obj) -> tuple[str, str]:
+        """(stem, path) of the object's OBJ file at the first frame."""
+        entry = self.samples[obj.name]
+        stem = _unique_stem(obj.name, self.used)
+        world0 = motion.world_vertices(entry["local"][0], entry["matrices"][0]) * self.scale
+        motion.write_obj(self.mesh_dir / f"{stem}.obj", world0, entry["triangles"], name=stem)
         return stem, f"{MESH_FOLDER}/{stem}.obj"
 
-    def motion_of(obj):
-        entry = samples[obj.name]
+    def motion_of(self, obj) -> str:
+        """The object's motion over the shot, static, rigid or deforming (``motion.classify_motion``)."""
+        entry = self.samples[obj.name]
         if len(entry["local"]) < 2:
             return "static"
         return motion.classify_motion(entry["local"], entry["matrices"])
 
-    def write_transforms(obj, stem):
-        matrices = motion.relative_matrices(samples[obj.name]["matrices"], scale)
-        np.savez(mesh_dir / f"{stem}_transforms.npz", matrices=matrices)
+    def transforms(self, obj, stem) -> str:
+        """Path of the object's per-frame rigid transforms (relative to the first frame)."""
+        matrices = motion.relative_matrices(self.samples[obj.name]["matrices"], self.scale)
+        np.savez(self.mesh_dir / f"{stem}_transforms.npz", matrices=matrices)
         return f"{MESH_FOLDER}/{stem}_transforms.npz"
 
-    def write_vertices(obj, stem):
-        entry = samples[obj.name]
-        world = np.stack([motion.world_vertices(v, m) for v, m in zip(entry["local"], entry["matrices"])]) * scale
-        np.savez(mesh_dir / f"{stem}_vertices.npz", vertices=world.astype(np.float32))
+    def vertices(self, obj, stem) -> str:
+        """Path of the object's per-frame world-space vertices."""
+        entry = self.samples[obj.name]
+        world = np.stack([motion.world_vertices(v, m) for v, m in zip(entry["local"], entry["matrices"])])
+        np.savez(self.mesh_dir / f"{stem}_vertices.npz", vertices=(world * self.scale).astype(np.float32))
         return f"{MESH_FOLDER}/{stem}_vertices.npz"
 
+
+def _emitters(groups, files, frame_start, frame_end, scale) -> list:
+    """The scene file's "emitters": every liquid fill, then every liquid source (meshes written by ``files``).
+
+    Raises:
+        AddonError: a source with a zero direction, an empty frame range, or a changing shape.
+    """
     emitters = []
     for obj in groups["FILL"]:
-        _, path = write_mesh(obj)
+        _, path = files.mesh(obj)
         settings = obj.splashdraft
         emitters.append({"name": obj.name, "type": "fill", "mesh": path,
                          "velocity": [float(v) * scale for v in settings.fill_velocity],
                          "jitter": float(settings.fill_jitter)})
     for obj in groups["STREAM"]:
-        stem, path = write_mesh(obj)
+        stem, path = files.mesh(obj)
         settings = obj.splashdraft
         direction = np.array(settings.stream_direction, np.float64)
         if np.linalg.norm(direction) < 1e-9:
             raise AddonError(f'liquid source "{obj.name}": direction is zero; set a Direction')
-        kind = motion_of(obj)
+        kind = files.motion_of(obj)
         if kind == "deforming":
             raise AddonError(f'liquid source "{obj.name}": its shape changes over the shot (modifiers or shape keys); '
                              "a source may only move rigidly: animate its transform instead")
@@ -248,35 +303,20 @@ def build_scene(scene, input_dir) -> tuple[Path, dict]:
                          "direction": (direction / np.linalg.norm(direction)).tolist(),
                          "speed": float(settings.stream_speed) * scale,
                          "frame_start": int(start), "frame_end": int(end),
-                         "transforms": write_transforms(obj, stem) if kind == "rigid" else None})
+                         "transforms": files.transforms(obj, stem) if kind == "rigid" else None})
+    return emitters
+
+
+def _colliders(groups, files) -> list:
+    """The scene file's "colliders", each with its motion (meshes and motion arrays written by ``files``)."""
     colliders = []
     for obj in groups["COLLIDER"]:
-        stem, path = write_mesh(obj)
-        kind = motion_of(obj)
+        stem, path = files.mesh(obj)
+        kind = files.motion_of(obj)
         entry = {"name": obj.name, "mesh": path, "motion": kind, "friction": float(obj.splashdraft.friction)}
         if kind == "rigid":
-            entry["transforms"] = write_transforms(obj, stem)
+            entry["transforms"] = files.transforms(obj, stem)
         elif kind == "deforming":
-            entry["vertices"] = write_vertices(obj, stem)
+            entry["vertices"] = files.vertices(obj, stem)
         colliders.append(entry)
-
-    box = groups["BOUNDS"][0]
-    bounds = _box_bounds(box, samples[box.name], scale)
-
-    spacing = float(shot.particle_spacing) * scale
-    data = {
-        "format": FORMAT, "version": VERSION,
-        "name": safe_name(shot.shot_name or scene.name),
-        "fps": shot_fps(scene), "frame_start": frame_start, "frame_end": frame_end,
-        "particle_spacing": spacing,
-        "seed": int(shot.seed),
-        "gravity": [float(g) for g in shot.gravity],
-        "fluid": {"rest_density": Fluid.rest_density, "viscosity": float(shot.viscosity)},
-        "bounds": bounds,
-        "budget": {"max_particles": int(shot.max_particles)},
-        "emitters": emitters,
-        "colliders": colliders,
-    }
-    scene_path = input_dir / SCENE_FILE
-    scene_path.write_text(json.dumps(data, indent=1) + "\n", encoding="utf-8")
-    return scene_path, data
+    return colliders

@@ -20,6 +20,7 @@ import time
 from dataclasses import dataclass, field
 
 from ..engine.estimate import format_bytes
+from ..engine.progress import format_duration
 
 #: Seconds a cancelled worker gets to finish its current frame before a second cancel kills it.
 CANCEL_GRACE_SECONDS = 120.0
@@ -134,7 +135,7 @@ class BakeProgress:
         if self.state == "starting":
             return head + "starting the bake worker"
         if self.state in ("running", "cancelling"):
-            eta = f", about {format_seconds(self.eta)} left" if self.eta is not None else ""
+            eta = f", about {format_duration(self.eta)} left" if self.eta is not None else ""
             tail = " (stopping after this frame)" if self.state == "cancelling" else ""
             return head + f"frame {self.frame if self.frame is not None else '-'} ({self.done}/{self.total}), " \
                 f"{plural(self.particles, 'particle')}{eta}{tail}"
@@ -144,15 +145,6 @@ class BakeProgress:
 def plural(count, word):
     """'1 particle', '2 particles', '1,210 particles' (English plural by -s)."""
     return f"{count:,} {word}" if count == 1 else f"{count:,} {word}s"
-
-
-def format_seconds(seconds):
-    seconds = max(0, int(round(seconds)))
-    if seconds < 60:
-        return f"{seconds} s"
-    if seconds < 3600:
-        return f"{seconds // 60} min {seconds % 60:02d} s"
-    return f"{seconds // 3600} h {(seconds % 3600) // 60:02d} min"
 
 
 _MAX_OTHER_LINES = 40
@@ -192,7 +184,7 @@ def apply_event(progress, event):
         progress.state = "finished"
         seconds = float(event.get("seconds", 0.0))
         progress.seconds = seconds
-        progress.message = f"baked {plural(int(event.get('frames', progress.done)), 'frame')} in {format_seconds(seconds)}"
+        progress.message = f"baked {plural(int(event.get('frames', progress.done)), 'frame')} in {format_duration(seconds)}"
     elif kind == "cancelled":
         progress.state = "cancelled"
         last = event.get("last_frame")
@@ -416,5 +408,5 @@ def summarize_estimate(estimate):
         parts.append(f"disk ~{format_bytes(estimate['disk_bytes'])}")
     if "seconds" in estimate:
         rough = "" if estimate.get("is_measured", True) else " (rough until a first bake)"
-        parts.append(f"time ~{format_seconds(float(estimate['seconds']))}{rough}")
+        parts.append(f"time ~{format_duration(float(estimate['seconds']))}{rough}")
     return ", ".join(parts)

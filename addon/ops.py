@@ -47,7 +47,7 @@ def sync_versions(scene, select=None):
         row = shot.versions.add()
         row.name, row.folder, row.solver = info["name"], str(info["path"]), info["solver"]
         row.frames, row.particles, row.complete = info["frames"], info["particles"], info["complete"]
-        row.notes = "\n".join(info.get("warnings", []))
+        row.notes = "\n".join(info["warnings"] + ([info["problem"]] if info["problem"] else []))
     names = [info["name"] for info in found]
     if keep in names:
         index = names.index(keep)
@@ -66,7 +66,7 @@ def _short(message, input_dir):
     return message
 
 
-def estimate_scene(scene, input_dir):
+def estimate_scene(scene, input_dir) -> tuple:
     """Export the shot to ``input_dir`` and estimate it in closed form (nothing is built).
 
     Returns:
@@ -78,18 +78,17 @@ def estimate_scene(scene, input_dir):
     """
     from ..engine.errors import BudgetError, SplashdraftError
     from ..engine.estimate import quick_estimate, work_bound
-    from ..engine.scene import load_scene
 
     shot = scene.splashdraft
     shot.estimate_text, shot.is_over_budget = "", False  # never leave an earlier estimate on show
-    scene_path, data = export.build_scene(scene, input_dir)
     try:
-        loaded = load_scene(scene_path)
-        estimate, outside = quick_estimate(loaded, solver=shot.solver)
+        # The engine validates the exported scene here, in Blender, so a bad scene is named at once.
+        exported = export.build_scene(scene, input_dir)
+        estimate, outside = quick_estimate(exported.scene, solver=shot.solver)
     except BudgetError:
         shot.is_over_budget = True
         try:
-            count = work_bound(loaded)["fluid"]
+            count = work_bound(exported.scene)["fluid"]
         except SplashdraftError:
             count = float("nan")
         limit = int(shot.max_particles)
@@ -109,7 +108,7 @@ def estimate_scene(scene, input_dir):
     shot.estimate_text = jobs.summarize_estimate(estimate.as_dict())
     if warnings:
         shot.estimate_text += "; " + "; ".join(warnings)
-    return estimate, warnings, scene_path
+    return estimate, warnings, exported.path
 
 
 def needs_confirmation(estimate_seconds, confirm_minutes):
@@ -292,9 +291,9 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
             shutil.rmtree(folder, ignore_errors=True)
         if context.window is None or not needs_confirmation(estimate.seconds, shot.confirm_minutes):
             return self.execute(context)
-        from .jobs import format_seconds
+        from ..engine.progress import format_duration
         return context.window_manager.invoke_confirm(
-            self, event, title="Long bake", message=f"This bake may take about {format_seconds(estimate.seconds)} "
+            self, event, title="Long bake", message=f"This bake may take about {format_duration(estimate.seconds)} "
             f"({shot.estimate_text}). Start it?", confirm_text="Bake")
 
     def execute(self, context):

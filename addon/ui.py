@@ -4,6 +4,7 @@ import textwrap
 
 import bpy
 
+from ..engine.boundary import FACE_NAMES
 from . import display, ops, paths
 
 TAB = "Splashdraft"
@@ -115,7 +116,7 @@ class SPLASHDRAFT_PT_object(SidebarPanel, bpy.types.Panel):
             layout.label(text="Motion and deformation are read from the object", icon="INFO")
         elif role == "BOUNDS":
             grid = layout.grid_flow(columns=2, even_columns=True)
-            for name in ("x_min", "x_max", "y_min", "y_max", "z_min", "z_max"):
+            for name in FACE_NAMES:
                 grid.prop(settings, f"face_{name}")
 
 

@@ -8,11 +8,13 @@ exported for that bake. A wedge started from the add-on is a ``v004_wedge`` fold
 engine's wedge layout (``wedge.json``, one cache folder per variant); each variant is a version.
 """
 
-import json
 import re
 from pathlib import Path
+from typing import Optional
 
-from ..engine.cache import MANIFEST_NAME
+from ..engine.cache import manifest_or_problem
+from ..engine.errors import CacheError
+from ..engine.inputs import read_json
 from ..engine.wedge import WEDGE_MANIFEST
 
 VERSION_PATTERN = re.compile(r"^v(\d{3,})_([a-z]+)$")
@@ -21,21 +23,22 @@ INPUT_FOLDER = "input"
 SCENE_FILE = "scene.json"
 
 
-def safe_name(text, fallback="shot"):
+def safe_name(text, fallback="shot") -> str:
     """``text`` reduced to letters, digits, ``_`` and ``-`` (for folder and file names)."""
     cleaned = re.sub(r"[^A-Za-z0-9_-]+", "_", str(text)).strip("_")
     return cleaned or fallback
 
 
-def list_versions(shot_dir):
+def list_versions(shot_dir) -> list:
     """Version folders of a shot, oldest first; a wedge folder lists one version per variant.
 
     Returns:
         list of dicts: ``name`` ("v003_sph", or "v004_wedge/v01_viscosity-0.05" for a wedge variant),
         ``number`` (3), ``solver`` ("sph"), ``path`` (Path), ``frames`` (count of finished frames),
-        ``complete`` (bool), ``particles`` (count in the last finished frame), ``readable`` (manifest parsed),
-        ``warnings`` (the bake's named warnings from its manifest, e.g. an input outside the preview
-        model's trained range).
+        ``complete`` (bool), ``particles`` (count in the last finished frame), ``readable`` (the engine's
+        manifest reader accepted it), ``warnings`` (the bake's named warnings from its manifest, e.g. an
+        input outside the preview model's trained range), ``problem`` (the engine's message for a damaged
+        manifest, else None).
     """
     shot_dir = Path(shot_dir)
     if not shot_dir.is_dir():
@@ -55,37 +58,39 @@ def list_versions(shot_dir):
     return found
 
 
-def wedge_variants(folder):
+def wedge_variants(folder) -> Optional[list]:
     """[(variant name, solver)] of the wedge manifest in ``folder`` (engine/wedge.py layout), or None."""
+    path = Path(folder) / WEDGE_MANIFEST
+    if not path.is_file():
+        return None
     try:
-        manifest = json.loads((Path(folder) / WEDGE_MANIFEST).read_text(encoding="utf-8"))
+        manifest = read_json(path, CacheError, "wedge manifest", "bake the wedge again")
         solver = str(manifest.get("solver", "sph"))
         names = [str(v["name"]) for v in manifest["variants"]]
         # Only plain folder names inside the wedge folder (the engine writes v00_key-value names).
         return [(name, solver) for name in names if VARIANT_PATTERN.match(name)]
-    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+    except (CacheError, KeyError, TypeError, AttributeError):
         return None
 
 
-def _version_info(name, number, solver, path):
-    info = {"name": name, "number": number, "solver": solver, "path": path,
-            "frames": 0, "complete": False, "particles": 0, "readable": False, "warnings": []}
-    try:
-        manifest = json.loads((path / MANIFEST_NAME).read_text(encoding="utf-8"))
-        frames = manifest.get("frames", {})
-        info["frames"] = len(frames)
-        info["complete"] = bool(manifest.get("complete", False))
-        if frames:
-            last = max(frames, key=int)
-            info["particles"] = int(frames[last].get("particles", 0))
-        info["warnings"] = [str(text) for text in manifest.get("warnings", []) if isinstance(text, str)]
-        info["readable"] = True
-    except (OSError, ValueError, AttributeError, TypeError):
-        pass  # a version whose bake never started, or a damaged manifest: listed, shown as empty
+def _version_info(name, number, solver, path) -> dict:
+    info = {"name": name, "number": number, "solver": solver, "path": path, "frames": 0, "complete": False,
+            "particles": 0, "readable": False, "warnings": [], "problem": None}
+    # A version whose bake never started has no manifest; a damaged one is listed, empty, with the engine's message.
+    manifest, info["problem"] = manifest_or_problem(path)
+    if manifest is None:
+        return info
+    frames = manifest["frames"]
+    info["frames"] = len(frames)
+    info["complete"] = bool(manifest.get("complete", False))
+    if frames:
+        info["particles"] = int(frames[max(frames, key=int)]["particles"])
+    info["warnings"] = [str(text) for text in manifest.get("warnings", []) if isinstance(text, str)]
+    info["readable"] = True
     return info
 
 
-def next_version_dir(shot_dir, solver):
+def next_version_dir(shot_dir, solver) -> Path:
     """Path of the next version folder (not created): one past the highest number present."""
     numbers = [item["number"] for item in list_versions(shot_dir)]
     return Path(shot_dir) / f"v{(max(numbers) + 1) if numbers else 1:03d}_{safe_name(solver).lower()}"

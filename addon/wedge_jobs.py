@@ -10,7 +10,8 @@ here. Each variant's cache is an ordinary cache folder inside the wedge folder, 
 
 from dataclasses import dataclass, field
 
-from .jobs import boot_code, format_seconds, plural
+from ..engine.progress import format_duration
+from .jobs import boot_code, plural
 
 
 def vary_arguments(rows):
@@ -136,7 +137,7 @@ def apply_wedge_event(progress, event):
         progress.state = "finished" if failed == 0 else "failed"
         progress.message = (f"{plural(int(event.get('complete', 0)), 'variant')} complete"
                             + (f", {failed} not complete" if failed else "")
-                            + f" in {format_seconds(progress.seconds)}")  # fmt: skip
+                            + f" in {format_duration(progress.seconds)}")  # fmt: skip
     return None
 
 

@@ -30,23 +30,12 @@ ROOT = Path(__file__).resolve().parents[1]
 
 def one_step_losses(onnx_path, samples, rounds, latent):
     """{set name: mean squared error per component} of the model at ``onnx_path`` on normalised samples."""
-    import torch
-
-    from training.model import as_tensors
+    from training.train import masked_mse
     from training.tune import weights_from_onnx
 
     model = weights_from_onnx(onnx_path, latent, rounds)
     model.eval()
-    losses = {}
-    for label, group in samples.items():
-        total, count = 0.0, 0
-        with torch.no_grad():
-            for inputs, target, mask in group:
-                out = model(*as_tensors(inputs)).numpy()
-                total += float(((out - target)[mask] ** 2).sum())
-                count += int(mask.sum()) * 3
-        losses[label] = total / max(count, 1)
-    return losses
+    return {label: masked_mse(model, group) for label, group in samples.items()}
 
 
 def control_models(base_onnx, tuned_onnx, rounds, latent, probe, config, stats, out, seed=1):

@@ -25,6 +25,7 @@ import signal
 import threading
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING, NamedTuple, Optional
 
 import numpy as np
 
@@ -34,6 +35,10 @@ from .errors import CacheError, SolverError, SplashdraftError, UsageError
 from .progress import SilentProgress
 from .solvers import SOLVER_NAMES, make_solver
 from .state import state_from_arrays, state_to_arrays
+
+if TYPE_CHECKING:
+    from .scene import Scene
+
 
 @dataclasses.dataclass(frozen=True)
 class BakeResult:
@@ -64,7 +69,7 @@ class BakeResult:
     notes: tuple = ()
 
 
-def load_scene_any(scene):
+def load_scene_any(scene) -> "Scene":
     """A Scene object from a path (str or Path) or a Scene itself."""
     if isinstance(scene, (str, Path)):
         from .scene import load_scene
@@ -73,7 +78,7 @@ def load_scene_any(scene):
     return scene
 
 
-def scene_hash(scene):
+def scene_hash(scene) -> str:
     """sha256 (hex) of the canonical scene JSON plus the bytes of every file it references."""
     from .scene import scene_hash as hash_of_scene
 
@@ -84,7 +89,7 @@ def scene_hash(scene):
 LEARNED_MIN_GRAVITY = 0.01
 
 
-def check_scene_for_solver(scene, solver_name):
+def check_scene_for_solver(scene, solver_name) -> None:
     """Raise SceneError when ``scene`` cannot be baked by ``solver_name`` (checked before anything is built)."""
     from .errors import SceneError
 
@@ -97,12 +102,12 @@ def check_scene_for_solver(scene, solver_name):
         )
 
 
-def frame_time(scene, frame):
+def frame_time(scene, frame) -> float:
     """Simulated time (s) of ``frame``: (frame - frame_start) / fps."""
     return (int(frame) - scene.frame_start) / scene.fps
 
 
-def resolve_frames(scene, frames):
+def resolve_frames(scene, frames) -> tuple[int, int]:
     """(first, last) frames of a bake; ``frames`` is None, (a, b) or "a:b"."""
     if frames is None:
         return scene.frame_start, scene.frame_end
@@ -117,7 +122,7 @@ def resolve_frames(scene, frames):
     return first, last
 
 
-def parse_frame_range(text):
+def parse_frame_range(text) -> tuple[int, int]:
     """'12:40' -> (12, 40); raises UsageError for anything else."""
     parts = str(text).split(":")
     try:
@@ -140,7 +145,7 @@ class StopFlag:
             raise KeyboardInterrupt
         self.is_set = True
 
-    def install(self):
+    def install(self) -> "StopFlag":
         if threading.current_thread() is not threading.main_thread():
             return self  # signal handlers can only be set from the main thread
         for name in ("SIGINT", "SIGTERM", "SIGBREAK"):
@@ -149,7 +154,7 @@ class StopFlag:
                 self._previous[number] = signal.signal(number, self._handle)
         return self
 
-    def restore(self):
+    def restore(self) -> None:
         for number, handler in self._previous.items():
             signal.signal(number, handler)
         self._previous = {}
@@ -190,7 +195,7 @@ def _json_ready(value):
 
 
 def bake(scene, solver_name, out_dir, frames=None, resume=False, progress=None, should_stop=None,
-         max_particles=None, overwrite=False, use_signals=True, world=None, solver=None):
+         max_particles=None, overwrite=False, use_signals=True, world=None, solver=None) -> BakeResult:
     """Bake ``scene`` with solver ``solver_name`` into the folder ``out_dir``.
 
     Args:
@@ -229,10 +234,37 @@ def bake(scene, solver_name, out_dir, frames=None, resume=False, progress=None, 
         raise
 
 
-def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, max_particles, overwrite,
-          use_signals, world, solver):
-    from .estimate import check_budget
+@dataclasses.dataclass(frozen=True)
+class _Start:
+    """Where a bake starts: at the scene's first frame, or after an existing cache's checkpoint.
 
+    Attributes:
+        first: the first frame of the range baked (``BakeResult.first_frame``).
+        continue_from: (State, frame) of the checkpoint to continue from, or None.
+        kept_frames: frames of the existing cache verified and kept.
+        last_in_cache: the existing cache's ``frame_end`` (None when starting afresh).
+        notes: what the checks found and did about it, one sentence each.
+    """
+
+    first: int
+    continue_from: Optional[tuple] = None
+    kept_frames: tuple = ()
+    last_in_cache: Optional[int] = None
+    notes: tuple = ()
+
+
+class _Run(NamedTuple):
+    """What the frame loop did."""
+
+    written: int
+    last_written: Optional[int]
+    particles: int
+    is_cancelled: bool
+    notes: tuple
+
+
+def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, max_particles, overwrite,
+          use_signals, world, solver) -> BakeResult:
     started = time.monotonic()
     source = scene if isinstance(scene, (str, Path)) else getattr(scene, "source", None)
     scene = load_scene_any(scene)
@@ -241,50 +273,73 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
         make_solver(solver_name)  # raises the UsageError naming the choices
     check_scene_for_solver(scene, solver_name)
     hash_hex = scene_hash(scene)
-
-    continue_from = None  # (state, frame) of an existing checkpoint
-    kept_frames = ()  # frames of the existing cache verified and kept
-    notes = []
+    start = _Start(first)
     if resume or first > scene.frame_start:
-        if not (out_dir / MANIFEST_NAME).is_file():
-            why = "--resume" if resume else f"--frames {first}:{last}"
-            raise CacheError(
-                f"{out_dir}: no cache to continue from for {why} (no {MANIFEST_NAME}); "
-                f"bake from frame {scene.frame_start} first, without --resume"
-            )
-        reader = open_cache(out_dir)
-        state, checkpoint_frame, checkpoint_hash = reader.read_checkpoint()
-        if checkpoint_hash != hash_hex or reader.manifest.get("scene_hash") != hash_hex:
-            raise CacheError(
-                f"{out_dir}: its cache was baked from a different version of scene {scene.name!r}; "
-                "bake again from the first frame (without --resume) or into another --out folder"
-            )
-        if reader.manifest["solver"]["name"] != solver_name:
-            raise CacheError(
-                f"{out_dir}: its cache was baked with the {reader.manifest['solver'].get('name')!r} solver, "
-                f"not {solver_name!r}; resume with the same --solver or bake into another --out folder"
-            )
-        if checkpoint_frame < first - 1:
-            raise CacheError(
-                f"{out_dir}: cannot start at frame {first}: the cache's checkpoint is at frame {checkpoint_frame}; "
-                f"bake --frames {checkpoint_frame + 1}:{last} (or --resume) instead"
-            )
-        if resume and frames is None:
-            first = scene.frame_start
-        last_in_cache = reader.manifest["frame_end"]
-        good, problems = verify_frames(reader)
-        continue_frame = _continue_frame(reader, good, state, checkpoint_frame, scene.frame_start, problems)
-        if continue_frame is None:
-            # No verified state to continue from: bake again from the first frame (deterministic, so frames
-            # that were good come out bit-identical) rather than keep a cache with holes or a wrong state.
-            notes.append(f"the cache could not be continued ({'; '.join(problems[:3])}); "
-                         f"baked again from frame {scene.frame_start}")  # fmt: skip
-            first = scene.frame_start
-        else:
-            continue_from = (state, checkpoint_frame)
-            kept_frames = [f for f in good if f <= max(continue_frame, checkpoint_frame) or f > last]
-            if problems:
-                notes.append(f"frames baked again after checks: {'; '.join(problems[:3])}")
+        start = _plan_continuation(scene, solver_name, out_dir, frames, resume, first, last, hash_hex)
+    world, solver, initial_state = _build(scene, solver_name, world, solver, max_particles)
+    header = _open_header(scene, solver, world, last, hash_hex, source, start, out_dir, solver_name, progress)
+    writer = CacheWriter(out_dir, header, keep_frames=start.kept_frames if start.continue_from is not None else False,
+                         overwrite=overwrite or bool(start.notes))  # fmt: skip
+    writer.write_scene_copy(scene)
+    run = _run_frames(scene, solver, world, writer, header, start, initial_state, last, progress, should_stop,
+                      use_signals, started)  # fmt: skip
+    return BakeResult(
+        cache_dir=str(out_dir), solver=solver.name, first_frame=start.first, last_frame=last,
+        last_written=run.last_written, frames_written=run.written, particles=run.particles,
+        seconds=time.monotonic() - started, is_cancelled=run.is_cancelled, notes=start.notes + run.notes,
+    )  # fmt: skip
+
+
+def _plan_continuation(scene, solver_name, out_dir, frames, resume, first, last, hash_hex) -> _Start:
+    """Check the cache in ``out_dir`` for ``--resume`` or a later first frame; say where the bake starts.
+
+    Raises:
+        CacheError: no cache there, or one of another scene version, another solver, or a checkpoint
+        before ``first - 1``.
+    """
+    if not (out_dir / MANIFEST_NAME).is_file():
+        why = "--resume" if resume else f"--frames {first}:{last}"
+        raise CacheError(
+            f"{out_dir}: no cache to continue from for {why} (no {MANIFEST_NAME}); "
+            f"bake from frame {scene.frame_start} first, without --resume"
+        )
+    reader = open_cache(out_dir)
+    state, checkpoint_frame, checkpoint_hash = reader.read_checkpoint()
+    if checkpoint_hash != hash_hex or reader.manifest.get("scene_hash") != hash_hex:
+        raise CacheError(
+            f"{out_dir}: its cache was baked from a different version of scene {scene.name!r}; "
+            "bake again from the first frame (without --resume) or into another --out folder"
+        )
+    if reader.manifest["solver"]["name"] != solver_name:
+        raise CacheError(
+            f"{out_dir}: its cache was baked with the {reader.manifest['solver'].get('name')!r} solver, "
+            f"not {solver_name!r}; resume with the same --solver or bake into another --out folder"
+        )
+    if checkpoint_frame < first - 1:
+        raise CacheError(
+            f"{out_dir}: cannot start at frame {first}: the cache's checkpoint is at frame {checkpoint_frame}; "
+            f"bake --frames {checkpoint_frame + 1}:{last} (or --resume) instead"
+        )
+    if resume and frames is None:
+        first = scene.frame_start
+    last_in_cache = reader.manifest["frame_end"]
+    good, problems = verify_frames(reader)
+    continue_frame = _continue_frame(reader, good, state, checkpoint_frame, scene.frame_start, problems)
+    if continue_frame is None:
+        # No verified state to continue from: bake again from the first frame (deterministic, so frames
+        # that were good come out bit-identical) rather than keep a cache with holes or a wrong state.
+        note = (f"the cache could not be continued ({'; '.join(problems[:3])}); "
+                f"baked again from frame {scene.frame_start}")  # fmt: skip
+        return _Start(scene.frame_start, last_in_cache=last_in_cache, notes=(note,))
+    kept_frames = [f for f in good if f <= max(continue_frame, checkpoint_frame) or f > last]
+    notes = (f"frames baked again after checks: {'; '.join(problems[:3])}",) if problems else ()
+    return _Start(first, continue_from=(state, checkpoint_frame), kept_frames=kept_frames,
+                  last_in_cache=last_in_cache, notes=notes)  # fmt: skip
+
+
+def _build(scene, solver_name, world, solver, max_particles) -> tuple:
+    """(world, solver, initial State): built from the scene unless given, after the work and budget checks."""
+    from .estimate import check_budget
 
     if world is None:
         from .estimate import check_work
@@ -296,48 +351,47 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
     if solver is None:
         solver = make_solver(solver_name)
     # start() also resolves the solver's settings for the manifest; a resume discards its state.
-    initial_state = solver.start(world)
+    return world, solver, solver.start(world)
+
+
+def _open_header(scene, solver, world, last, hash_hex, source, start, out_dir, solver_name, progress) -> dict:
+    """The manifest header of this bake, with the solver's range warnings (also sent to ``progress``).
+
+    Raises:
+        CacheError: a continued cache was baked with other solver settings.
+    """
     header = _manifest_header(scene, solver, last, hash_hex, source)
     header["warnings"] = list(solver.range_warnings(world)) if hasattr(solver, "range_warnings") else []
     for warning in header["warnings"]:
         progress.note(f"warning: {warning}")
-    if continue_from is not None:
-        header["frame_end"] = max(last, int(last_in_cache))
-    if continue_from is not None:
+    if start.continue_from is not None:
+        header["frame_end"] = max(last, int(start.last_in_cache))
         previous_settings = open_cache(out_dir).manifest.get("solver", {}).get("settings")
         if previous_settings is not None and previous_settings != header["solver"]["settings"]:
             raise CacheError(
                 f"{out_dir}: the {solver_name} solver settings differ from the ones this cache was baked with; "
                 "bake again from the first frame (without --resume)"
             )
-    writer = CacheWriter(out_dir, header, keep_frames=kept_frames if continue_from is not None else False,
-                         overwrite=overwrite or bool(notes))  # fmt: skip
-    writer.write_scene_copy(scene)
+    return header
 
+
+def _run_frames(scene, solver, world, writer, header, start, initial_state, last, progress, should_stop,
+                use_signals, started) -> _Run:
+    """Write the first frame (unless continuing), then advance and write each frame up to ``last``.
+
+    Stops after the frame being computed when the stop flag or ``should_stop`` says so; a second signal
+    (KeyboardInterrupt) stops at once. Finished frames are on disk either way.
+    """
     stop = StopFlag()
     if use_signals:
         stop.install()
     written = 0
     last_written = None
     particles = 0
+    notes = ()
     try:
-        if continue_from is None:
-            state = _reloaded(initial_state)
-            current = scene.frame_start
-            progress.start(frames=(scene.frame_start, last), solver=solver.name, particles=state.count)
-            frame_started = time.monotonic()
-            state = _write(writer, solver, world, state, current, 0, 0.0)
-            written, last_written, particles = 1, current, state.count
-            progress.frame(
-                frame=current, done=1, total=last - scene.frame_start + 1, particles=state.count,
-                substeps=0, seconds=time.monotonic() - frame_started,
-                eta=float("nan"),
-            )  # fmt: skip
-        else:
-            state, current = continue_from
-            state = _reloaded(state)
-            last_written, particles = current, state.count
-            progress.start(frames=(current + 1, last), solver=solver.name, particles=state.count)
+        state, current, written = _first_state(scene, solver, world, writer, start, initial_state, last, progress)
+        last_written, particles = current, state.count
         total = last - current + written
         loop_started = time.monotonic()
         for frame in range(current + 1, last + 1):
@@ -361,24 +415,40 @@ def _bake(scene, solver_name, out_dir, frames, resume, progress, should_stop, ma
         is_cancelled = last_written is None or last_written < last
         if is_cancelled:
             progress.cancelled(last_frame=last_written)
-        elif not writer.mark_complete(True):
-            missing = writer.missing_frames()
-            notes.append(f"{len(missing)} frames of {header['frame_start']}..{header['frame_end']} are not in the "
-                         f"cache (first {missing[0]}); it stays incomplete: bake them with --resume")  # fmt: skip
-            progress.finished(frames=written, cache=str(out_dir), seconds=time.monotonic() - started)
         else:
-            progress.finished(frames=written, cache=str(out_dir), seconds=time.monotonic() - started)
+            if not writer.mark_complete(True):
+                missing = writer.missing_frames()
+                notes = (f"{len(missing)} frames of {header['frame_start']}..{header['frame_end']} are not in the "
+                         f"cache (first {missing[0]}); it stays incomplete: bake them with --resume",)  # fmt: skip
+            progress.finished(frames=written, cache=str(writer.folder), seconds=time.monotonic() - started)
     except KeyboardInterrupt:
         # A second Ctrl-C: stop at once; finished frames are safe on disk.
         is_cancelled = True
         progress.cancelled(last_frame=last_written)
     finally:
         stop.restore()
-    return BakeResult(
-        cache_dir=str(out_dir), solver=solver.name, first_frame=first, last_frame=last,
-        last_written=last_written, frames_written=written, particles=particles,
-        seconds=time.monotonic() - started, is_cancelled=is_cancelled, notes=tuple(notes),
+    return _Run(written, last_written, particles, is_cancelled, notes)
+
+
+def _first_state(scene, solver, world, writer, start, initial_state, last, progress) -> tuple:
+    """(State, its frame, frames written): the first frame written from the solver's initial state, or the
+    checkpoint's state when continuing; tells ``progress`` the bake has started."""
+    if start.continue_from is not None:
+        state, current = start.continue_from
+        state = _reloaded(state)
+        progress.start(frames=(current + 1, last), solver=solver.name, particles=state.count)
+        return state, current, 0
+    state = _reloaded(initial_state)
+    current = scene.frame_start
+    progress.start(frames=(scene.frame_start, last), solver=solver.name, particles=state.count)
+    frame_started = time.monotonic()
+    state = _write(writer, solver, world, state, current, 0, 0.0)
+    progress.frame(
+        frame=current, done=1, total=last - scene.frame_start + 1, particles=state.count,
+        substeps=0, seconds=time.monotonic() - frame_started,
+        eta=float("nan"),
     )  # fmt: skip
+    return state, current, 1
 
 
 def _continue_frame(reader, good, state, checkpoint_frame, frame_start, problems):
@@ -414,7 +484,7 @@ def _solver_record(stats):
     return {name: _json_ready(getattr(stats, name)) for name in names if hasattr(stats, name)}
 
 
-def frame_whitewater(state, world):
+def frame_whitewater(state, world) -> dict:
     """Zone and white-water potentials of a state's particles (``engine.whitewater``), any solver."""
     from .whitewater import ATTRIBUTES, whitewater
 

@@ -25,6 +25,7 @@ import json
 import os
 import re
 from pathlib import Path
+from typing import Optional
 
 import numpy as np
 
@@ -82,12 +83,12 @@ _INT32_MAX = np.iinfo(np.int32).max
 FRAME_FILE_PATTERN = "points_{frame:04d}.ply"
 
 
-def frame_file_name(frame):
+def frame_file_name(frame) -> str:
     """``points_0001.ply`` style name of a frame file (4+ digits, zero padded)."""
     return FRAME_FILE_PATTERN.format(frame=int(frame))
 
 
-def ply_header(count):
+def ply_header(count) -> bytes:
     """ASCII header (bytes) of a frame file with ``count`` particles."""
     lines = ["ply", "format binary_little_endian 1.0", "comment splashdraft points v1"]
     lines.append(f"element vertex {int(count)}")
@@ -96,7 +97,7 @@ def ply_header(count):
     return ("\n".join(lines) + "\n").encode("ascii")
 
 
-def frame_bytes(positions, velocities, ids, density, pressure, whitewater=None):
+def frame_bytes(positions, velocities, ids, density, pressure, whitewater=None) -> bytes:
     """Encode one frame as PLY bytes (header + packed records).
 
     Args:
@@ -202,7 +203,7 @@ def _parse_header(data, source):
     return count, np.dtype(props), newline + 1
 
 
-def parse_frame(data, source="frame"):
+def parse_frame(data, source="frame") -> dict:
     """Decode PLY bytes into a dict of arrays.
 
     Returns:
@@ -236,7 +237,7 @@ def parse_frame(data, source="frame"):
     return arrays
 
 
-def read_ply(path):
+def read_ply(path) -> dict:
     """Read one frame file (no checksum check); see ``parse_frame``."""
     path = Path(path)
     try:
@@ -248,11 +249,11 @@ def read_ply(path):
     return parse_frame(data, str(path))
 
 
-def sha256_bytes(data):
+def sha256_bytes(data) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
-def write_atomic(path, data):
+def write_atomic(path, data) -> None:
     """Write ``data`` (bytes) to ``path`` via a temporary file in the same folder and ``os.replace``.
 
     The temporary file is removed if anything fails, so no partial file is
@@ -296,7 +297,31 @@ def _load_manifest(folder):
     return validate_manifest(manifest, path)
 
 
-def validate_manifest(manifest, path):
+def read_manifest(folder) -> dict:
+    """The validated manifest of the bake folder ``folder`` (see ``validate_manifest``).
+
+    Raises:
+        CacheError naming the file and what is wrong: no manifest, unreadable JSON, a bad field.
+    """
+    return _load_manifest(folder)
+
+
+def manifest_or_problem(folder) -> tuple[Optional[dict], Optional[str]]:
+    """``read_manifest`` for listings that must show every bake folder, finished, running or damaged.
+
+    Returns:
+        (manifest, None) when the manifest reads and validates; (None, None) when there is no manifest
+        yet (a bake that has not finished its first frame); else (None, the CacheError's message).
+    """
+    if not (Path(folder) / MANIFEST_NAME).exists():
+        return None, None
+    try:
+        return _load_manifest(folder), None
+    except CacheError as exc:
+        return None, str(exc)
+
+
+def validate_manifest(manifest, path) -> dict:
     """Check a parsed manifest as strictly as a scene; returns it unchanged or raises CacheError.
 
     Every field this engine reads must have its documented type and range
@@ -389,11 +414,11 @@ class CacheReader:
             )
         return entry
 
-    def frame_path(self, frame):
+    def frame_path(self, frame) -> Path:
         """Path of frame ``frame``'s PLY file (it is listed in the manifest)."""
         return path_inside(self.folder, self._entry(frame)["file"], CacheError, "frame file")
 
-    def read_frame(self, frame):
+    def read_frame(self, frame) -> dict:
         """Read frame ``frame``, verifying its sha256; returns the dict of ``parse_frame``.
 
         Raises:
@@ -417,11 +442,11 @@ class CacheReader:
             )
         return parse_frame(data, str(path))
 
-    def read_checkpoint(self):
+    def read_checkpoint(self) -> tuple:
         """The State saved after the last finished frame, and that frame number."""
         return read_checkpoint(self.folder / CHECKPOINT_NAME)
 
-    def disk_bytes(self):
+    def disk_bytes(self) -> int:
         """Bytes on disk of the manifest, the listed frames, the checkpoint and the stored scene copy."""
         paths = [self.folder / MANIFEST_NAME, self.folder / CHECKPOINT_NAME]
         paths += [self.frame_path(frame) for frame in self.frames]
@@ -431,7 +456,7 @@ class CacheReader:
         return sum(p.stat().st_size for p in paths if p.is_file())
 
 
-def open_cache(folder):
+def open_cache(folder) -> "CacheReader":
     """Open a bake folder for reading; raises CacheError naming what is wrong."""
     folder = Path(folder)
     if "\x00" in str(folder) or not folder.is_dir():
@@ -439,7 +464,7 @@ def open_cache(folder):
     return CacheReader(folder)
 
 
-def read_checkpoint(path):
+def read_checkpoint(path) -> tuple:
     """Load ``checkpoint.npz``: returns (State, frame, scene_hash).
 
     Raises:
@@ -464,7 +489,7 @@ def read_checkpoint(path):
     return state, frame, scene_hash
 
 
-def verify_frames(reader):
+def verify_frames(reader) -> tuple[list, list]:
     """Read every listed frame of an open cache and check it against its manifest entry.
 
     A frame is good when its file exists, its sha256 matches, and its PLY
@@ -486,7 +511,7 @@ def verify_frames(reader):
     return good, problems
 
 
-def checkpoint_matches_frame(state, arrays):
+def checkpoint_matches_frame(state, arrays) -> bool:
     """True when a checkpoint State is the state a frame file was written from (count, ids, positions)."""
     return (
         len(state.ids) == len(arrays["ids"])
@@ -496,7 +521,7 @@ def checkpoint_matches_frame(state, arrays):
     )
 
 
-def checkpoint_bytes(state, frame, scene_hash):
+def checkpoint_bytes(state, frame, scene_hash) -> bytes:
     """The npz bytes of a checkpoint (State npz form + frame number + scene hash)."""
     arrays = state_to_arrays(state)
     arrays["checkpoint__frame"] = np.int64(frame)
@@ -611,7 +636,7 @@ class CacheWriter:
                 f"{path}: cannot write ({exc.strerror}); free disk space or choose another --out folder"
             ) from exc
 
-    def write_frame(self, frame, arrays, time, substeps, seconds, extra=None):
+    def write_frame(self, frame, arrays, time, substeps, seconds, extra=None) -> int:
         """Write frame ``frame`` and list it in the manifest.
 
         Args:
@@ -640,12 +665,12 @@ class CacheWriter:
         self._write_manifest()
         return len(data)
 
-    def write_checkpoint(self, state, frame):
+    def write_checkpoint(self, state, frame) -> None:
         """Save the state after frame ``frame`` for --resume (atomically)."""
         data = checkpoint_bytes(state, frame, self.manifest["scene_hash"])
         self._write(CHECKPOINT_NAME, data)
 
-    def write_scene_copy(self, scene):
+    def write_scene_copy(self, scene) -> None:
         """Store the scene being baked in ``scene/`` of the cache folder (``engine.compare`` reads it).
 
         Every mesh and motion array is written as npz under a name made from its object's index
@@ -682,20 +707,20 @@ class CacheWriter:
             if SCENE_ARRAY_RE.fullmatch(path.name) and path.name not in written and path.is_file():
                 path.unlink()
 
-    def missing_frames(self):
+    def missing_frames(self) -> list:
         """Frames from frame_start to frame_end that the manifest does not list."""
         listed = {int(key) for key in self.manifest["frames"]}
         span = range(int(self.manifest["frame_start"]), int(self.manifest["frame_end"]) + 1)
         return [frame for frame in span if frame not in listed]
 
-    def mark_complete(self, is_complete=True):
+    def mark_complete(self, is_complete=True) -> bool:
         """Mark the cache complete; it stays incomplete while any frame of its range is missing."""
         self.manifest["complete"] = bool(is_complete) and not self.missing_frames()
         self._write_manifest()
         return self.manifest["complete"]
 
 
-def remove_stale_temporaries(folder):
+def remove_stale_temporaries(folder) -> list:
     """Remove temporary files of ``write_atomic`` in ``folder`` left by a process that no longer runs.
 
     Only ``.<name>.tmp-<pid>`` files whose ``<name>`` this engine writes are

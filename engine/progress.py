@@ -22,8 +22,11 @@ import sys
 PROGRESS_KINDS = ("bar", "json", "none")
 
 
-def format_duration(seconds):
-    """'4.2s', '3m05s' or '1h02m' for a duration in seconds; '?' if unknown."""
+def format_duration(seconds) -> str:
+    """'4.2s', '3m05s' or '1h02m' for a duration in seconds; '?' if unknown.
+
+    The one way durations are written, by the command line and by the Blender add-on's status lines.
+    """
     if seconds is None or seconds != seconds or seconds < 0:
         return "?"
     if seconds < 60:
@@ -43,22 +46,22 @@ def _finite_or_none(value):
 class SilentProgress:
     """Reports nothing (``--progress none``)."""
 
-    def start(self, frames, solver, particles):
+    def start(self, frames, solver, particles) -> None:
         pass
 
-    def frame(self, frame, done, total, particles, substeps, seconds, eta):
+    def frame(self, frame, done, total, particles, substeps, seconds, eta) -> None:
         pass
 
-    def error(self, message):
+    def error(self, message) -> None:
         pass
 
-    def finished(self, frames, cache, seconds):
+    def finished(self, frames, cache, seconds) -> None:
         pass
 
-    def cancelled(self, last_frame):
+    def cancelled(self, last_frame) -> None:
         pass
 
-    def note(self, text):
+    def note(self, text) -> None:
         pass
 
 
@@ -72,22 +75,22 @@ class JsonProgress(SilentProgress):
         self.stream.write(json.dumps(event) + "\n")
         self.stream.flush()
 
-    def start(self, frames, solver, particles):
+    def start(self, frames, solver, particles) -> None:
         self._emit(event="start", frames=[int(frames[0]), int(frames[1])], solver=solver, particles=int(particles))
 
-    def frame(self, frame, done, total, particles, substeps, seconds, eta):
+    def frame(self, frame, done, total, particles, substeps, seconds, eta) -> None:
         self._emit(
             event="frame", frame=int(frame), done=int(done), total=int(total), particles=int(particles),
             substeps=int(substeps), seconds=round(float(seconds), 4), eta=_finite_or_none(eta),
         )  # fmt: skip
 
-    def error(self, message):
+    def error(self, message) -> None:
         self._emit(event="error", message=str(message))
 
-    def finished(self, frames, cache, seconds):
+    def finished(self, frames, cache, seconds) -> None:
         self._emit(event="finished", frames=int(frames), cache=str(cache), seconds=round(float(seconds), 3))
 
-    def cancelled(self, last_frame):
+    def cancelled(self, last_frame) -> None:
         self._emit(event="cancelled", last_frame=None if last_frame is None else int(last_frame))
 
 
@@ -110,10 +113,10 @@ class BarProgress(SilentProgress):
         self.stream.write(text + "\n")
         self.stream.flush()
 
-    def start(self, frames, solver, particles):
+    def start(self, frames, solver, particles) -> None:
         self._line(f"baking frames {frames[0]}..{frames[1]} with the {solver} solver, {particles:,} particles")
 
-    def frame(self, frame, done, total, particles, substeps, seconds, eta):
+    def frame(self, frame, done, total, particles, substeps, seconds, eta) -> None:
         filled = int(self.width * done / total) if total else self.width
         bar = "#" * filled + "." * (self.width - filled)
         text = (
@@ -128,25 +131,25 @@ class BarProgress(SilentProgress):
         else:
             self._line(text)
 
-    def error(self, message):
+    def error(self, message) -> None:
         # The command line prints the error itself, once; here the bar's line is only ended.
         if self._drawn:
             self.stream.write("\n")
             self.stream.flush()
             self._drawn = 0
 
-    def finished(self, frames, cache, seconds):
+    def finished(self, frames, cache, seconds) -> None:
         self._line(f"finished {frames} frames in {format_duration(seconds)}; cache in {cache}")
 
-    def cancelled(self, last_frame):
+    def cancelled(self, last_frame) -> None:
         where = "no frame was finished" if last_frame is None else f"frames up to {last_frame} are kept"
         self._line(f"bake cancelled; {where} (continue with --resume)")
 
-    def note(self, text):
+    def note(self, text) -> None:
         self._line(text)
 
 
-def make_progress(kind="bar", stream=None):
+def make_progress(kind="bar", stream=None) -> "SilentProgress":
     """The reporter for ``--progress {bar,json,none}``."""
     if kind == "bar":
         return BarProgress(stream)

@@ -19,7 +19,7 @@ import time
 
 import numpy as np
 
-from .boundary import make_boundary, sample_box_walls
+from .boundary import BoundaryParticles, make_boundary, sample_box_walls
 from .errors import SplashdraftError
 from .particle_model import particle_mass, support_radius
 from .scene import DEFAULT_GRAVITY, Fluid, SolverSettings
@@ -60,22 +60,22 @@ class BoxWorld:
         self._velocities = np.asarray(velocities, np.float64)
         self._boundary = boundary
 
-    def initial_state(self):
+    def initial_state(self) -> State:
         n = len(self._positions)
         return State(time=0.0, positions=self._positions.copy(), velocities=self._velocities.copy(),
                      ids=np.arange(n, dtype=np.int64), next_id=n)
 
-    def emit(self, state, t0, t1):
+    def emit(self, state, t0, t1) -> State:
         return state
 
-    def boundary_at(self, t):
+    def boundary_at(self, t) -> BoundaryParticles:
         return self._boundary
 
-    def enforce_bounds(self, state, previous=None):
+    def enforce_bounds(self, state, previous=None) -> State:
         return state
 
 
-def lattice(counts, spacing, origin):
+def lattice(counts, spacing, origin) -> np.ndarray:
     """(prod(counts), 3) cubic lattice points origin + spacing * (i, j, k), ordered x-major."""
     axes = [np.arange(c) for c in counts]
     idx = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, 3)
@@ -95,7 +95,7 @@ def _progress_frame(progress, done, chunks, particles, substeps, seconds, starte
 
 
 def hydrostatic(progress=None, columns=12, layers=24, spacing=0.02, settle_time=1.5, average_time=0.2,
-                density_tolerance=0.0005):
+                density_tolerance=0.0005) -> dict:
     """Hydrostatic tank: a column at rest, its pressure against p = rho0 g d.
 
     Set-up: ``columns`` x ``columns`` x ``layers`` lattice (default 12 x 12 x 24,
@@ -126,27 +126,78 @@ def hydrostatic(progress=None, columns=12, layers=24, spacing=0.02, settle_time=
         max_speed_ratio: max |v| / sqrt(g * depth) at the end (is it at rest?).
     """
     started = time.monotonic()
+    world, upper = _hydrostatic_tank(columns, layers, spacing, density_tolerance)
+    solver = make_solver("sph")
+    state = solver.start(world)
+    top_count = columns * columns
+    height0 = _top_height(state.positions, top_count)
+    volume0 = float(np.sum(world.particle_mass / sph_density(state.positions, world.boundary_at(0.0),
+                                                             params_from_world(world))))
+    settled = _settle_and_average(solver, world, state, settle_time, average_time, progress, started)
+    metrics = _hydrostatic_metrics(world, settled, upper, layers, top_count, height0, volume0, started)
+    tolerances = {
+        "slope_ratio": [0.98, 1.02],
+        "mean_density_error": 0.001,
+        "max_density_error": 0.01,
+        "outside_walls": 0,
+        "volume_drift": 0.001,
+    }
+    passed = (tolerances["slope_ratio"][0] <= metrics["slope_ratio"] <= tolerances["slope_ratio"][1]
+              and metrics["mean_density_error"] <= tolerances["mean_density_error"]
+              and metrics["max_density_error"] < tolerances["max_density_error"]
+              and metrics["outside_walls"] == 0
+              and metrics["volume_drift"] < tolerances["volume_drift"])
+    return {
+        "case": "hydrostatic",
+        "passed": bool(passed),
+        "metrics": metrics,
+        "tolerances": tolerances,
+        "source": ("p = rho0 g d (hydrostatics); tolerances: Splashdraft physics-references section 6c "
+                   "(recommendation); 0.01-0.1 % average density error as in Bender & Koschier 2015 (SCA) "
+                   "and Ihmsen et al. 2014 (IEEE TVCG)"),
+        "notes": ("slope fitted on interior particles excluding the top H and the bottom H (kernel truncated "
+                  "at the free surface and at the one-layer wall); slope_ratio_top_only excludes only the top H. "
+                  "Pressure and density averaged over the last "
+                  f"{average_time:g} s."),
+    }
+
+
+def _hydrostatic_tank(columns, layers, spacing, density_tolerance) -> tuple:
+    """(BoxWorld, upper corner): the lattice column at rest in a five-walled, open-topped box."""
     gap = WALL_GAP * spacing
     positions = lattice((columns, columns, layers), spacing, (gap, gap, gap))
     width = 2.0 * gap + (columns - 1) * spacing
     upper = (width, width, gap + (layers + 8) * spacing)
     faces = {"x_min": "wall", "x_max": "wall", "y_min": "wall", "y_max": "wall", "z_min": "wall", "z_max": "open"}
     wall_points, wall_normals = sample_box_walls((0.0, 0.0, 0.0), upper, spacing, faces)
-    support = support_radius(spacing)
-    boundary = make_boundary(wall_points, wall_normals, support)
+    boundary = make_boundary(wall_points, wall_normals, support_radius(spacing))
     world = BoxWorld(positions, np.zeros_like(positions), boundary, spacing, viscosity=0.05,
                      solver_settings=SolverSettings(max_time_step=0.002, density_tolerance=density_tolerance))
-    solver = make_solver("sph")
-    state = solver.start(world)
-    rho0, g = world.rest_density, abs(world.gravity[2])
-    top_count = columns * columns
+    return world, upper
 
-    def column_height(points):
-        return float(np.mean(np.sort(points[:, 2])[-top_count:]))
 
-    height0 = column_height(state.positions)
+def _top_height(points, top_count) -> float:
+    """Mean z of the ``top_count`` highest particles (one layer's worth)."""
+    return float(np.mean(np.sort(points[:, 2])[-top_count:]))
+
+
+@dataclasses.dataclass(frozen=True)
+class _Settled:
+    """The hydrostatic column at the end of its run, with its per-particle averages over the last substeps."""
+
+    state: State
+    pressure: np.ndarray  # (N,) Pa, averaged over every substep of the averaging window
+    density: np.ndarray  # (N,) kg/m^3, averaged likewise
+    substeps: int
+    max_error: float  # the solver's largest mean compression in the averaging window
+    volume_half: float  # SPH volume at the half-way frame, m^3
+    volume_end: float  # SPH volume at the end, m^3
+
+
+def _settle_and_average(solver, world, state, settle_time, average_time, progress, started) -> _Settled:
+    """Run the column for ``settle_time`` s in 0.02 s chunks; average pressure and density over every
+    substep of the last ``average_time`` s."""
     mass = world.particle_mass
-    volume0 = float(np.sum(mass / sph_density(state.positions, boundary, params_from_world(world))))
     frame = 0.02
     chunks = int(round(settle_time / frame))
     average_chunks = int(round(average_time / frame))
@@ -181,8 +232,14 @@ def hydrostatic(progress=None, columns=12, layers=24, spacing=0.02, settle_time=
             volume_half = float(np.sum(mass / solver.frame_attributes(state, world)["density"]))
         _progress_frame(progress, k, chunks, state.count, stats.substeps, time.monotonic() - t0, started)
     volume_end = float(np.sum(mass / solver.frame_attributes(state, world)["density"]))
-    pressure = pressure_sum / samples
-    density = density_sum / samples
+    return _Settled(state, pressure_sum / samples, density_sum / samples, substeps, max_error, volume_half, volume_end)
+
+
+def _hydrostatic_metrics(world, settled, upper, layers, top_count, height0, volume0, started) -> dict:
+    """The hydrostatic case's metrics (see ``hydrostatic``) from the settled column; ``seconds`` since ``started``."""
+    rho0, g = world.rest_density, abs(world.gravity[2])
+    support, spacing, width = world.support_radius, world.particle_spacing, upper[0]
+    state, pressure, density = settled.state, settled.pressure, settled.density
     x = state.positions
     surface = float(np.max(x[:, 2]))
     below_top = (surface - x[:, 2]) > support
@@ -203,47 +260,23 @@ def hydrostatic(progress=None, columns=12, layers=24, spacing=0.02, settle_time=
         if sel.any():
             profile.append([round(float(np.mean(x[sel, 2])), 4), round(float(np.mean(pressure[sel])), 1),
                             round(float(rho0 * g * (surface - np.mean(x[sel, 2]))), 1)])
-    metrics = {
+    volume_half, volume_end = settled.volume_half, settled.volume_end
+    return {
         "slope_ratio": float(slope / (rho0 * g)),
         "slope_ratio_top_only": float(slope_top_only / (rho0 * g)),
         "mean_density_error": float(np.mean(bulk_error)),
         "max_density_error": float(np.max(bulk_error)),
         "max_compression": float(np.max(density - rho0) / rho0),
-        "solver_mean_compression": max_error,
+        "solver_mean_compression": settled.max_error,
         "outside_walls": outside,
         "volume_drift": abs(volume_end - volume_half) / volume_half,
         "volume_change_from_lattice": (volume_end - volume0) / volume0,
-        "column_height_change": (column_height(x) - height0) / height0,
+        "column_height_change": (_top_height(x, top_count) - height0) / height0,
         "max_speed_ratio": speed / math.sqrt(g * depth),
         "particles": int(state.count),
-        "substeps": int(substeps),
+        "substeps": int(settled.substeps),
         "seconds": time.monotonic() - started,
         "profile_z_p_rho0gd": profile,
-    }
-    tolerances = {
-        "slope_ratio": [0.98, 1.02],
-        "mean_density_error": 0.001,
-        "max_density_error": 0.01,
-        "outside_walls": 0,
-        "volume_drift": 0.001,
-    }
-    passed = (tolerances["slope_ratio"][0] <= metrics["slope_ratio"] <= tolerances["slope_ratio"][1]
-              and metrics["mean_density_error"] <= tolerances["mean_density_error"]
-              and metrics["max_density_error"] < tolerances["max_density_error"]
-              and metrics["outside_walls"] == 0
-              and metrics["volume_drift"] < tolerances["volume_drift"])
-    return {
-        "case": "hydrostatic",
-        "passed": bool(passed),
-        "metrics": metrics,
-        "tolerances": tolerances,
-        "source": ("p = rho0 g d (hydrostatics); tolerances: Splashdraft physics-references section 6c "
-                   "(recommendation); 0.01-0.1 % average density error as in Bender & Koschier 2015 (SCA) "
-                   "and Ihmsen et al. 2014 (IEEE TVCG)"),
-        "notes": ("slope fitted on interior particles excluding the top H and the bottom H (kernel truncated "
-                  "at the free surface and at the one-layer wall); slope_ratio_top_only excludes only the top H. "
-                  "Pressure and density averaged over the last "
-                  f"{average_time:g} s."),
     }
 
 
@@ -273,17 +306,17 @@ def _row_edge(positions, spacing, near_axis, plane, along_axis, slab_layers, emp
     return float(values[max(0, len(values) - slab_layers)] + 0.5 * spacing)
 
 
-def dam_front(positions, spacing, floor, slab_layers):
+def dam_front(positions, spacing, floor, slab_layers) -> float:
     """Surge front x (m): the edge of the leading full row on the floor (``_row_edge``)."""
     return _row_edge(positions, spacing, 2, floor, 0, slab_layers, float("nan"))
 
 
-def column_height(positions, spacing, back, slab_layers):
+def column_height(positions, spacing, back, slab_layers) -> float:
     """Residual column height (m): the top of the full row at the back wall at x = ``back`` (``_row_edge``)."""
     return _row_edge(positions, spacing, 0, back, 2, slab_layers, 0.0)
 
 
-def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45):
+def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45) -> dict:
     """Martin & Moyce 1952 dam break, n^2 = 2, a = 0.05715 m, in a thin 3D slab.
 
     Set-up: fluid block of width a (x) and height 2a (z), ``across`` particles over
@@ -392,7 +425,8 @@ def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45):
 
 
 
-def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01, amplitude=0.01, periods=3.0):
+def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01, amplitude=0.01,
+             periods=3.0) -> dict:
     """First sloshing mode of a rectangular tank: its period against linear theory.
 
     Linear surface-wave dispersion (Airy theory; Lamb 1932, "Hydrodynamics", ch. IX [M];
@@ -593,7 +627,7 @@ def _fit_damped_period(times, signal, guess):
     return float(abs(fitted[3])), float(fitted[2])
 
 
-def run_case(name, progress=None):
+def run_case(name, progress=None) -> dict:
     """Run validation case ``name`` (one of ``CASES``) and return its result dict.
 
     Raises:

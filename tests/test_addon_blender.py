@@ -137,6 +137,7 @@ def test_shot_exports_bakes_plays_back_renders_swaps_and_exports(tmp_path):
     assert refusals["versions_after_budget"] == ["v001_sph", "v002_sph"], "a refused bake leaves no version"
     assert 'emitter "Sheet"' in refusals["open_fill"] and "not closed" in refusals["open_fill"], refusals
     assert "splashdraft_estimate_" not in refusals["open_fill"], "no temporary export paths in messages"
+    assert 'emitter "Sheet"' in refusals["open_fill_panel"], "the engine's message is shown in the panel"
     corrupt = result["corrupt"]
     assert corrupt["count"] == 0 and corrupt["warned"] == 1, corrupt
     assert "points_0002.ply" in corrupt["messages"][0] and "damaged" in corrupt["messages"][0], corrupt
@@ -602,7 +603,7 @@ def child_shot(tmp):
     out = {}
 
     # Export, checked against closed forms.
-    scene_path, data = export_module.build_scene(scene, tmp / "export_check")
+    scene_path, data, _ = export_module.build_scene(scene, tmp / "export_check")
     fill = next(e for e in data["emitters"] if e["name"] == "Water")
     vertices, triangles = read_obj(scene_path.parent / fill["mesh"])
     paddle = next(c for c in data["colliders"] if c["name"] == "Paddle")
@@ -628,7 +629,7 @@ def child_shot(tmp):
     sheet.splashdraft.role = "COLLIDER"
     wave = sheet.modifiers.new("wave", "WAVE")
     wave.height, wave.width, wave.speed = 0.05, 0.1, 0.1
-    moving_path, moving = export_module.build_scene(scene, tmp / "export_moving")
+    moving_path, moving, _ = export_module.build_scene(scene, tmp / "export_moving")
     stream = next(e for e in moving["emitters"] if e["name"] == "Tap")
     flag = next(c for c in moving["colliders"] if c["name"] == "Flag")
     with np.load(moving_path.parent / stream["transforms"], allow_pickle=False) as archive:
@@ -642,7 +643,7 @@ def child_shot(tmp):
         bpy.data.objects.remove(obj)
 
     scene.unit_settings.scale_length = 0.01
-    _, centimetres = export_module.build_scene(scene, tmp / "export_cm")
+    centimetres = export_module.build_scene(scene, tmp / "export_cm").data
     out["export"]["centimetre_spacing"] = centimetres["particle_spacing"]
     out["export"]["centimetre_bounds_max"] = centimetres["bounds"]["max"]
     scene.unit_settings.scale_length = 1.0
@@ -740,6 +741,7 @@ def child_shot(tmp):
         refusals["open_fill"] = "no error"
     except RuntimeError as exc:
         refusals["open_fill"] = str(exc)
+    refusals["open_fill_panel"] = shot.estimate_text  # validated in Blender's process: no worker ran
     bpy.data.objects.remove(sheet)
     out["refusals"] = refusals
 

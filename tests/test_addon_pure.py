@@ -133,12 +133,19 @@ def test_versions_are_numbered_and_read_from_engine_manifests(tmp_path):
     for frame, count in ((1, 3), (2, 5)):
         writer.write_frame(frame, {"positions": np.zeros((count, 3)), "velocities": np.zeros((count, 3)),
                                    "ids": np.arange(count), "density": np.ones(count), "pressure": np.zeros(count)},
-                           time=0.0, substeps=1, seconds=0.0)
+                           time=(frame - 1) / 24, substeps=1, seconds=0.0)
     (shot / "v007_learned").mkdir()
     (shot / "notes").mkdir()
+    damaged = shot / "v004_sph"  # a manifest cut short: listed, empty, with the engine reader's message
+    damaged.mkdir()
+    text = (shot / "v001_sph" / "manifest.json").read_text()
+    (damaged / "manifest.json").write_text(text[: len(text) // 2])
     found = versions.list_versions(shot)
     assert [(v["name"], v["frames"], v["particles"], v["readable"]) for v in found] == [
-        ("v001_sph", 2, 5, True), ("v007_learned", 0, 0, False)]
+        ("v001_sph", 2, 5, True), ("v004_sph", 0, 0, False), ("v007_learned", 0, 0, False)]
+    assert [v["problem"] is None for v in found] == [True, False, True]  # no manifest yet is no problem
+    assert "v004_sph/manifest.json: manifest is not valid JSON" in found[1]["problem"]
+    assert "bake the cache again" in found[1]["problem"]
     assert versions.next_version_dir(shot, "sph").name == "v008_sph"
 
 
@@ -252,7 +259,7 @@ def test_counts_read_as_english_in_status_lines():
                                                       "particles": 1})
     assert progress.status_text().endswith("1 particle")
     done = jobs.apply_event(jobs.BakeProgress(), {"event": "finished", "frames": 1, "seconds": 2})
-    assert done.status_text() == "Splashdraft: baked 1 frame in 2 s"
+    assert done.status_text() == "Splashdraft: baked 1 frame in 2.0s"  # engine.progress.format_duration
 
 
 def test_compare_pair_is_the_shown_version_and_the_newest_of_the_other_solver():

@@ -23,6 +23,7 @@ exponential learning-rate decay to ``--lr-final``.
 """
 
 import argparse
+import dataclasses
 import io
 import json
 import os
@@ -30,6 +31,7 @@ import shutil
 import sys
 import time
 from pathlib import Path
+from typing import Optional
 
 import numpy as np
 
@@ -84,19 +86,19 @@ def _normalised_sample(shot, k, stride, config, stats, rng, noise):
     return inputs, target, mask
 
 
-def sample_pool(shots, strides):
+def sample_pool(shots, strides) -> list:
     """[(shot, frame position, stride)] of every usable sample."""
     return [(s, k, stride) for s in shots for stride in strides for k in s.sample_indices(stride)]
 
 
-def compute_statistics(shots, config, rng):
+def compute_statistics(shots, config, rng) -> dict:
     pool = sample_pool(shots, config["strides"])
     picks = rng.choice(len(pool), size=min(config["statistics_samples"], len(pool)), replace=False)
     samples = [dataset.make_sample(pool[i][0], pool[i][1], config, stride=pool[i][2]) for i in picks]
     return dataset.feature_statistics(samples)
 
 
-def plot_losses(history, path):
+def plot_losses(history, path) -> None:
     series = [("train", [h[0] for h in history["train"]], [h[1] for h in history["train"]])]
     if history["validation"]:
         series.append(("validation", [h[0] for h in history["validation"]], [h[1] for h in history["validation"]]))
@@ -110,7 +112,7 @@ def plot_losses(history, path):
     line_plot_png(series, path, log_y=True, x_label="iteration", y_label="mse")
 
 
-def export(model, run, name, sample_inputs, config, stats, training_info):
+def export(model, run, name, sample_inputs, config, stats, training_info) -> tuple:
     """Export ONNX + contract into ``run``; check onnxruntime vs PyTorch; return (onnx path, check dict)."""
     import torch
 
@@ -143,7 +145,7 @@ def export(model, run, name, sample_inputs, config, stats, training_info):
     return onnx_path, check
 
 
-def train_on_pool(model, optimiser, pool, config, stats, rng, batch, noise):
+def train_on_pool(model, optimiser, pool, config, stats, rng, batch, noise) -> tuple:
     """Pick ``batch`` (shot, k, stride) entries of ``pool`` at random (with replacement), normalise them with
     ``noise`` and take one ``train_step``. Returns (the loss or None, the samples)."""
     picks = rng.integers(0, len(pool), batch)
@@ -151,7 +153,7 @@ def train_on_pool(model, optimiser, pool, config, stats, rng, batch, noise):
     return train_step(model, optimiser, samples), samples
 
 
-def train_step(model, optimiser, samples):
+def train_step(model, optimiser, samples) -> Optional[float]:
     """One optimiser step on a batch of (normalised inputs, target, mask) samples: the mean squared
     error over the masked particles, gradients clipped to norm 1. Returns the loss, or None when no
     particle in the batch has a target."""
@@ -172,20 +174,76 @@ def train_step(model, optimiser, samples):
     return float(loss.detach())
 
 
-def train(data, out, resume=False, overrides=None, minutes=None, export_to=None, name=None, log=print):
+@dataclasses.dataclass
+class _Session:
+    """A training run's changing state: model, optimiser, loss history, iteration count, numpy RNG, time.
+
+    ``history`` holds ``train`` and ``validation`` lists of (iteration, loss); ``seconds_before`` is the
+    training time of earlier sessions of a resumed run; ``started`` is this session's ``time.monotonic()``.
+    """
+
+    model: object
+    optimiser: object
+    rng: np.random.Generator
+    history: dict
+    iteration: int = 0
+    seconds_before: float = 0.0
+    started: float = 0.0
+
+    def seconds(self) -> float:
+        """Training seconds of the run so far, earlier sessions included."""
+        return self.seconds_before + time.monotonic() - self.started
+
+
+def train(data, out, resume=False, overrides=None, minutes=None, export_to=None, name=None, log=print) -> dict:
     """Train (or continue) a run; returns the run summary dict. See the module docstring."""
     import torch
 
-    from .model import GraphCore, as_tensors
+    from .model import GraphCore
 
     torch.set_num_threads(2)
     run = Path(out)
     run.mkdir(parents=True, exist_ok=True)
     name = name or run.name
-    config_path, checkpoint_path = run / "config.json", run / "checkpoint.pt"
     manifest, shots = dataset.load_shots(data)
     if not shots:
         raise SplashdraftError(f"{data}: no baked shots with 4+ frames; run python -m training.generate --out {data}")
+    config = _run_config(data, run / "config.json", resume, overrides, manifest, shots)
+
+    rng = np.random.default_rng(config["seed"])
+    torch.manual_seed(config["seed"])
+    train_shots, validation_shots = _split(shots, config["validation_shots"])
+    stats = _run_statistics(run / "stats.json", resume, train_shots, config, rng)
+    model = GraphCore(config["latent"], config["rounds"])
+    session = _Session(model, torch.optim.Adam(model.parameters(), lr=config["lr"]), rng,
+                         {"train": [], "validation": []})
+    checkpoint_path = run / "checkpoint.pt"
+    if resume and checkpoint_path.exists():
+        _restore_checkpoint_into(session, checkpoint_path)
+        log(f"resumed at iteration {session.iteration}")
+    validation = _validation_samples(validation_shots, config, stats)
+    samples = _fit(session, sample_pool(train_shots, config["strides"]), validation, config, stats, minutes,
+                   lambda: _save_checkpoint(run, checkpoint_path, session), log)
+    seconds = session.seconds()
+
+    sample = validation[0][0] if validation else samples[0][0]
+    training_info = _training_info(data, manifest, shots, train_shots, validation_shots, session, seconds, config)
+    onnx_path, check = export(model, run, name, sample, config, stats, training_info)
+    summary = {"run": str(run), "iterations": session.iteration, "seconds": seconds, "onnx": str(onnx_path),
+               "export_check": check, "final_validation_loss": training_info["final_validation_loss"]}
+    if export_to:
+        summary["exported_to"] = _copy_model(onnx_path, Path(export_to))
+    write_atomic(run / "summary.json", (json.dumps(summary, indent=1) + "\n").encode())
+    return summary
+
+
+def _run_config(data, config_path, resume, overrides, manifest, shots) -> dict:
+    """The run's settings: DEFAULTS, then ``overrides``, the data's step range; a resumed run keeps its
+    own and must match. Written to ``config_path``.
+
+    Raises:
+        SplashdraftError: bad ``--strides``, or ``--resume`` with settings that differ from the run's.
+    """
     config = dict(DEFAULTS)
     config.update({k: v for k, v in (overrides or {}).items() if v is not None})
     resumed_config = json.loads(config_path.read_text()) if resume and config_path.exists() else None
@@ -213,91 +271,122 @@ def train(data, out, resume=False, overrides=None, minutes=None, export_to=None,
         previous["iterations"] = config["iterations"]
         config = previous
     write_atomic(config_path, (json.dumps(config, indent=1) + "\n").encode())
+    return config
 
-    rng = np.random.default_rng(config["seed"])
-    torch.manual_seed(config["seed"])
-    train_shots, validation_shots = _split(shots, config["validation_shots"])
-    stats_path = run / "stats.json"
+
+def _run_statistics(stats_path, resume, train_shots, config, rng) -> dict:
+    """The normalisation statistics: read back on resume, else computed from the training shots and written."""
     if resume and stats_path.exists():
-        stats = {k: np.asarray(v) for k, v in json.loads(stats_path.read_text()).items()}
-    else:
-        stats = compute_statistics(train_shots, config, rng)
-        write_atomic(stats_path, (json.dumps({k: v.tolist() for k, v in stats.items()}, indent=1) + "\n").encode())
+        return {k: np.asarray(v) for k, v in json.loads(stats_path.read_text()).items()}
+    stats = compute_statistics(train_shots, config, rng)
+    write_atomic(stats_path, (json.dumps({k: v.tolist() for k, v in stats.items()}, indent=1) + "\n").encode())
+    return stats
 
-    model = GraphCore(config["latent"], config["rounds"])
-    optimiser = torch.optim.Adam(model.parameters(), lr=config["lr"])
-    history = {"train": [], "validation": []}
-    iteration, seconds_before = 0, 0.0
-    if resume and checkpoint_path.exists():
-        payload = torch.load(checkpoint_path, weights_only=True)
-        model.load_state_dict(payload["model"])
-        optimiser.load_state_dict(payload["optimiser"])
-        iteration = int(payload["iteration"])
-        history = json.loads(payload["history"])
-        rng.bit_generator.state = json.loads(payload["numpy_rng"])
-        torch.set_rng_state(payload["torch_rng"])
-        seconds_before = float(payload["seconds"])
-        log(f"resumed at iteration {iteration}")
 
+def _restore_checkpoint_into(session, checkpoint_path) -> None:
+    """Load model, optimiser, iteration, history, both RNG states and time from the checkpoint into ``session``."""
+    import torch
+
+    payload = torch.load(checkpoint_path, weights_only=True)
+    session.model.load_state_dict(payload["model"])
+    session.optimiser.load_state_dict(payload["optimiser"])
+    session.iteration = int(payload["iteration"])
+    session.history = json.loads(payload["history"])
+    session.rng.bit_generator.state = json.loads(payload["numpy_rng"])
+    torch.set_rng_state(payload["torch_rng"])
+    session.seconds_before = float(payload["seconds"])
+
+
+def _save_checkpoint(run, checkpoint_path, session) -> None:
+    """Write the checkpoint, ``losses.json`` and ``loss.png`` (atomically)."""
+    import torch
+
+    history = session.history
+    _save_torch(checkpoint_path, {
+        "model": session.model.state_dict(), "optimiser": session.optimiser.state_dict(),
+        "iteration": session.iteration, "history": json.dumps(history),
+        "numpy_rng": json.dumps(session.rng.bit_generator.state), "torch_rng": torch.get_rng_state(),
+        "seconds": session.seconds(),
+    })  # fmt: skip
+    write_atomic(run / "losses.json", (json.dumps(history) + "\n").encode())
+    if history["train"]:
+        plot_losses(history, run / "loss.png")
+
+
+def _validation_samples(validation_shots, config, stats) -> list:
+    """Up to 24 normalised, noise-free samples of the validation shots, picked with seed + 1."""
     validation = []
     if validation_shots:
         vrng = np.random.default_rng(config["seed"] + 1)
         pool = sample_pool(validation_shots, config["strides"])
         for i in vrng.choice(len(pool), size=min(24, len(pool)), replace=False):
             validation.append(_normalised_sample(*pool[i], config, stats, None, 0.0))
-    pool = sample_pool(train_shots, config["strides"])
+    return validation
 
-    def validation_loss():
-        model.eval()
-        total, count = 0.0, 0
-        with torch.no_grad():
-            for inputs, target, mask in validation:
-                out = model(*as_tensors(inputs)).numpy()
-                total += float(((out - target)[mask] ** 2).sum())
-                count += int(mask.sum()) * 3
-        model.train()
-        return total / max(count, 1)
 
-    def save_checkpoint():
-        _save_torch(checkpoint_path, {
-            "model": model.state_dict(), "optimiser": optimiser.state_dict(), "iteration": iteration,
-            "history": json.dumps(history), "numpy_rng": json.dumps(rng.bit_generator.state),
-            "torch_rng": torch.get_rng_state(), "seconds": seconds_before + time.monotonic() - started,
-        })  # fmt: skip
-        write_atomic(run / "losses.json", (json.dumps(history) + "\n").encode())
-        if history["train"]:
-            plot_losses(history, run / "loss.png")
+def masked_mse(model, samples) -> float:
+    """Mean squared error of ``model`` over the (normalised inputs, target, mask) ``samples``: every
+    component of every particle with a target, without gradients (the model's mode is left as it is)."""
+    import torch
 
-    started = time.monotonic()
+    from .model import as_tensors
+
+    total, count = 0.0, 0
+    with torch.no_grad():
+        for inputs, target, mask in samples:
+            out = model(*as_tensors(inputs)).numpy()
+            total += float(((out - target)[mask] ** 2).sum())
+            count += int(mask.sum()) * 3
+    return total / max(count, 1)
+
+
+def _validation_loss(model, validation) -> float:
+    """``masked_mse`` over the validation samples, in evaluation mode; the model is left in training mode."""
+    model.eval()
+    loss = masked_mse(model, validation)
+    model.train()
+    return loss
+
+
+def _fit(session, pool, validation, config, stats, minutes, save_checkpoint, log) -> list:
+    """Train ``session`` up to ``config["iterations"]`` (or ``minutes``), with the learning-rate decay,
+    validation and checkpoints; ends with a validation loss and a checkpoint. Returns the last batch's samples."""
+    session.started = time.monotonic()
+    model, optimiser, history = session.model, session.optimiser, session.history
     total_iterations = config["iterations"]
     decay = (config["lr_final"] / config["lr"]) ** (1.0 / max(total_iterations, 1))
     model.train()
-    while iteration < total_iterations:
-        if minutes is not None and time.monotonic() - started > 60 * minutes:
-            log(f"time budget of {minutes} min reached at iteration {iteration}")
+    samples = []
+    while session.iteration < total_iterations:
+        if minutes is not None and time.monotonic() - session.started > 60 * minutes:
+            log(f"time budget of {minutes} min reached at iteration {session.iteration}")
             break
         for group in optimiser.param_groups:
-            group["lr"] = config["lr"] * decay**iteration
-        loss, samples = train_on_pool(model, optimiser, pool, config, stats, rng, config["batch"], config["noise"])
-        iteration += 1
+            group["lr"] = config["lr"] * decay**session.iteration
+        loss, samples = train_on_pool(model, optimiser, pool, config, stats, session.rng, config["batch"],
+                                      config["noise"])  # fmt: skip
+        session.iteration += 1
+        iteration = session.iteration
         if loss is None:
             continue
         history["train"].append((iteration, loss))
         if validation and iteration % config["validate_every"] == 0:
-            history["validation"].append((iteration, validation_loss()))
+            history["validation"].append((iteration, _validation_loss(model, validation)))
         if iteration % config["checkpoint_every"] == 0:
             save_checkpoint()
             recent = np.mean([h[1] for h in history["train"][-config["checkpoint_every"]:]])
             vloss = history["validation"][-1][1] if history["validation"] else float("nan")
-            log(f"iteration {iteration}: train {recent:.4g}, validation {vloss:.4g}, "
-                f"{time.monotonic() - started + seconds_before:.0f} s")
+            log(f"iteration {iteration}: train {recent:.4g}, validation {vloss:.4g}, {session.seconds():.0f} s")
     if validation:
-        history["validation"].append((iteration, validation_loss()))
+        history["validation"].append((session.iteration, _validation_loss(model, validation)))
     save_checkpoint()
-    seconds = seconds_before + time.monotonic() - started
+    return samples
 
-    sample = validation[0][0] if validation else samples[0][0]
-    training_info = {
+
+def _training_info(data, manifest, shots, train_shots, validation_shots, session, seconds, config) -> dict:
+    """The ``training`` record of the model contract: data, shots, iterations, time, final losses, command."""
+    history = session.history
+    return {
         "data": str(data),
         "data_manifest": {"kind": manifest.get("kind"), "family_seed": manifest.get("family_seed"),
                           "shots": len(shots), "particle_spacing": manifest.get("particle_spacing"),
@@ -305,30 +394,27 @@ def train(data, out, resume=False, overrides=None, minutes=None, export_to=None,
         "viscosity_range": [min(s.scene.fluid.viscosity for s in shots), max(s.scene.fluid.viscosity for s in shots)],
         "train_shots": [s.name for s in train_shots],
         "validation_shots": [s.name for s in validation_shots],
-        "iterations": iteration,
+        "iterations": session.iteration,
         "training_seconds": round(seconds, 1),
         "final_train_loss_mean_last_200": float(np.mean([h[1] for h in history["train"][-200:]])) if history["train"] else None,
         "final_validation_loss": history["validation"][-1][1] if history["validation"] else None,
         "config": {k: config[k] for k in DEFAULTS},
         "command": "python -m training.train " + " ".join(sys.argv[1:]) if sys.argv else "",
     }
-    onnx_path, check = export(model, run, name, sample, config, stats, training_info)
-    summary = {"run": str(run), "iterations": iteration, "seconds": seconds, "onnx": str(onnx_path), "export_check": check,
-               "final_validation_loss": training_info["final_validation_loss"]}
-    if export_to:
-        target = Path(export_to)
-        target.parent.mkdir(parents=True, exist_ok=True)
-        shutil.copyfile(onnx_path, target.with_suffix(".onnx"))
-        contract = json.loads(onnx_path.with_suffix(".json").read_text())
-        contract["onnx_file"] = target.with_suffix(".onnx").name
-        contract["name"] = target.stem
-        contract_module.write_contract(target.with_suffix(".json"), contract)
-        summary["exported_to"] = str(target.with_suffix(".onnx"))
-    write_atomic(run / "summary.json", (json.dumps(summary, indent=1) + "\n").encode())
-    return summary
 
 
-def main(argv=None):
+def _copy_model(onnx_path, target) -> str:
+    """Copy the exported model and its contract to the path stem ``target``; returns the new .onnx path."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    shutil.copyfile(onnx_path, target.with_suffix(".onnx"))
+    contract = json.loads(onnx_path.with_suffix(".json").read_text())
+    contract["onnx_file"] = target.with_suffix(".onnx").name
+    contract["name"] = target.stem
+    contract_module.write_contract(target.with_suffix(".json"), contract)
+    return str(target.with_suffix(".onnx"))
+
+
+def main(argv=None) -> int:
     parser = argparse.ArgumentParser(prog="python -m training.train",
                                      description="Train the learned core on baked shots and export it to ONNX.")
     parser.add_argument("--data", default="data/train", help="Data folder from training.generate (default data/train).")
