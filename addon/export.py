@@ -17,10 +17,11 @@ import bpy
 import numpy as np
 
 from ..engine.boundary import FACE_NAMES
+from ..engine.cache import SCENE_FILE
 from ..engine.scene import FORMAT, VERSION, Scene, save_scene
 from . import motion
 from .errors_ui import AddonError
-from .versions import SCENE_FILE, safe_name
+from .versions import safe_name
 
 MESH_FOLDER = "meshes"
 

@@ -12,7 +12,7 @@ import re
 from pathlib import Path
 from typing import Optional
 
-from ..engine.cache import manifest_or_problem
+from ..engine.cache import SCENE_FILE, manifest_or_problem
 from ..engine.errors import CacheError
 from ..engine.inputs import read_json
 from ..engine.wedge import WEDGE_MANIFEST
@@ -20,7 +20,6 @@ from ..engine.wedge import WEDGE_MANIFEST
 VERSION_PATTERN = re.compile(r"^v(\d{3,})_([a-z]+)$")
 VARIANT_PATTERN = re.compile(r"^v\d{2,}(_[A-Za-z0-9._-]*)?$")
 INPUT_FOLDER = "input"
-SCENE_FILE = "scene.json"
 
 
 def safe_name(text, fallback="shot") -> str:

@@ -39,8 +39,11 @@ CACHE_VERSION = 1
 MANIFEST_NAME = "manifest.json"
 CHECKPOINT_NAME = "checkpoint.npz"
 #: The copy of the baked scene kept in the cache folder (meshes and motion beside it as npz).
+#: The file name of a scene in the scene format, wherever one is written (cache copy, add-on export,
+#: training shots, wedge variants).
+SCENE_FILE = "scene.json"
 SCENE_FOLDER = "scene"
-SCENE_COPY = SCENE_FOLDER + "/scene.json"
+SCENE_COPY = SCENE_FOLDER + "/" + SCENE_FILE
 
 #: PLY properties of a frame, in file order: (name, PLY type). Units: m, m/s, -, kg/m^3, Pa.
 PLY_PROPERTIES = (
@@ -452,7 +455,7 @@ class CacheReader:
         paths += [self.frame_path(frame) for frame in self.frames]
         scene_folder = self.folder / SCENE_FOLDER
         if scene_folder.is_dir() and not scene_folder.is_symlink():
-            paths += [p for p in scene_folder.iterdir() if p.name == "scene.json" or SCENE_ARRAY_RE.fullmatch(p.name)]
+            paths += [p for p in scene_folder.iterdir() if p.name == SCENE_FILE or SCENE_ARRAY_RE.fullmatch(p.name)]
         return sum(p.stat().st_size for p in paths if p.is_file())
 
 
@@ -731,7 +734,7 @@ def remove_stale_temporaries(folder) -> list:
         entries = list(Path(folder).iterdir())
     except OSError:
         return removed
-    ours = (MANIFEST_NAME, CHECKPOINT_NAME, "scene.json")
+    ours = (MANIFEST_NAME, CHECKPOINT_NAME, SCENE_FILE)
     for path in entries:
         match = TEMPORARY_RE.fullmatch(path.name)
         name = match.group(1) if match else ""

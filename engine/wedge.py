@@ -42,7 +42,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .cache import MANIFEST_NAME, open_cache, write_atomic
+from .cache import MANIFEST_NAME, SCENE_FILE, open_cache, write_atomic
 from .errors import CacheError, SceneError, SplashdraftError, UsageError
 from .inputs import read_json
 
@@ -180,7 +180,7 @@ def plan_variants(scene_file, vary, out_dir, solver_name):
             check_work(scene, None)
         except SplashdraftError as exc:
             raise type(exc)(f"wedge variant {name} ({label_of(settings)}): {exc}") from None
-        target = out_dir / "scenes" / name / "scene.json"
+        target = out_dir / "scenes" / name / SCENE_FILE
         plan.append({"name": name, "settings": settings, "scene_file": str(target), "cache": str(out_dir / name),
                      "scene": scene})  # fmt: skip
     for variant in plan:  # written only once every variant is valid

@@ -36,7 +36,7 @@ import time
 from pathlib import Path
 
 from engine.bake import bake
-from engine.cache import open_cache, write_atomic
+from engine.cache import SCENE_FILE, open_cache, write_atomic
 from engine.errors import SplashdraftError
 from engine.farm import add_where_options
 from engine.scene import save_scene
@@ -86,7 +86,7 @@ def _summary(name, folder, scene_dict):
     seconds = sum(reader.manifest["frames"][str(f)].get("seconds", 0.0) for f in frames)
     return {
         "name": name,
-        "scene": f"{name}/scene.json",
+        "scene": f"{name}/{SCENE_FILE}",
         "cache": f"{name}/cache",
         "seed": int(scene_dict["seed"]),
         "frames": [frames[0], frames[-1]] if frames else [],
@@ -130,12 +130,12 @@ def generate_shot(job):
     if status == "complete":
         return {"summary": _summary(job["name"], folder, scene_dict), "message": f"{job['name']}: complete, skipped"}
     started = time.monotonic()
-    if status == "partial" and (folder / "scene.json").exists():
-        result = bake(folder / "scene.json", "sph", folder / "cache", resume=True, use_signals=False)
+    if status == "partial" and (folder / SCENE_FILE).exists():
+        result = bake(folder / SCENE_FILE, "sph", folder / "cache", resume=True, use_signals=False)
         how = "resumed, "
     else:
-        save_scene(folder / "scene.json", scene_dict)
-        result = bake(folder / "scene.json", "sph", folder / "cache", overwrite=True, use_signals=False)
+        save_scene(folder / SCENE_FILE, scene_dict)
+        result = bake(folder / SCENE_FILE, "sph", folder / "cache", overwrite=True, use_signals=False)
         how = ""
     message = (f"{job['name']}: {how}{result.frames_written} frames, {result.particles} particles, "
                f"{time.monotonic() - started:.1f} s")  # fmt: skip
