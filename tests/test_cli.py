@@ -155,4 +155,4 @@ def test_validate_reports_and_maps_the_verdict_to_the_exit_status(capsys, monkey
     code, out, err = run_cli(["validate", "dam-break"], capsys)
     assert code == 0 and out == "" and "1 of 1 cases within tolerance" in err
     code, _, err = run_cli(["validate", "no-such-case"], capsys)
-    assert code == 64 and "choose one of hydrostatic, dam-break, sloshing or 'all'" in err
+    assert code == 64 and "choose one of hydrostatic, dam-break, sloshing, impact or 'all'" in err
