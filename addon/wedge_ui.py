@@ -10,6 +10,7 @@ frame and shown on the same liquid object as any bake.
 
 import shutil
 import time
+from pathlib import Path
 
 import bpy
 from bpy.props import CollectionProperty, FloatProperty, IntProperty, PointerProperty, StringProperty

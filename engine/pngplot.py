@@ -108,7 +108,7 @@ def line_plot_png(series, path=None, width=720, height=420, log_y=False, x_label
     pad = 0.05 * (y_max - y_min)
     y_min, y_max = y_min - pad, y_max + pad
 
-    def to_px(x, y) -> tuple[float, float]:
+    def to_px(x, y) -> tuple[float | np.ndarray, float | np.ndarray]:
         px = left + (x - x_min) / (x_max - x_min) * (width - left - right)
         py = height - bottom - (y - y_min) / (y_max - y_min) * (height - top - bottom)
         return px, py
