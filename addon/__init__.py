@@ -17,11 +17,11 @@ def _modules():
     return (props, display, ops, ui, fidelity, wedge_ui)
 
 
-def register():
+def register() -> None:
     for module in _modules():
         module.register()
 
 
-def unregister():
+def unregister() -> None:
     for module in reversed(_modules()):
         module.unregister()

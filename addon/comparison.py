@@ -17,7 +17,7 @@ from .jobs import boot_code
 REPORT_PREFIX = "compare_"
 
 
-def pick_pair(versions, shown_name):
+def pick_pair(versions, shown_name) -> tuple[str, str] | None:
     """The (reference, preview) version names to compare, or None.
 
     Args:
@@ -40,19 +40,19 @@ def pick_pair(versions, shown_name):
     return shown["name"], others[-1]["name"]
 
 
-def report_paths(preview_folder, reference_name):
+def report_paths(preview_folder, reference_name) -> tuple[Path, Path, Path]:
     """(json, txt, png) paths of the comparison of ``preview_folder`` against ``reference_name``."""
     base = Path(preview_folder) / f"{REPORT_PREFIX}{reference_name}"
     return base.with_suffix(".json"), base.with_suffix(".txt"), base.with_suffix(".png")
 
 
-def compare_command(python, python_args, extension_root, reference_dir, preview_dir, plot_path, wheel_site=None):
+def compare_command(python, python_args, extension_root, reference_dir, preview_dir, plot_path, wheel_site=None) -> list[str]:
     """argv of ``python -m engine compare REFERENCE PREVIEW --json --plot PNG --progress json``."""
     return [str(python), *python_args, "-c", boot_code(extension_root, wheel_site), "compare",
             str(reference_dir), str(preview_dir), "--json", "--plot", str(plot_path), "--progress", "json"]
 
 
-def parse_result(stdout_lines):
+def parse_result(stdout_lines) -> dict | None:
     """The engine's JSON result from the worker's stdout lines, or None when it is not there."""
     text = "\n".join(stdout_lines).strip()
     start = text.find("{")
@@ -65,7 +65,7 @@ def parse_result(stdout_lines):
     return result if isinstance(result, dict) and isinstance(result.get("frames"), list) else None
 
 
-def short_message(message, folders):
+def short_message(message, folders) -> str:
     """The engine's message for the sidebar: each version folder replaced by the version's name.
 
     Args:
@@ -77,7 +77,7 @@ def short_message(message, folders):
     return message
 
 
-def write_report(result, json_path, table_text=""):
+def write_report(result, json_path, table_text="") -> None:
     """Store ``result`` (and the per-frame table) beside the preview, each file written then renamed."""
     for path, text in ((Path(json_path), json.dumps(result, indent=1) + "\n"),
                        (Path(json_path).with_suffix(".txt"), table_text + "\n")):
@@ -86,7 +86,7 @@ def write_report(result, json_path, table_text=""):
         os.replace(temporary, path)
 
 
-def read_report(json_path):
+def read_report(json_path) -> dict | None:
     """The stored result, or None when there is none or it cannot be read."""
     try:
         result = json.loads(Path(json_path).read_text(encoding="utf-8"))
@@ -95,7 +95,7 @@ def read_report(json_path):
     return result if isinstance(result, dict) and isinstance(result.get("frames"), list) else None
 
 
-def summary(result):
+def summary(result) -> dict:
     """The panel's figures from an ``engine.compare`` result.
 
     Returns a dict: ``frames``, ``mean_chamfer`` and ``max_chamfer`` (particle spacings),
@@ -124,7 +124,7 @@ def _percent(value):
     return "not audited" if value is None else f"{100 * value:.1f} %"
 
 
-def summary_lines(result):
+def summary_lines(result) -> list[str]:
     """Short lines for the sidebar (each well under 50 characters)."""
     figures = summary(result)
     ratio = figures["energy_ratio"]
@@ -141,7 +141,7 @@ def summary_lines(result):
     return lines
 
 
-def frame_lines(result, limit=12):
+def frame_lines(result, limit=12) -> list[str]:
     """Per-frame lines (frame, distance in spacings, energy ratio), at most ``limit``, spread evenly."""
     rows = result["frames"]
     if len(rows) > limit:

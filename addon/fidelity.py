@@ -17,12 +17,12 @@ _state = {}          # "job": the running compare BakeJob; "pair", "folders", "p
 _reports = {}        # json path -> (mtime_ns, result or None)
 
 
-def is_comparing():
+def is_comparing() -> bool:
     job = _state.get("job")
     return job is not None and job.is_running
 
 
-def current_pair(scene):
+def current_pair(scene) -> tuple | None:
     """(reference row, preview row) of the scene's Bakes list to compare, or None."""
     shot = scene.splashdraft
     shown = display.current_version(scene)
@@ -34,7 +34,7 @@ def current_pair(scene):
     return (rows[pair[0]], rows[pair[1]]) if pair else None
 
 
-def stored_result(scene):
+def stored_result(scene) -> tuple:
     """(pair, stored result or None) for the scene's current pair; (None, None) without a pair."""
     pair = current_pair(scene)
     if pair is None:
@@ -62,10 +62,10 @@ class SPLASHDRAFT_OT_compare(bpy.types.Operator):
     _timer = None
 
     @classmethod
-    def poll(cls, context):
+    def poll(cls, context) -> bool:
         return context.scene is not None and not is_comparing() and current_pair(context.scene) is not None
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         pair = current_pair(context.scene)
         if pair is None:
             self.report({"ERROR"}, "compare: bake a Reference and a Learned preview version of this shot first")
@@ -90,7 +90,7 @@ class SPLASHDRAFT_OT_compare(bpy.types.Operator):
         context.window_manager.modal_handler_add(self)
         return {"RUNNING_MODAL"}
 
-    def modal(self, context, event):
+    def modal(self, context, event) -> set[str]:
         job = _state["job"]
         if event.type == "ESC" and event.value == "PRESS":
             job.cancel()
@@ -137,7 +137,7 @@ class SPLASHDRAFT_OT_stop_compare(jobs.StopJob, bpy.types.Operator):
     bl_label = "Stop measuring"
 
     @classmethod
-    def running_job(cls):
+    def running_job(cls) -> jobs.BakeJob | None:
         return _state.get("job")
 
 
@@ -146,7 +146,7 @@ class SPLASHDRAFT_PT_fidelity(SidebarPanel, bpy.types.Panel):
     bl_idname = "SPLASHDRAFT_PT_fidelity"
     bl_parent_id = "SPLASHDRAFT_PT_versions"
 
-    def draw(self, context):
+    def draw(self, context) -> None:
         layout = self.layout
         pair, result = stored_result(context.scene)
         if pair is None:
@@ -184,12 +184,12 @@ class SPLASHDRAFT_PT_fidelity(SidebarPanel, bpy.types.Panel):
 classes = (SPLASHDRAFT_OT_compare, SPLASHDRAFT_OT_stop_compare, SPLASHDRAFT_PT_fidelity)
 
 
-def register():
+def register() -> None:
     for cls in classes:
         bpy.utils.register_class(cls)
 
 
-def unregister():
+def unregister() -> None:
     job = _state.get("job")
     if job is not None and job.is_running:
         job.cancel()

@@ -26,7 +26,7 @@ from ..engine.progress import format_duration
 CANCEL_GRACE_SECONDS = 120.0
 
 
-def boot_code(extension_root, wheel_site=None):
+def boot_code(extension_root, wheel_site=None) -> str:
     """Python source for ``-c``: put the engine and the bundled wheels on sys.path, run the CLI.
 
     This is the project's one import-path bootstrap. Blender calls its Python with ``-I``
@@ -51,7 +51,7 @@ def boot_code(extension_root, wheel_site=None):
 
 
 def bake_command(python, python_args, extension_root, scene_path, out_dir, solver="sph",
-                 wheel_site=None, extra=()):
+                 wheel_site=None, extra=()) -> list[str]:
     """argv of the bake worker.
 
     Args:
@@ -69,13 +69,13 @@ def bake_command(python, python_args, extension_root, scene_path, out_dir, solve
     ]
 
 
-def estimate_command(python, python_args, extension_root, scene_path, wheel_site=None, solver="sph"):
+def estimate_command(python, python_args, extension_root, scene_path, wheel_site=None, solver="sph") -> list[str]:
     """argv of ``python -m engine estimate SCENE --json`` through the same boot code."""
     return [str(python), *python_args, "-c", boot_code(extension_root, wheel_site),
             "estimate", str(scene_path), "--solver", solver, "--json"]
 
 
-def parse_event(line):
+def parse_event(line) -> dict | None:
     """One progress line -> event dict, or None for a line that is not a progress event.
 
     Non-JSON lines (warnings, a traceback of a crash) are returned as None and
@@ -121,15 +121,15 @@ class BakeProgress:
     other_lines: list = field(default_factory=list)
 
     @property
-    def fraction(self):
+    def fraction(self) -> float:
         """Share of frames finished, 0..1."""
         return self.done / self.total if self.total else 0.0
 
     @property
-    def is_over(self):
+    def is_over(self) -> bool:
         return self.state in ("finished", "cancelled", "failed")
 
-    def status_text(self, shot=""):
+    def status_text(self, shot="") -> str:
         """One line for the status bar."""
         head = f"Splashdraft {shot}: " if shot else "Splashdraft: "
         if self.state == "starting":
@@ -142,7 +142,7 @@ class BakeProgress:
         return head + self.message
 
 
-def plural(count, word):
+def plural(count, word) -> str:
     """'1 particle', '2 particles', '1,210 particles' (English plural by -s)."""
     return f"{count:,} {word}" if count == 1 else f"{count:,} {word}s"
 
@@ -150,7 +150,7 @@ def plural(count, word):
 _MAX_OTHER_LINES = 40
 
 
-def apply_event(progress, event):
+def apply_event(progress, event) -> BakeProgress:
     """Update ``progress`` (in place) from one parsed event or a raw non-event line (str).
 
     Returns ``progress``.
@@ -193,7 +193,7 @@ def apply_event(progress, event):
     return progress
 
 
-def finish_on_exit(progress, returncode):
+def finish_on_exit(progress, returncode) -> BakeProgress:
     """Settle ``progress`` once the worker has exited with ``returncode``.
 
     A worker that died without an ``error``/``finished``/``cancelled`` event
@@ -255,7 +255,7 @@ class BakeJob:
             self._lines.put((tag, line))
         stream.close()
 
-    def poll(self):
+    def poll(self) -> list[dict]:
         """Drain the worker's output into ``progress``; returns the list of new events (dicts).
 
         Once the worker has exited and all its output is read, ``returncode``
@@ -282,11 +282,11 @@ class BakeJob:
         return events
 
     @property
-    def is_running(self):
+    def is_running(self) -> bool:
         """True until the worker has exited and its output has been read."""
         return self.returncode is None
 
-    def cancel(self):
+    def cancel(self) -> None:
         """Ask the worker to stop after its current frame; a second call (or after the grace time) kills it."""
         if self.process.poll() is not None:
             return
@@ -301,13 +301,13 @@ class BakeJob:
         else:
             self.process.kill()
 
-    def check_grace(self):
+    def check_grace(self) -> None:
         """Kill a cancelled worker that outlived ``CANCEL_GRACE_SECONDS``; call from the timer."""
         if self.cancel_requested_at is not None and self.process.poll() is None:
             if time.monotonic() - self.cancel_requested_at > CANCEL_GRACE_SECONDS:
                 self.process.kill()
 
-    def wait(self, on_event=None, interval=0.05):
+    def wait(self, on_event=None, interval=0.05) -> BakeProgress:
         """Run to the end on the calling thread (background mode); ``on_event(event)`` per event."""
         while True:
             for event in self.poll():
@@ -325,22 +325,22 @@ class StopJob:
     stopping_message = ""
 
     @classmethod
-    def running_job(cls):
+    def running_job(cls) -> BakeJob | None:
         raise NotImplementedError
 
     @classmethod
-    def poll(cls, context):
+    def poll(cls, context) -> bool:
         job = cls.running_job()
         return job is not None and job.is_running
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         self.running_job().cancel()
         if self.stopping_message:
             self.report({"INFO"}, self.stopping_message)
         return {"FINISHED"}
 
 
-def tick(job, ui):
+def tick(job, ui) -> bool:
     """One timer step of a bake: drain the worker, tell ``ui``, settle at the end.
 
     This is the whole body of the modal operator's TIMER branch, kept here so
@@ -366,7 +366,7 @@ def tick(job, ui):
     return False
 
 
-def run_estimate(argv, timeout=300.0, env=None):
+def run_estimate(argv, timeout=300.0, env=None) -> tuple[dict | None, str]:
     """Run the engine's ``estimate --json`` command and read its answer.
 
     Returns:
@@ -399,7 +399,7 @@ def run_estimate(argv, timeout=300.0, env=None):
     return None, message
 
 
-def summarize_estimate(estimate):
+def summarize_estimate(estimate) -> str:
     """One line for the panel: particles, memory, disk and time of an estimate dict."""
     parts = [plural(int(estimate.get("particles", 0)), "particle")]
     if "memory_bytes" in estimate:

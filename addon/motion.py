@@ -16,7 +16,7 @@ Lengths leave this module in metres: ``metres = Blender units x scale_length``
 import numpy as np
 
 
-def world_vertices(local_vertices, matrix):
+def world_vertices(local_vertices, matrix) -> np.ndarray:
     """(V, 3) object-space vertices and a (4, 4) world matrix -> (V, 3) world vertices (same units)."""
     local_vertices = np.asarray(local_vertices, np.float64)
     matrix = np.asarray(matrix, np.float64)
@@ -29,7 +29,7 @@ def _tolerance(vertices):
     return max(extent, 1e-9) * 1e-6
 
 
-def classify_motion(local_frames, matrices):
+def classify_motion(local_frames, matrices) -> str:
     """Decide ``static`` / ``rigid`` / ``deforming`` from per-frame samples.
 
     Args:
@@ -54,7 +54,7 @@ def classify_motion(local_frames, matrices):
     return "deforming"
 
 
-def relative_matrices(matrices, scale_length=1.0):
+def relative_matrices(matrices, scale_length=1.0) -> np.ndarray:
     """World matrices -> matrices that move the first frame's world-space mesh to each frame.
 
     ``R_f = M_f @ inv(M_0)``, so ``world_f = R_f @ [world_0, 1]`` (column vectors).
@@ -76,7 +76,7 @@ def relative_matrices(matrices, scale_length=1.0):
     return relative
 
 
-def write_obj(path, vertices, triangles, name="mesh"):
+def write_obj(path, vertices, triangles, name="mesh") -> None:
     """Write a triangle mesh as Wavefront OBJ (``v x y z`` lines, 1-based ``f i j k``).
 
     Args:

@@ -23,7 +23,7 @@ _job = None            # the running jobs.BakeJob
 _job_context = {}      # scene name, version name of the running bake
 
 
-def is_baking():
+def is_baking() -> bool:
     return _job is not None and _job.is_running
 
 
@@ -33,7 +33,7 @@ def _worker_args():
                 extension_root=paths.EXTENSION_ROOT, wheel_site=site)
 
 
-def sync_versions(scene, select=None):
+def sync_versions(scene, select=None) -> None:
     """Refresh the scene's version list from the shot folder; optionally show the version named ``select``."""
     shot = scene.splashdraft
     try:
@@ -111,7 +111,7 @@ def estimate_scene(scene, input_dir) -> tuple:
     return estimate, warnings, exported.path
 
 
-def needs_confirmation(estimate_seconds, confirm_minutes):
+def needs_confirmation(estimate_seconds, confirm_minutes) -> bool:
     """True when a bake estimated at ``estimate_seconds`` should be confirmed first (0 minutes: never ask)."""
     return confirm_minutes > 0 and estimate_seconds > 60.0 * confirm_minutes
 
@@ -141,7 +141,7 @@ class SPLASHDRAFT_OT_estimate(bpy.types.Operator):
     bl_label = "Estimate"
     bl_options = {"REGISTER"}
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         from ..engine.errors import SplashdraftError
 
         scene = context.scene
@@ -168,10 +168,10 @@ class _BakeUI:
         self.has_listed = False
 
     @property
-    def scene(self):
+    def scene(self) -> "bpy.types.Scene | None":
         return bpy.data.scenes.get(self.scene_name)
 
-    def frame_ready(self, frame):
+    def frame_ready(self, frame) -> None:
         scene = self.scene
         if scene is None:
             return
@@ -184,7 +184,7 @@ class _BakeUI:
             if shown is not None and shown.name == self.version_name:
                 display.show_frame(scene, force=True)
 
-    def progress(self, progress):
+    def progress(self, progress) -> None:
         scene = self.scene
         if scene is not None:
             scene.splashdraft.bake_state = progress.state
@@ -194,7 +194,7 @@ class _BakeUI:
             self.workspace.status_text_set(progress.status_text(self.label))
         self.window_manager.progress_update(int(progress.fraction * 100))
 
-    def finished(self, progress):
+    def finished(self, progress) -> None:
         scene = self.scene
         if scene is not None:
             sync_versions(scene, select=self.version_name)
@@ -242,7 +242,7 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
     _ui = None
 
     @classmethod
-    def poll(cls, context):
+    def poll(cls, context) -> bool:
         return context.scene is not None and not is_baking()
 
     def _start(self, context):
@@ -277,7 +277,7 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
         display.ensure_display_object(scene)
         return _ui_for(context, self)
 
-    def invoke(self, context, event):
+    def invoke(self, context, event) -> set[str]:
         # Ask before a long bake (the estimate is closed-form, so this costs well under a second).
         from ..engine.errors import SplashdraftError
 
@@ -296,7 +296,7 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
             self, event, title="Long bake", message=f"This bake may take about {format_duration(estimate.seconds)} "
             f"({shot.estimate_text}). Start it?", confirm_text="Bake")
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         from ..engine.errors import SplashdraftError
 
         try:
@@ -322,7 +322,7 @@ class SPLASHDRAFT_OT_bake(bpy.types.Operator):
             time.sleep(0.1)
         return {"FINISHED"} if _job.progress.state == "finished" else {"CANCELLED"}
 
-    def modal(self, context, event):
+    def modal(self, context, event) -> set[str]:
         if event.type == "ESC" and event.value == "PRESS":
             _job.cancel()
         if event.type != "TIMER":
@@ -346,7 +346,7 @@ class SPLASHDRAFT_OT_stop_bake(jobs.StopJob, bpy.types.Operator):
     stopping_message = "Stopping the bake after the current frame"
 
     @classmethod
-    def running_job(cls):
+    def running_job(cls) -> jobs.BakeJob | None:
         return _job
 
 
@@ -356,7 +356,7 @@ class SPLASHDRAFT_OT_refresh_versions(bpy.types.Operator):
     bl_idname = "splashdraft.refresh_versions"
     bl_label = "Refresh versions"
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         sync_versions(context.scene)
         return {"FINISHED"}
 
@@ -367,7 +367,7 @@ class SPLASHDRAFT_OT_add_liquid_object(bpy.types.Operator):
     bl_idname = "splashdraft.add_liquid_object"
     bl_label = "Show liquid"
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         obj = display.ensure_display_object(context.scene)
         sync_versions(context.scene)
         display.show_frame(context.scene, force=True)
@@ -392,10 +392,10 @@ class SPLASHDRAFT_OT_export_liquid(bpy.types.Operator):
     filepath: StringProperty(name="File", description="Where to write the file", subtype="FILE_PATH")
 
     @classmethod
-    def poll(cls, context):
+    def poll(cls, context) -> bool:
         return context.scene.splashdraft.display_object is not None
 
-    def invoke(self, context, event):
+    def invoke(self, context, event) -> set[str]:
         if not self.filepath:
             suffix = ".abc" if self.file_format == "ALEMBIC" else ".usdc"
             self.filepath = str(Path(bpy.path.abspath("//") or tempfile.gettempdir()) /
@@ -403,7 +403,7 @@ class SPLASHDRAFT_OT_export_liquid(bpy.types.Operator):
         context.window_manager.fileselect_add(self)
         return {"RUNNING_MODAL"}
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         if not self.filepath:
             self.report({"ERROR"}, "export: no file chosen; set File")
             return {"CANCELLED"}
@@ -418,7 +418,7 @@ class SPLASHDRAFT_OT_export_liquid(bpy.types.Operator):
         return {"FINISHED"}
 
 
-def export_liquid(scene, filepath, file_format):
+def export_liquid(scene, filepath, file_format) -> str:
     """Write the shown bake to ``filepath`` (Alembic or USD); returns the path.
 
     The exporters skip a mesh without modifiers as static and see an empty
@@ -482,11 +482,11 @@ class SPLASHDRAFT_OT_copy_points(bpy.types.Operator):
 
     directory: StringProperty(name="Folder", description="Folder that receives the PLY files", subtype="DIR_PATH")
 
-    def invoke(self, context, event):
+    def invoke(self, context, event) -> set[str]:
         context.window_manager.fileselect_add(self)
         return {"RUNNING_MODAL"}
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         version = display.current_version(context.scene)
         if version is None or not self.directory:
             self.report({"ERROR"}, "copy: choose a shown version and a Folder first")
@@ -504,7 +504,7 @@ class SPLASHDRAFT_OT_copy_points(bpy.types.Operator):
         return {"FINISHED"}
 
 
-def copy_points(folder, target):
+def copy_points(folder, target) -> int:
     """Copy the listed frames of the bake ``folder`` and its manifest into ``target``; returns the count."""
     reader = display.reader_for(folder)
     target.mkdir(parents=True, exist_ok=True)
@@ -519,12 +519,12 @@ classes = (SPLASHDRAFT_OT_estimate, SPLASHDRAFT_OT_bake, SPLASHDRAFT_OT_stop_bak
            SPLASHDRAFT_OT_copy_points)
 
 
-def register():
+def register() -> None:
     for cls in classes:
         bpy.utils.register_class(cls)
 
 
-def unregister():
+def unregister() -> None:
     global _job
     if _job is not None and _job.is_running:
         _job.cancel()  # the worker finishes its frame and exits; finished frames stay on disk

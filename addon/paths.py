@@ -13,7 +13,7 @@ from .versions import safe_name
 EXTENSION_ROOT = Path(__file__).resolve().parent.parent
 
 
-def wheel_site():
+def wheel_site() -> Path | None:
     """Blender's shared site-packages for extension wheels (scipy, onnxruntime), or None if absent."""
     site = Path(bpy.utils.user_resource("EXTENSIONS")) / ".local" / "lib" / (
         "python%d.%d" % sys.version_info[:2]) / "site-packages"
@@ -23,7 +23,7 @@ def wheel_site():
 _models_seen = {}  # models folder -> (its modification time, learned_model() for it)
 
 
-def learned_model():
+def learned_model() -> Path | None:
     """The learned preview's model: the shipped default if it passes its contract check, else the
     first installed model that does (``engine.solvers.installed_models``); None when none does.
 
@@ -48,16 +48,16 @@ def learned_model():
     return _models_seen[folder][1]
 
 
-def is_learned_available():
+def is_learned_available() -> bool:
     """True when the learned preview can run: an installed model passes its contract check."""
     return learned_model() is not None
 
 
-def shot_name(scene):
+def shot_name(scene) -> str:
     return safe_name(scene.splashdraft.shot_name or scene.name)
 
 
-def cache_root(scene):
+def cache_root(scene) -> Path:
     """Absolute cache folder of the scene's shot settings.
 
     Raises:
@@ -71,5 +71,5 @@ def cache_root(scene):
     return Path(os.path.abspath(bpy.path.abspath(raw)))
 
 
-def shot_dir(scene):
+def shot_dir(scene) -> Path:
     return cache_root(scene) / shot_name(scene)

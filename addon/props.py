@@ -176,14 +176,14 @@ class SPLASHDRAFT_PG_shot(bpy.types.PropertyGroup):
 classes = (SPLASHDRAFT_PG_object, SPLASHDRAFT_PG_version, SPLASHDRAFT_PG_shot)
 
 
-def register():
+def register() -> None:
     for cls in classes:
         bpy.utils.register_class(cls)
     bpy.types.Object.splashdraft = PointerProperty(type=SPLASHDRAFT_PG_object)
     bpy.types.Scene.splashdraft = PointerProperty(type=SPLASHDRAFT_PG_shot)
 
 
-def unregister():
+def unregister() -> None:
     del bpy.types.Scene.splashdraft
     del bpy.types.Object.splashdraft
     for cls in reversed(classes):

@@ -21,7 +21,7 @@ class SidebarPanel:
 class SPLASHDRAFT_UL_versions(bpy.types.UIList):
     """Rows of the bake list: version, solver, finished frames."""
 
-    def draw_item(self, context, layout, data, item, icon, active_data, active_propname, index):
+    def draw_item(self, context, layout, data, item, icon, active_data, active_propname, index) -> None:
         row = layout.row(align=True)
         row.label(text=item.name, icon="CHECKMARK" if item.complete else "TIME")
         row.label(text=f"{item.frames} fr")
@@ -32,7 +32,7 @@ class SPLASHDRAFT_PT_shot(SidebarPanel, bpy.types.Panel):
     bl_label = "Liquid shot"
     bl_idname = "SPLASHDRAFT_PT_shot"
 
-    def draw(self, context):
+    def draw(self, context) -> None:
         layout = self.layout
         scene = context.scene
         shot = scene.splashdraft
@@ -74,7 +74,7 @@ class SPLASHDRAFT_PT_liquid(SidebarPanel, bpy.types.Panel):
     bl_parent_id = "SPLASHDRAFT_PT_shot"
     bl_options = {"DEFAULT_CLOSED"}
 
-    def draw(self, context):
+    def draw(self, context) -> None:
         layout = self.layout
         layout.use_property_split = True
         shot = context.scene.splashdraft
@@ -88,10 +88,10 @@ class SPLASHDRAFT_PT_object(SidebarPanel, bpy.types.Panel):
     bl_idname = "SPLASHDRAFT_PT_object"
 
     @classmethod
-    def poll(cls, context):
+    def poll(cls, context) -> bool:
         return context.object is not None
 
-    def draw(self, context):
+    def draw(self, context) -> None:
         layout = self.layout
         layout.use_property_split = True
         layout.use_property_decorate = False
@@ -124,7 +124,7 @@ class SPLASHDRAFT_PT_versions(SidebarPanel, bpy.types.Panel):
     bl_label = "Bakes"
     bl_idname = "SPLASHDRAFT_PT_versions"
 
-    def draw(self, context):
+    def draw(self, context) -> None:
         layout = self.layout
         shot = context.scene.splashdraft
         row = layout.row()
@@ -157,7 +157,7 @@ class SPLASHDRAFT_PT_handoff(SidebarPanel, bpy.types.Panel):
     bl_idname = "SPLASHDRAFT_PT_handoff"
     bl_options = {"DEFAULT_CLOSED"}
 
-    def draw(self, context):
+    def draw(self, context) -> None:
         col = self.layout.column(align=True)
         col.operator("splashdraft.export_liquid", text="Alembic…", icon="EXPORT").file_format = "ALEMBIC"
         col.operator("splashdraft.export_liquid", text="USD…", icon="EXPORT").file_format = "USD"
@@ -168,11 +168,11 @@ classes = (SPLASHDRAFT_UL_versions, SPLASHDRAFT_PT_shot, SPLASHDRAFT_PT_liquid, 
            SPLASHDRAFT_PT_versions, SPLASHDRAFT_PT_handoff)
 
 
-def register():
+def register() -> None:
     for cls in classes:
         bpy.utils.register_class(cls)
 
 
-def unregister():
+def unregister() -> None:
     for cls in reversed(classes):
         bpy.utils.unregister_class(cls)

@@ -14,7 +14,7 @@ from ..engine.progress import format_duration
 from .jobs import boot_code, plural
 
 
-def vary_arguments(rows):
+def vary_arguments(rows) -> list[str]:
     """``--vary`` arguments from the panel's (key, values) rows; empty rows are skipped.
 
     Args:
@@ -55,7 +55,7 @@ def vary_arguments(rows):
 
 
 def wedge_command(python, python_args, extension_root, scene_path, out_dir, vary, solver="sph", workers=0,
-                  scheduler="", wheel_site=None):
+                  scheduler="", wheel_site=None) -> list[str]:
     """argv of the wedge worker (the engine's command line through ``jobs.boot_code``).
 
     Args:
@@ -94,20 +94,20 @@ class WedgeProgress:
     seconds: float = None
 
     @property
-    def complete(self):
+    def complete(self) -> int:
         return sum(v["state"] == "complete" for v in self.variants.values())
 
     @property
-    def fraction(self):
+    def fraction(self) -> float:
         """Share of all the wedge's frames finished, 0..1."""
         total = sum(v["total"] or 0 for v in self.variants.values())
         return sum(v["done"] for v in self.variants.values()) / total if total else 0.0
 
     @property
-    def is_over(self):
+    def is_over(self) -> bool:
         return self.state in ("finished", "failed", "cancelled")
 
-    def status_text(self):
+    def status_text(self) -> str:
         if self.state == "starting":
             return "wedge: exporting and starting the variants"
         if self.state == "running":
@@ -116,7 +116,7 @@ class WedgeProgress:
         return "wedge: " + self.message
 
 
-def apply_wedge_event(progress, event):
+def apply_wedge_event(progress, event) -> str | None:
     """Fold one parsed wedge event into ``progress``; returns the name of a variant whose frame count
     or state changed (the add-on then lists its version), else None."""
     kind = event.get("event")
@@ -141,7 +141,7 @@ def apply_wedge_event(progress, event):
     return None
 
 
-def settle_wedge(progress, returncode, other_lines):
+def settle_wedge(progress, returncode, other_lines) -> WedgeProgress:
     """Settle ``progress`` once the worker exited: cancelled (130), or failed with the engine's error line."""
     if returncode == 130:
         progress.state = "cancelled"

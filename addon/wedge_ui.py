@@ -10,6 +10,7 @@ frame and shown on the same liquid object as any bake.
 
 import shutil
 import time
+from pathlib import Path
 
 import bpy
 from bpy.props import CollectionProperty, FloatProperty, IntProperty, PointerProperty, StringProperty
@@ -24,7 +25,7 @@ _job = None  # the running jobs.BakeJob of the wedge
 _run = {}  # scene name, wedge folder, progress (wedge_jobs.WedgeProgress), has_selected
 
 
-def is_wedging():
+def is_wedging() -> bool:
     return _job is not None and _job.is_running
 
 
@@ -65,7 +66,7 @@ class SPLASHDRAFT_OT_wedge_add_row(bpy.types.Operator):
     bl_label = "Add setting"
     bl_options = {"REGISTER", "UNDO"}
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         context.scene.splashdraft_wedge.rows.add()
         return {"FINISHED"}
 
@@ -79,7 +80,7 @@ class SPLASHDRAFT_OT_wedge_remove_row(bpy.types.Operator):
 
     index: IntProperty(name="Row", description="Row to remove (0 is the first)", default=0, min=0)
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         rows = context.scene.splashdraft_wedge.rows
         if self.index >= len(rows):
             self.report({"ERROR"}, f"wedge: there is no row {self.index + 1}; the list has {len(rows)}")
@@ -88,7 +89,7 @@ class SPLASHDRAFT_OT_wedge_remove_row(bpy.types.Operator):
         return {"FINISHED"}
 
 
-def start_wedge(scene):
+def start_wedge(scene) -> Path:
     """Export the shot into a new wedge version folder and start the wedge worker; returns the folder.
 
     Raises:
@@ -123,7 +124,7 @@ def start_wedge(scene):
     return wedge_dir
 
 
-def tick_wedge():
+def tick_wedge() -> bool:
     """One step of the running wedge: read its events, list and show variants; True while it runs."""
     events = _job.poll()
     _job.check_grace()
@@ -164,10 +165,10 @@ class SPLASHDRAFT_OT_wedge_start(bpy.types.Operator):
     _timer = None
 
     @classmethod
-    def poll(cls, context):
+    def poll(cls, context) -> bool:
         return context.scene is not None and not is_wedging() and not ops.is_baking()
 
-    def execute(self, context):
+    def execute(self, context) -> set[str]:
         from ..engine.errors import SplashdraftError
 
         try:
@@ -186,7 +187,7 @@ class SPLASHDRAFT_OT_wedge_start(bpy.types.Operator):
         context.window_manager.modal_handler_add(self)
         return {"RUNNING_MODAL"}
 
-    def modal(self, context, event):
+    def modal(self, context, event) -> set[str]:
         if event.type != "TIMER":
             return {"PASS_THROUGH"}
         if tick_wedge():
@@ -210,7 +211,7 @@ class SPLASHDRAFT_OT_wedge_stop(jobs.StopJob, bpy.types.Operator):
     stopping_message = "Stopping the wedge after the current frames"
 
     @classmethod
-    def running_job(cls):
+    def running_job(cls) -> jobs.BakeJob | None:
         return _job
 
 
@@ -219,7 +220,7 @@ class SPLASHDRAFT_PT_wedge(SidebarPanel, bpy.types.Panel):
     bl_idname = "SPLASHDRAFT_PT_wedge"
     bl_options = {"DEFAULT_CLOSED"}
 
-    def draw(self, context):
+    def draw(self, context) -> None:
         layout = self.layout
         settings = context.scene.splashdraft_wedge
         for index, row in enumerate(settings.rows):
@@ -245,13 +246,13 @@ classes = (SPLASHDRAFT_PG_wedge_row, SPLASHDRAFT_PG_wedge, SPLASHDRAFT_OT_wedge_
            SPLASHDRAFT_PT_wedge)  # fmt: skip
 
 
-def register():
+def register() -> None:
     for cls in classes:
         bpy.utils.register_class(cls)
     bpy.types.Scene.splashdraft_wedge = PointerProperty(type=SPLASHDRAFT_PG_wedge)
 
 
-def unregister():
+def unregister() -> None:
     global _job
     if _job is not None and _job.is_running:
         _job.cancel()  # the worker finishes its frames and exits; finished frames stay on disk

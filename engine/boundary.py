@@ -35,11 +35,11 @@ class BoundaryParticles:
     volumes: np.ndarray
 
     @property
-    def count(self):
+    def count(self) -> int:
         return len(self.positions)
 
 
-def make_boundary(points, normals, support_radius, velocities=None):
+def make_boundary(points, normals, support_radius, velocities=None) -> BoundaryParticles:
     """BoundaryParticles for static (or given-velocity) samples, volumes computed here.
 
     Args:
@@ -56,13 +56,13 @@ def make_boundary(points, normals, support_radius, velocities=None):
                              boundary_volumes(points, support_radius))
 
 
-def empty_boundary():
+def empty_boundary() -> BoundaryParticles:
     """A BoundaryParticles with no particles."""
     zeros = np.zeros((0, 3))
     return BoundaryParticles(zeros, zeros, zeros, np.zeros(0))
 
 
-def boundary_volumes(points, support_radius):
+def boundary_volumes(points, support_radius) -> np.ndarray:
     """Akinci 2012 volumes V_b = 1 / sum_k W_bk, in m^3.
 
     Args:
@@ -85,7 +85,7 @@ def boundary_volumes(points, support_radius):
     return 1.0 / total
 
 
-def sample_box_walls(lower, upper, spacing, faces=None, layers=1):
+def sample_box_walls(lower, upper, spacing, faces=None, layers=1) -> tuple[np.ndarray, np.ndarray]:
     """Boundary particles on the inside faces of an axis-aligned box.
 
     Each face is sampled with a square-ish lattice that spans the face exactly

@@ -25,7 +25,7 @@ import json
 import os
 import re
 from pathlib import Path
-from typing import Optional
+from typing import NoReturn, Optional
 
 import numpy as np
 
@@ -333,7 +333,7 @@ def validate_manifest(manifest, path) -> dict:
     sha256, a particle count, and the time of its frame. Keys this engine does
     not read are left alone.
     """
-    def fail(field, problem):
+    def fail(field, problem) -> NoReturn:
         raise CacheError(f"{path}: {field}: {problem}; bake the cache again")
 
     if not isinstance(manifest, dict) or manifest.get("format") != CACHE_FORMAT:

@@ -37,15 +37,19 @@ import platform
 import tempfile
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from . import __version__
+
+if TYPE_CHECKING:
+    from .scene import Scene
 
 CALIBRATION_FORMAT = "splashdraft-calibration"
 #: Largest calibration file read (it holds a few numbers per machine and solver).
 MAX_BYTES = 1_000_000
 
 
-def calibration_path():
+def calibration_path() -> Path:
     """Where the per-machine figures are kept (see the module docstring)."""
     override = os.environ.get("SPLASHDRAFT_CALIBRATION")
     if override:
@@ -54,7 +58,7 @@ def calibration_path():
     return Path(base) / "splashdraft" / "calibration.json"
 
 
-def machine_key():
+def machine_key() -> str:
     """A short name for this machine and engine version (host, architecture, cores, version), hashed.
 
     ``platform.processor()`` is left out: on Linux it starts a ``uname -p`` process.
@@ -75,7 +79,7 @@ def _read(path):
     return data
 
 
-def load(solver, path=None):
+def load(solver, path=None) -> dict | None:
     """This machine's figures for ``solver``: dict with ``rate``, ``overhead_seconds``,
     ``startup_seconds``, ``source``, ``measured``; None when not measured (or the file is damaged)."""
     data = _read(Path(path) if path is not None else calibration_path())
@@ -92,7 +96,7 @@ def load(solver, path=None):
             "source": str(entry.get("source", "")), "measured": str(entry.get("measured", ""))}
 
 
-def save(solver, rate, startup_seconds, source, path=None, overhead_seconds=0.0):
+def save(solver, rate, startup_seconds, source, path=None, overhead_seconds=0.0) -> Path | None:
     """Keep ``rate`` (particle-steps/s), ``overhead_seconds`` (per frame) and ``startup_seconds``
     for ``solver`` on this machine.
 
@@ -116,7 +120,7 @@ def save(solver, rate, startup_seconds, source, path=None, overhead_seconds=0.0)
     return path
 
 
-def frame_figures(manifest, seconds):
+def frame_figures(manifest, seconds) -> tuple[int, int, float, float] | None:
     """(frames, particle-steps, frame seconds, startup seconds) of a finished bake, over the frames
     after the first; None without such a frame with a positive time."""
     frames = manifest.get("frames", {})
@@ -128,7 +132,7 @@ def frame_figures(manifest, seconds):
     return len(keys), work, spent, max(float(seconds) - spent, 0.0)
 
 
-def figures_from_manifest(manifest, seconds, overhead_seconds=0.0):
+def figures_from_manifest(manifest, seconds, overhead_seconds=0.0) -> tuple[float, float] | None:
     """(rate, startup seconds) of a finished bake, given a per-frame overhead; None when unusable.
 
     rate = particle-steps / (frame seconds - frames x overhead); when the overhead would take all
@@ -142,7 +146,7 @@ def figures_from_manifest(manifest, seconds, overhead_seconds=0.0):
     return work / (working if working > 0.1 * spent else spent), startup
 
 
-def fit_two_sizes(small, large):
+def fit_two_sizes(small, large) -> tuple[float, float]:
     """(rate, overhead seconds) of the line through two bakes' mean (particle-steps, seconds) per frame.
 
     Falls back to overhead 0 and the larger bake's rate when the points do not give a rising line
@@ -157,7 +161,7 @@ def fit_two_sizes(small, large):
     return work_b / time_b, 0.0
 
 
-def record_bake(solver, manifest, seconds, path=None):
+def record_bake(solver, manifest, seconds, path=None) -> Path | None:
     """Keep the figures of a finished bake (the kept per-frame overhead stays); returns the file or None."""
     kept = load(solver, path)
     overhead = kept["overhead_seconds"] if kept is not None else 0.0
@@ -172,7 +176,7 @@ def record_bake(solver, manifest, seconds, path=None):
 CALIBRATION_SPACINGS = (0.03, 0.016)
 
 
-def calibration_scene(spacing=0.02):
+def calibration_scene(spacing=0.02) -> "Scene":
     """The calibration shot (our own): a 0.2 x 0.3 x 0.3 m block released in a 0.6 x 0.3 x 0.5 m box."""
     from .mesh_io import box_mesh
     from .scene import scene_from_dict
@@ -200,7 +204,7 @@ def _bake_figures(solver, scene):
     return frame_figures(manifest, seconds), manifest["frames"]["1"]["particles"]
 
 
-def calibrate(solver, path=None, scenes=None):
+def calibrate(solver, path=None, scenes=None) -> dict:
     """Bake the calibration shot at two sizes with ``solver`` and keep the fitted figures.
 
     Args:

@@ -12,6 +12,7 @@ import os
 import sys
 import time
 from pathlib import Path
+from typing import NoReturn
 
 from .errors import EXIT_CODES, SplashdraftError, UsageError, ValidationFailed
 from .progress import PROGRESS_KINDS, format_duration, make_progress
@@ -31,7 +32,7 @@ def _exit_code_epilog():
 class _Parser(argparse.ArgumentParser):
     """argparse with usage errors as exit 64 (instead of 2, which we use for bad scenes)."""
 
-    def error(self, message):
+    def error(self, message) -> NoReturn:
         self.print_usage(sys.stderr)
         print(f"{self.prog}: error: {message}", file=sys.stderr)
         raise SystemExit(USAGE_EXIT)
@@ -84,7 +85,7 @@ def _add_command(commands, name, summary, description):
                                formatter_class=argparse.RawDescriptionHelpFormatter)
 
 
-def build_parser():
+def build_parser() -> argparse.ArgumentParser:
     from .farm import add_where_options
 
     parser = _Parser(
@@ -255,12 +256,12 @@ def _run_bake(scene, solver, out, frames, resume, progress, max_particles, overw
     return CANCELLED_EXIT if result.is_cancelled else 0
 
 
-def command_bake(args):
+def command_bake(args) -> int:
     return _run_bake(args.scene, args.solver, args.out, args.frames, args.resume, args.progress,
                      args.max_particles, args.overwrite, args.model)  # fmt: skip
 
 
-def describe_cache(folder, verify=False):
+def describe_cache(folder, verify=False) -> dict:
     """Summary dict of a cache folder (for ``info``)."""
     from .cache import open_cache
 
@@ -316,7 +317,7 @@ def _energy_summary(entries):
     return {**audits[-1], "max_energy_ratio": max(ratios) if ratios else None}
 
 
-def command_info(args):
+def command_info(args) -> int:
     from .estimate import format_bytes
 
     info = describe_cache(args.cache, verify=args.verify)
@@ -347,7 +348,7 @@ def command_info(args):
     return 0
 
 
-def command_estimate(args):
+def command_estimate(args) -> int:
     from .bake import check_scene_for_solver, load_scene_any
     from .estimate import estimate_scene, format_bytes
 
@@ -401,7 +402,7 @@ def _comparison_tables(metrics):
     return tables
 
 
-def command_validate(args):
+def command_validate(args) -> int:
     from . import validate
 
     names = list(validate.CASES) if args.case == "all" else [args.case]
@@ -430,7 +431,7 @@ def command_validate(args):
     return 0
 
 
-def format_validation(result):
+def format_validation(result) -> str:
     """Human text for one ``run_case`` result: the checked metrics with their tolerances, then
     simulated against published values with the error of each row."""
     verdict = "within tolerance" if result.get("passed") else "OUTSIDE tolerance"
@@ -455,7 +456,7 @@ def format_validation(result):
     return "\n".join(lines)
 
 
-def command_demo(args):
+def command_demo(args) -> int:
     from .demo import write_demo_scene
 
     if args.spacing is not None and not args.spacing > 0:
@@ -467,7 +468,7 @@ def command_demo(args):
                      args.max_particles, True, args.model)  # fmt: skip
 
 
-def command_wedge(args):
+def command_wedge(args) -> int:
     from .farm import WedgeProgress, run_wedge
     from .wedge import format_table, parse_vary, summary_rows
 
@@ -494,7 +495,7 @@ def command_wedge(args):
     return 0 if complete == len(rows) else 1
 
 
-def command_tune(args):
+def command_tune(args) -> int:
     from .errors import DependencyError
 
     if args.minutes is not None and not args.minutes > 0:
@@ -518,7 +519,7 @@ def command_tune(args):
         _print_json(record)
     before, after = record["before"], record["after"]
 
-    def show(value):
+    def show(value) -> str:
         return "-" if value is None else f"{value:.3f}"
 
     _say(f"held-back frames: mean Chamfer {show(before['mean_chamfer_spacings'])} -> "
@@ -540,7 +541,7 @@ COMMANDS = {
 }
 
 
-def main(argv=None):
+def main(argv=None) -> int:
     """Run the command line; returns the exit status (see ``EXIT_CODES``).
 
     Every error is printed once, as one ``error: ...`` line on stderr, and never as a traceback;

@@ -54,7 +54,7 @@ def _collider_meshes(world, time):
     return out
 
 
-def count_penetrating(positions, world, time):
+def count_penetrating(positions, world, time) -> int:
     """Particles strictly inside any collider of ``world`` at ``time`` (winding number)."""
     from .geometry import inside_mesh
 
@@ -260,7 +260,7 @@ def _last_over_energy(rows, key):
     return float(audits[-1]["over_energy_fraction"]) if audits else None
 
 
-def format_table(result):
+def format_table(result) -> str:
     """Human-readable per-frame table (str) for stderr."""
     head = f"{'frame':>6} {'nA':>7} {'nB':>7} {'CD [d]':>8} {'CD [mm]':>8} {'rho 3%':>7} {'KE A [J]':>10} {'KE B [J]':>10} {'inside':>6}"
     lines = [head]
@@ -287,7 +287,7 @@ def format_table(result):
     return "\n".join(lines)
 
 
-def write_plot(result, path):
+def write_plot(result, path) -> None:
     """Chamfer (in spacings) and kinetic energy per frame as a PNG; matplotlib if present, else built-in."""
     frames = np.array([r["frame"] for r in result["frames"]], float)
     chamfer = np.array([r["chamfer_spacings"] for r in result["frames"]])
@@ -340,7 +340,7 @@ def _json_events(enabled):
     if not enabled:
         return None
 
-    def on_frame(frame, done, total):
+    def on_frame(frame, done, total) -> None:
         if frame is None:
             event = {"event": "start", "frames": [0, total - 1], "solver": "compare", "particles": 0}
         else:
@@ -350,7 +350,7 @@ def _json_events(enabled):
     return on_frame
 
 
-def main_compare(argv=None):
+def main_compare(argv=None) -> int:
     """``python -m engine compare``; returns the exit status (0, or an engine error's exit code)."""
     parser = _parser()
     try:

@@ -35,7 +35,7 @@ PRESETS = {
 }
 
 
-def boulder_mesh(center=BOULDER_CENTER, radius=BOULDER_RADIUS, roughness=0.18, subdivisions=3, seed=BOULDER_SEED):
+def boulder_mesh(center=BOULDER_CENTER, radius=BOULDER_RADIUS, roughness=0.18, subdivisions=3, seed=BOULDER_SEED) -> tuple[np.ndarray, np.ndarray]:
     """A rough boulder: icosphere radially displaced by a smooth random field.
 
     r(n) = radius * (1 + roughness * f(n)), f(n) = sum_k a_k sin(w_k d_k . n + phi_k) / sum_k a_k,
@@ -60,7 +60,7 @@ def boulder_mesh(center=BOULDER_CENTER, radius=BOULDER_RADIUS, roughness=0.18, s
     return vertices + np.asarray(center, np.float64), triangles
 
 
-def demo_scene_dict(spacing=None, preset="full", frame_end=None):
+def demo_scene_dict(spacing=None, preset="full", frame_end=None) -> dict:
     """The demo scene as a ``splashdraft-scene`` dict (mesh paths relative to the scene folder)."""
     settings = dict(PRESETS[preset])
     if spacing is not None:
@@ -92,7 +92,7 @@ def demo_scene_dict(spacing=None, preset="full", frame_end=None):
     }
 
 
-def write_demo_scene(folder, spacing=None, preset="full", frame_end=None):
+def write_demo_scene(folder, spacing=None, preset="full", frame_end=None) -> Path:
     """Write the demo scene (JSON + OBJ meshes) into ``folder``; returns the scene file path.
 
     Args:

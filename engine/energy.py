@@ -27,10 +27,14 @@ Mech. 35; all from memory); a double-digit percentage is a numerical defect.
 """
 
 import dataclasses
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .measures import kinetic_energy, potential_energy
+
+if TYPE_CHECKING:
+    from .state import State
 
 EMITTED = "energy.emitted_j"
 REMOVED = "energy.removed_j"
@@ -41,7 +45,7 @@ OVER = "energy_over"
 OVER_FACTOR = 1.5
 
 
-def height_datum(gravity, lower, upper):
+def height_datum(gravity, lower, upper) -> tuple[np.ndarray, float]:
     """(unit_down, offset): height h(x) = offset - unit_down . x is 0 at the lowest bounds corner.
 
     With zero gravity the height is identically 0 (unit_down = 0, offset = 0).
@@ -56,7 +60,7 @@ def height_datum(gravity, lower, upper):
     return down, float(np.max(corners @ down))
 
 
-def specific_energy(positions, velocities, gravity, datum):
+def specific_energy(positions, velocities, gravity, datum) -> np.ndarray:
     """(N,) |v|^2 / 2 + g h in J/kg, h from ``height_datum``."""
     down, offset = datum
     g = float(np.linalg.norm(gravity))
@@ -64,12 +68,12 @@ def specific_energy(positions, velocities, gravity, datum):
     return kinetic + g * (offset - positions @ down)
 
 
-def energy_parts(positions, velocities, mass, gravity, datum):
+def energy_parts(positions, velocities, mass, gravity, datum) -> tuple[float, float]:
     """(kinetic, potential) energy in J of particles of equal ``mass`` (``engine.measures``)."""
     return kinetic_energy(velocities, mass), potential_energy(positions, mass, gravity, datum)
 
 
-def ceiling(world):
+def ceiling(world) -> float:
     """Highest specific energy (J/kg) the scene puts in: fills at t = 0 and stream sources."""
     datum = world.energy_datum
     best = 0.0
@@ -82,7 +86,7 @@ def ceiling(world):
     return best
 
 
-def flag_over(state, world, top):
+def flag_over(state, world, top) -> "State":
     """State with ``OVER`` set for particles above ``OVER_FACTOR`` x ``top`` (the ceiling, J/kg)."""
     arrays = dict(state.particle_arrays)
     flags = arrays.get(OVER)
@@ -95,7 +99,7 @@ def flag_over(state, world, top):
     return dataclasses.replace(state, particle_arrays=arrays)
 
 
-def frame_audit(state, world, top):
+def frame_audit(state, world, top) -> dict:
     """The manifest's per-frame ``energy`` entry (all J except the fraction and counts)."""
     kinetic, potential = energy_parts(state.positions, state.velocities, world.particle_mass, world.gravity,
                                       world.energy_datum)

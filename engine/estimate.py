@@ -75,23 +75,23 @@ class Estimate:
     overhead_seconds: float = 0.0
     is_measured: bool = False
 
-    def as_dict(self):
+    def as_dict(self) -> dict:
         return dataclasses.asdict(self)
 
 
-def frame_file_bytes(particles):
+def frame_file_bytes(particles) -> int:
     """Exact size in bytes of one PLY frame with ``particles`` particles."""
     return len(ply_header(particles)) + FRAME_DTYPE.itemsize * int(particles)
 
 
-def memory_bytes(particles, boundary_particles, solver="sph"):
+def memory_bytes(particles, boundary_particles, solver="sph") -> int:
     """Estimated peak memory (bytes) of one substep (see ``MEMORY_MODEL``)."""
     model = MEMORY_MODEL.get(solver, MEMORY_MODEL["sph"])
     per_fluid = model["per_particle"] + model["neighbours"] * model["per_pair"]
     return int(particles * per_fluid + boundary_particles * model["per_boundary"])
 
 
-def throughput(solver="sph", root=None):
+def throughput(solver="sph", root=None) -> tuple[float, str]:
     """(particle-substeps per second, where the figure came from) from a benchmark's file or the constant."""
     root = Path(root) if root is not None else Path(__file__).resolve().parents[1]
     path = root / "bench" / "results" / f"{solver}_throughput.json"
@@ -104,7 +104,7 @@ def throughput(solver="sph", root=None):
     return DEFAULT_THROUGHPUT.get(solver, DEFAULT_THROUGHPUT["sph"]), "built-in rough constant"
 
 
-def time_model(solver="sph", root=None):
+def time_model(solver="sph", root=None) -> tuple[float, float, float, str, bool]:
     """(particle-steps per second, per-frame overhead s, start-up s, where they came from, measured here?).
 
     This computer's calibration (``engine.calibration.load``) first, then a benchmark's file, then
@@ -121,7 +121,7 @@ def time_model(solver="sph", root=None):
     return rate, 0.0, 0.0, source, False
 
 
-def substeps_per_frame(scene):
+def substeps_per_frame(scene) -> int:
     """Substeps per frame from the CFL rule with the free-fall speed over the bounds height."""
     height = float(scene.bounds.upper[2] - scene.bounds.lower[2])
     gravity = math.sqrt(sum(g * g for g in scene.gravity))
@@ -134,18 +134,18 @@ def substeps_per_frame(scene):
     return max(1, math.ceil((1.0 / scene.fps) / time_step - 1e-9))
 
 
-def count_particles(world):
+def count_particles(world) -> tuple[int, int]:
     """(fluid particles over the shot, boundary particles at t = 0) of a built world."""
     fluid = int(world.estimate_particles()["total"])
     boundary = int(len(world.boundary_at(0.0).positions))
     return fluid, boundary
 
 
-def budget_limit(scene, max_particles=None):
+def budget_limit(scene, max_particles=None) -> int:
     return int(max_particles) if max_particles is not None else int(scene.budget.max_particles)
 
 
-def check_budget(scene, world, max_particles=None, particles=None):
+def check_budget(scene, world, max_particles=None, particles=None) -> int:
     """Raise BudgetError when the scene's particle count exceeds its budget.
 
     Args:
@@ -177,7 +177,7 @@ WORK_PER_BUDGET_PARTICLE = 8
 WORK_CEILING = 50_000_000
 
 
-def work_bound(scene):
+def work_bound(scene) -> dict:
     """Closed-form counts of the work a scene asks for, from the scene alone (nothing is built).
 
     Returns a dict:
@@ -215,7 +215,7 @@ def work_bound(scene):
     return {"fluid": fluid, "layers": layers, "fill_candidates": fill_candidates, "boundary": float(boundary)}
 
 
-def check_work(scene, max_particles=None):
+def check_work(scene, max_particles=None) -> dict:
     """Raise BudgetError before building anything when the scene's closed-form work exceeds the budget.
 
     The fluid count may exceed the budget four times here (it counts whole fill volumes and stream
@@ -245,7 +245,7 @@ def check_work(scene, max_particles=None):
     return work
 
 
-def learned_steps_per_frame(scene, model=None):
+def learned_steps_per_frame(scene, model=None) -> int:
     """Learned steps per frame: ceil(frame interval / the model's longest step).
 
     Read from the model's contract (``engine.solvers.model_contract``; no onnxruntime session).
@@ -269,7 +269,7 @@ def learned_steps_per_frame(scene, model=None):
     return step_plan(1.0 / scene.fps, step)[0]
 
 
-def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=None, model=None):
+def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=None, model=None) -> Estimate:
     """Estimate a bake of ``scene`` with ``solver``; raises BudgetError over the budget.
 
     Args:
@@ -306,7 +306,7 @@ def estimate_scene(scene, solver="sph", max_particles=None, world=None, frames=N
     )  # fmt: skip
 
 
-def format_bytes(count):
+def format_bytes(count) -> str:
     """'1.2 MB' style (decimal units)."""
     count = float(count)
     for unit in ("B", "kB", "MB", "GB"):
@@ -320,7 +320,7 @@ def format_bytes(count):
 OUTSIDE_SAMPLES = 40_000
 
 
-def fill_outside_bounds(scene, samples=OUTSIDE_SAMPLES):
+def fill_outside_bounds(scene, samples=OUTSIDE_SAMPLES) -> dict:
     """How much of each fill emitter the built world will drop: outside the bounds, or inside them
     but closer than the fill clearance to a wall face (``engine.world.FILL_CLEARANCE``).
 
@@ -367,7 +367,7 @@ def fill_outside_bounds(scene, samples=OUTSIDE_SAMPLES):
     return result
 
 
-def quick_estimate(scene, solver="sph", max_particles=None, model=None):
+def quick_estimate(scene, solver="sph", max_particles=None, model=None) -> tuple[Estimate, dict]:
     """The estimate in closed form, without building particles (well under a second at any spacing).
 
     Particles are ``work_bound``'s fluid count (fill volumes / spacing^3 plus the streams' layers)

@@ -44,6 +44,7 @@ import threading
 import time
 import uuid
 from pathlib import Path
+from types import ModuleType
 
 from .errors import CacheError, DependencyError, SplashdraftError, UsageError
 from .wedge import apply_report, bake_variant, variant_progress, write_manifest
@@ -51,7 +52,7 @@ from .wedge import apply_report, bake_variant, variant_progress, write_manifest
 DASK_INSTALL = "pip install -r requirements.txt (dask[distributed] is an engine dependency)"
 
 
-def add_where_options(parser, workers_help, scheduler_help):
+def add_where_options(parser, workers_help, scheduler_help) -> None:
     """Add the two exclusive ways of choosing where jobs run: ``--workers N`` (a local Dask cluster of N
     worker processes) or ``--scheduler ADDRESS`` (an existing Dask scheduler); both default to None."""
     where = parser.add_mutually_exclusive_group()
@@ -59,7 +60,7 @@ def add_where_options(parser, workers_help, scheduler_help):
     where.add_argument("--scheduler", default=None, metavar="ADDRESS", help=scheduler_help)
 
 
-def import_distributed():
+def import_distributed() -> ModuleType:
     """The ``distributed`` module, or DependencyError naming the install command."""
     try:
         import distributed
@@ -69,7 +70,7 @@ def import_distributed():
     return distributed
 
 
-def local_worker_count():
+def local_worker_count() -> int:
     """Workers for a LocalCluster: one per CPU core this process may use."""
     try:
         return max(1, len(os.sched_getaffinity(0)))
@@ -105,11 +106,11 @@ class WedgeProgress:
             return
         self.stream.flush()
 
-    def start(self, variants, to_bake, where):
+    def start(self, variants, to_bake, where) -> None:
         self._emit(f"wedge: {variants} variants, {to_bake} to bake, on {where}",
                    {"event": "wedge_start", "variants": variants, "to_bake": to_bake, "where": where})
 
-    def variant(self, name, state, done, total, worker=None):
+    def variant(self, name, state, done, total, worker=None) -> None:
         key = (state, done)
         if self._last.get(name) == key:
             return
@@ -119,10 +120,10 @@ class WedgeProgress:
                    {"event": "variant", "variant": name, "state": state, "done": done, "total": total,
                     "worker": worker})  # fmt: skip
 
-    def note(self, text):
+    def note(self, text) -> None:
         self._emit(f"note: {text}", {"event": "note", "message": text})
 
-    def finished(self, complete, failed, seconds):
+    def finished(self, complete, failed, seconds) -> None:
         self._emit(f"wedge finished: {complete} complete, {failed} not complete, {seconds:.1f} s wall time",
                    {"event": "wedge_finished", "complete": complete, "failed": failed, "seconds": round(seconds, 3)})
 
@@ -131,7 +132,7 @@ def _entry(manifest, name):
     return next(v for v in manifest["variants"] if v["name"] == name)
 
 
-def run_serial(jobs, manifest, out_dir, frames_total, progress):
+def run_serial(jobs, manifest, out_dir, frames_total, progress) -> bool:
     """Bake the jobs one after another in this process (Ctrl-C stops after the current frame)."""
     from .bake import StopFlag
 
@@ -170,7 +171,7 @@ def _probe_storage(folder, token_name, token, paths):
     return result
 
 
-def check_shared_storage(client, out_dir, paths=()):
+def check_shared_storage(client, out_dir, paths=()) -> dict:
     """Raise CacheError unless every worker reads and writes ``out_dir`` and sees each of ``paths``.
 
     Returns:
@@ -205,13 +206,13 @@ def check_shared_storage(client, out_dir, paths=()):
 THREAD_VARIABLES = ("SPLASHDRAFT_THREADS", "OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
 
-def worker_threads(count):
+def worker_threads(count) -> int:
     """Threads each of ``count`` worker processes on this machine may use (SPLASHDRAFT_THREADS wins)."""
     text = os.environ.get("SPLASHDRAFT_THREADS", "").strip()
     return max(1, int(text)) if text.isdigit() else max(1, local_worker_count() // max(1, int(count)))
 
 
-def worker_environment(threads):
+def worker_environment(threads) -> dict:
     """The environment of a local worker process: every library's thread pool sized to ``threads``.
 
     Two worker processes on two cores, each with numpy's BLAS, the solver's sparse products and
@@ -221,7 +222,7 @@ def worker_environment(threads):
     return {name: str(threads) for name in THREAD_VARIABLES}
 
 
-def connect(scheduler=None, workers=None, timeout=30.0):
+def connect(scheduler=None, workers=None, timeout=30.0) -> tuple:
     """(client, cluster or None): a client of the scheduler at ``scheduler``, or of a new LocalCluster.
 
     Raises:
@@ -271,7 +272,7 @@ def connect(scheduler=None, workers=None, timeout=30.0):
     return client, cluster
 
 
-def collect(futures, on_done, on_poll=None, poll_seconds=0.5):
+def collect(futures, on_done, on_poll=None, poll_seconds=0.5) -> None:
     """Call ``on_done(job, future)`` here as each future finishes, ``on_poll(pending)`` in between.
 
     Args:
@@ -296,7 +297,7 @@ def collect(futures, on_done, on_poll=None, poll_seconds=0.5):
             finished_one.wait(poll_seconds)
 
 
-def wait_until_done(futures, seconds, poll_seconds=0.5):
+def wait_until_done(futures, seconds, poll_seconds=0.5) -> bool:
     """Wait up to ``seconds`` for every future to finish; True when they all did."""
     deadline = time.monotonic() + seconds
     while not all(future.done() for future in futures) and time.monotonic() < deadline:
@@ -304,13 +305,13 @@ def wait_until_done(futures, seconds, poll_seconds=0.5):
     return all(future.done() for future in futures)
 
 
-def task_error(future):
+def task_error(future) -> str:
     """'ErrorType: message' of a failed (or lost) task."""
     exc = future.exception()
     return f"{type(exc).__name__}: {exc}"
 
 
-def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_seconds=0.5):
+def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_seconds=0.5) -> bool:
     """Bake the jobs as Dask tasks; fold reports into ``manifest`` as they arrive.
 
     Returns:
@@ -325,7 +326,7 @@ def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_se
                                pure=False)  # fmt: skip
         futures[future] = job
 
-    def on_done(job, future):
+    def on_done(job, future) -> None:
         entry = _entry(manifest, job["name"])
         if future.status == "finished":
             report = future.result()
@@ -336,7 +337,7 @@ def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_se
         progress.variant(job["name"], entry["state"], entry["frames_done"], frames_total, entry["worker"])
         write_manifest(out_dir, manifest)
 
-    def on_poll(pending):
+    def on_poll(pending) -> None:
         if stop_flag.is_set:  # SIGTERM (e.g. the add-on's Stop) or a first Ctrl-C: stop as Ctrl-C does
             raise KeyboardInterrupt
         changed = False
@@ -372,7 +373,7 @@ def run_on_dask(jobs, manifest, out_dir, frames_total, progress, client, poll_se
     return True
 
 
-def run_jobs(function, jobs, out_dir, scheduler=None, workers=None, paths=(), on_done=None, log=None):
+def run_jobs(function, jobs, out_dir, scheduler=None, workers=None, paths=(), on_done=None, log=None) -> list:
     """Run ``function(job)`` for every job on Dask (a LocalCluster, or the scheduler at ``scheduler``).
 
     The path shared by ``training.generate --scheduler`` and ``bench/eval_learned.py --scheduler``:
@@ -410,7 +411,7 @@ def run_jobs(function, jobs, out_dir, scheduler=None, workers=None, paths=(), on
         futures = {client.submit(_run_task, function, job, key=f"splashdraft-{job['name']}-{run_id}", pure=False): index
                    for index, job in enumerate(jobs)}  # fmt: skip
 
-        def done(index, future):
+        def done(index, future) -> None:
             job = jobs[index]
             if future.status != "finished":
                 errors.append((job, future))
@@ -440,7 +441,7 @@ def run_jobs(function, jobs, out_dir, scheduler=None, workers=None, paths=(), on
 M_TRIM_THRESHOLD, M_MMAP_THRESHOLD = -1, -3
 
 
-def keep_freed_memory():
+def keep_freed_memory() -> bool:
     """In a Dask worker: let glibc keep freed memory for reuse; True when it was set.
 
     Dask's nanny starts workers with MALLOC_TRIM_THRESHOLD_=65536, which also switches off glibc's
@@ -473,7 +474,7 @@ def _run_task(function, job):
 
 
 def run_wedge(scene_file, vary, solver_name, out_dir, frames=None, model=None, workers=None, scheduler=None,
-              progress=None, sheet_frame=None):
+              progress=None, sheet_frame=None) -> tuple[dict, Path | None, bool]:
     """Plan, bake (resuming) and summarise a wedge; returns (manifest dict, contact sheet path or None, cancelled).
 
     Args:

@@ -44,12 +44,12 @@ class MeshCheck:
     area: float  # surface area in m^2
 
     @property
-    def is_closed(self):
+    def is_closed(self) -> bool:
         """True for a watertight, edge-manifold mesh (every edge shared by exactly two triangles)."""
         return self.triangle_count > 0 and self.open_edges == 0 and self.non_manifold_edges == 0
 
 
-def edge_use_counts(triangles):
+def edge_use_counts(triangles) -> tuple[np.ndarray, np.ndarray]:
     """How many triangles use each undirected edge.
 
     Returns:
@@ -65,18 +65,18 @@ def edge_use_counts(triangles):
     return unique, counts
 
 
-def triangle_corners(vertices, triangles):
+def triangle_corners(vertices, triangles) -> np.ndarray:
     """(T, 3, 3) float64 corner positions: [t, corner, axis]."""
     return np.asarray(vertices, np.float64)[np.asarray(triangles, np.int64)]
 
 
-def triangle_areas(vertices, triangles):
+def triangle_areas(vertices, triangles) -> np.ndarray:
     """(T,) float64 triangle areas in m^2."""
     c = triangle_corners(vertices, triangles)
     return 0.5 * np.linalg.norm(np.cross(c[:, 1] - c[:, 0], c[:, 2] - c[:, 0]), axis=1)
 
 
-def triangle_normals(vertices, triangles):
+def triangle_normals(vertices, triangles) -> np.ndarray:
     """(T, 3) float64 unit face normals (right-hand rule); zero for degenerate triangles."""
     c = triangle_corners(vertices, triangles)
     n = np.cross(c[:, 1] - c[:, 0], c[:, 2] - c[:, 0])
@@ -84,7 +84,7 @@ def triangle_normals(vertices, triangles):
     return np.divide(n, length, out=np.zeros_like(n), where=length > 0)
 
 
-def signed_volume(vertices, triangles):
+def signed_volume(vertices, triangles) -> float:
     """Signed volume in m^3 by the divergence theorem, 1/6 sum v0 . (v1 x v2).
 
     Exact for a closed polyhedron; positive when the winding is outward.
@@ -97,7 +97,7 @@ def signed_volume(vertices, triangles):
     return float(np.einsum("ij,ij->i", c[:, 0], np.cross(c[:, 1], c[:, 2])).sum() / 6.0)
 
 
-def check_mesh(vertices, triangles):
+def check_mesh(vertices, triangles) -> MeshCheck:
     """Count open and non-manifold edges, non-finite vertices, degenerate triangles; volume and area."""
     vertices = np.asarray(vertices, np.float64)
     triangles = np.asarray(triangles, np.int64).reshape(-1, 3)
@@ -126,7 +126,7 @@ def check_mesh(vertices, triangles):
 # --------------------------------------------------------------------------- inside test
 
 
-def winding_numbers(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PAIRS):
+def winding_numbers(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PAIRS) -> np.ndarray:
     """Generalised winding number of the mesh at each point (Jacobson et al. 2013).
 
     Args:
@@ -162,7 +162,7 @@ def winding_numbers(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PAIRS
     return result
 
 
-def inside_mesh(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PAIRS):
+def inside_mesh(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PAIRS) -> np.ndarray:
     """(N,) bool: |winding number| > 1/2, with a bounding-box prefilter.
 
     Orientation-agnostic (an inverted closed mesh still has its interior inside).
@@ -182,7 +182,7 @@ def inside_mesh(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PAIRS):
     return inside
 
 
-def count_inside(points, vertices, triangles):
+def count_inside(points, vertices, triangles) -> int:
     """Number of points inside the mesh (see ``inside_mesh``)."""
     return int(np.count_nonzero(inside_mesh(points, vertices, triangles)))
 
@@ -195,7 +195,7 @@ def _ragged_arange(counts):
     return owner, rank
 
 
-def inside_closed_mesh(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PAIRS):
+def inside_closed_mesh(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PAIRS) -> np.ndarray:
     """Fast exact inside test for closed meshes: signed crossings of a ray along +z.
 
     For a closed mesh the winding number at p equals the sum, over triangles
@@ -276,7 +276,7 @@ def inside_closed_mesh(points, vertices, triangles, chunk_pairs=WINDING_CHUNK_PA
 # --------------------------------------------------------------------------- volume sampling
 
 
-def lattice_points(lower, upper, spacing):
+def lattice_points(lower, upper, spacing) -> np.ndarray:
     """Cell centres ``(k + 1/2) * spacing`` (k integer, anchored at the world origin) inside [lower, upper].
 
     The anchor makes every fill deterministic and makes neighbouring fills and
@@ -300,7 +300,7 @@ def lattice_points(lower, upper, spacing):
     return np.stack([g.ravel() for g in grid], axis=1)
 
 
-def sample_volume(vertices, triangles, spacing, jitter=0.0, rng=None):
+def sample_volume(vertices, triangles, spacing, jitter=0.0, rng=None) -> np.ndarray:
     """Fluid particles filling a closed mesh on the origin-anchored cubic lattice.
 
     Args:
@@ -347,7 +347,7 @@ _GOLDEN = (np.sqrt(5.0) - 1.0) / 2.0
 _SILVER = np.sqrt(2.0) - 1.0
 
 
-def sample_surface(vertices, triangles, spacing):
+def sample_surface(vertices, triangles, spacing) -> SurfaceSamples:
     """Deterministic samples on a mesh surface, about one per spacing^2 of area.
 
     Each triangle gets the points of a square lattice of the given spacing laid
@@ -422,7 +422,7 @@ def sample_surface(vertices, triangles, spacing):
     return SurfaceSamples(points, normals, point_tri.astype(np.int64), barycentric)
 
 
-def evaluate_surface(vertices, triangles, triangle_index, barycentric):
+def evaluate_surface(vertices, triangles, triangle_index, barycentric) -> tuple[np.ndarray, np.ndarray]:
     """Positions and unit normals of surface samples on (possibly moved) vertices.
 
     Args:
@@ -450,7 +450,7 @@ class PushResult(NamedTuple):
 
 
 def push_out(points, sample_points, sample_normals, margin, *, vertices=None, triangles=None,
-             two_sided=False, reach=None, tree=None, previous=None):
+             two_sided=False, reach=None, tree=None, previous=None) -> PushResult:
     """Move points out of a collider to at least ``margin`` in front of its surface.
 
     The signed distance is approximated by the plane of the nearest surface

@@ -25,6 +25,7 @@ import os
 import zipfile
 import zlib
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -82,7 +83,7 @@ def _reject_constant(name):
     raise _TooLong(f"{name} is not a JSON number")
 
 
-def json_depth(value):
+def json_depth(value) -> int:
     """Nesting depth of a parsed JSON value (0 for a scalar), without recursion."""
     deepest = 0
     stack = [(value, 1)]
@@ -101,7 +102,7 @@ def json_depth(value):
     return deepest
 
 
-def parse_json(text, source, error, fix, what="file"):
+def parse_json(text, source, error, fix, what="file") -> Any:
     """Parse JSON text with the limits above; every failure is ``error`` naming ``source``, ``what`` and ``fix``."""
     try:
         value = json.loads(text, parse_int=_parse_int, parse_constant=_reject_constant)
@@ -116,7 +117,7 @@ def parse_json(text, source, error, fix, what="file"):
     return value
 
 
-def read_json(path, error, what, fix, max_bytes=MAX_JSON_BYTES):
+def read_json(path, error, what, fix, max_bytes=MAX_JSON_BYTES) -> Any:
     """Read and parse a JSON file (see ``parse_json``); missing or unreadable files are ``error`` too."""
     path = os.fspath(path)
     try:
@@ -133,7 +134,7 @@ def read_json(path, error, what, fix, max_bytes=MAX_JSON_BYTES):
     return parse_json(text, path, error, fix, what)
 
 
-def safe_name(value):
+def safe_name(value) -> bool:
     """True when ``value`` is a usable object name: 1..MAX_NAME_LENGTH printable characters, no path separator."""
     return (
         isinstance(value, str)
@@ -145,7 +146,7 @@ def safe_name(value):
     )
 
 
-def finite_number(value, minimum=None, maximum=None):
+def finite_number(value, minimum=None, maximum=None) -> float | None:
     """``value`` as a float when it is a real, finite number within [minimum, maximum]; otherwise None."""
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         return None
@@ -160,7 +161,7 @@ def finite_number(value, minimum=None, maximum=None):
     return number
 
 
-def whole_number(value, minimum=None, maximum=None):
+def whole_number(value, minimum=None, maximum=None) -> int | None:
     """``value`` as an int when it is an integer (not a bool) within [minimum, maximum]; otherwise None."""
     if isinstance(value, bool) or not isinstance(value, int):
         return None
@@ -169,7 +170,7 @@ def whole_number(value, minimum=None, maximum=None):
     return int(value)
 
 
-def path_inside(folder, name, error, what):
+def path_inside(folder, name, error, what) -> Path:
     """``folder / name`` resolved, refusing (``error``) any name that leads outside ``folder``.
 
     ``name`` must be a plain relative path string; absolute paths, ``..`` and
@@ -185,7 +186,7 @@ def path_inside(folder, name, error, what):
     return target
 
 
-def read_npz(path, keys, error, label, fix="re-export it", max_elements=MAX_ARRAY_ELEMENTS, text_keys=()):
+def read_npz(path, keys, error, label, fix="re-export it", max_elements=MAX_ARRAY_ELEMENTS, text_keys=()) -> dict:
     """Read arrays ``keys`` from an npz file, checking each before it is allocated.
 
     Args:

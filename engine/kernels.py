@@ -18,7 +18,7 @@ checked numerically in tests/test_kernels.py).
 import numpy as np
 
 
-def kernel(distances, support_radius):
+def kernel(distances, support_radius) -> np.ndarray:
     """Cubic spline W(r) in 1/m^3 for an array of distances (m)."""
     q = np.asarray(distances, dtype=np.float64) / support_radius
     sigma = 8.0 / (np.pi * support_radius**3)
@@ -27,7 +27,7 @@ def kernel(distances, support_radius):
     return sigma * np.where(q <= 0.5, inner, outer)
 
 
-def kernel_derivative(distances, support_radius):
+def kernel_derivative(distances, support_radius) -> np.ndarray:
     """dW/dr in 1/m^4 for an array of distances (m); zero outside the support."""
     q = np.asarray(distances, dtype=np.float64) / support_radius
     sigma = 8.0 / (np.pi * support_radius**4)
@@ -36,7 +36,7 @@ def kernel_derivative(distances, support_radius):
     return sigma * np.where(q <= 0.5, inner, outer)
 
 
-def kernel_gradient(offsets, support_radius):
+def kernel_gradient(offsets, support_radius) -> np.ndarray:
     """Gradient of W with respect to x_i for offsets x_i - x_j.
 
     Args:
@@ -54,7 +54,7 @@ def kernel_gradient(offsets, support_radius):
     return offsets * scale[:, None]
 
 
-def kernel_terms(distances, support_radius):
+def kernel_terms(distances, support_radius) -> tuple[np.ndarray, np.ndarray]:
     """W(r) and (dW/dr)/r together, for pair loops (one pass over the distances).
 
     Args:

@@ -43,7 +43,7 @@ DENSITY_SUPPORT_SPACINGS = SUPPORT_SPACINGS
 DENSITY_BAND = 0.03
 
 
-def chamfer_distance(points_a, points_b):
+def chamfer_distance(points_a, points_b) -> tuple[float, float, float]:
     """Symmetric mean nearest-neighbour distance (unsquared), see the module docstring.
 
     Args:
@@ -66,7 +66,7 @@ def chamfer_distance(points_a, points_b):
 
 
 def sph_density(positions, particle_spacing, rest_density, boundary_positions=None, boundary_volumes=None,
-                with_pairs=False):
+                with_pairs=False) -> tuple:
     """SPH density estimate and neighbour counts (see the module docstring).
 
     Args:
@@ -108,7 +108,7 @@ def sph_density(positions, particle_spacing, rest_density, boundary_positions=No
     return density, counts.astype(np.int64)
 
 
-def deep_interior(interior, pairs):
+def deep_interior(interior, pairs) -> np.ndarray:
     """(N,) bool: interior particles whose fluid neighbours (``pairs``, i < j) are all interior."""
     interior = np.asarray(interior, bool)
     n = len(interior)
@@ -117,18 +117,18 @@ def deep_interior(interior, pairs):
     return interior & (touches_outer == 0)
 
 
-def interior_mask(counts):
+def interior_mask(counts) -> np.ndarray:
     """(N,) bool: particles with at least ``FULL_SUPPORT_NEIGHBOURS`` neighbours (``sph_density``'s counts)."""
     return np.asarray(counts) >= FULL_SUPPORT_NEIGHBOURS
 
 
-def kinetic_energy(velocities, mass):
+def kinetic_energy(velocities, mass) -> float:
     """1/2 m sum |v|^2 in joules of particles of equal ``mass`` (kg). velocities: (N, 3) m/s."""
     v = np.asarray(velocities, np.float64).reshape(-1, 3)
     return 0.5 * mass * float(np.einsum("ij,ij->", v, v))
 
 
-def potential_energy(positions, mass, gravity, datum):
+def potential_energy(positions, mass, gravity, datum) -> float:
     """m |g| sum h in joules, h = offset - down . x from ``datum`` = (down, offset) (``energy.height_datum``).
 
     positions: (N, 3) m; mass: kg per particle; gravity: (3,) m/s^2.

@@ -31,7 +31,7 @@ MESH_SUFFIXES = (".obj", ".ply", ".npz")
 # --------------------------------------------------------------------------- reading
 
 
-def read_mesh(path):
+def read_mesh(path) -> tuple[np.ndarray, np.ndarray]:
     """Read a triangle mesh from an .obj, .ply or .npz file.
 
     Args:
@@ -342,11 +342,11 @@ def _replace_into(path, write):
             os.remove(temporary)
 
 
-def write_obj(path, vertices, triangles):
+def write_obj(path, vertices, triangles) -> None:
     """Write a mesh as OBJ (``v`` and ``f`` lines, 1-based indices, 17 significant digits)."""
     vertices, triangles = _checked_arrays(os.fspath(path), vertices, triangles)
 
-    def write(temporary):
+    def write(temporary) -> None:
         with open(temporary, "w", encoding="ascii") as handle:
             handle.write("# splashdraft mesh\n")
             np.savetxt(handle, vertices, fmt="v %.17g %.17g %.17g")
@@ -355,7 +355,7 @@ def write_obj(path, vertices, triangles):
     _replace_into(path, write)
 
 
-def write_ply(path, vertices, triangles):
+def write_ply(path, vertices, triangles) -> None:
     """Write a mesh as binary little-endian PLY (double x y z, uchar/int face lists)."""
     vertices, triangles = _checked_arrays(os.fspath(path), vertices, triangles)
     header = (
@@ -367,7 +367,7 @@ def write_ply(path, vertices, triangles):
     faces["n"] = 3
     faces["i"] = triangles
 
-    def write(temporary):
+    def write(temporary) -> None:
         with open(temporary, "wb") as handle:
             handle.write(header)
             handle.write(vertices.astype("<f8").tobytes())
@@ -376,18 +376,18 @@ def write_ply(path, vertices, triangles):
     _replace_into(path, write)
 
 
-def write_npz(path, vertices, triangles):
+def write_npz(path, vertices, triangles) -> None:
     """Write a mesh as npz with arrays ``vertices`` (float64) and ``triangles`` (int64)."""
     vertices, triangles = _checked_arrays(os.fspath(path), vertices, triangles)
 
-    def write(temporary):
+    def write(temporary) -> None:
         with open(temporary, "wb") as handle:
             np.savez(handle, vertices=vertices, triangles=triangles)
 
     _replace_into(path, write)
 
 
-def write_mesh(path, vertices, triangles):
+def write_mesh(path, vertices, triangles) -> None:
     """Write a mesh; the suffix (.obj, .ply, .npz) picks the format."""
     suffix = os.path.splitext(os.fspath(path))[1].lower()
     writers = {".obj": write_obj, ".ply": write_ply, ".npz": write_npz}
@@ -399,7 +399,7 @@ def write_mesh(path, vertices, triangles):
 # --------------------------------------------------------------------------- builders
 
 
-def box_mesh(lower, upper):
+def box_mesh(lower, upper) -> tuple[np.ndarray, np.ndarray]:
     """Axis-aligned box from corner ``lower`` to ``upper`` (metres): 8 vertices, 12 triangles."""
     lower = np.asarray(lower, np.float64)
     upper = np.asarray(upper, np.float64)
@@ -418,7 +418,7 @@ def box_mesh(lower, upper):
     return vertices, np.array(triangles, np.int64)
 
 
-def uv_sphere_mesh(center=(0.0, 0.0, 0.0), radius=1.0, segments=32, rings=16):
+def uv_sphere_mesh(center=(0.0, 0.0, 0.0), radius=1.0, segments=32, rings=16) -> tuple[np.ndarray, np.ndarray]:
     """Latitude-longitude sphere: ``segments`` around z, ``rings`` from pole to pole."""
     if segments < 3 or rings < 2:
         raise MeshError(f"uv_sphere_mesh: needs segments >= 3 and rings >= 2, got {segments}, {rings}")
@@ -442,7 +442,7 @@ def uv_sphere_mesh(center=(0.0, 0.0, 0.0), radius=1.0, segments=32, rings=16):
     return np.asarray(center, np.float64) + radius * vertices, np.array(triangles, np.int64)
 
 
-def ico_sphere_mesh(center=(0.0, 0.0, 0.0), radius=1.0, subdivisions=2):
+def ico_sphere_mesh(center=(0.0, 0.0, 0.0), radius=1.0, subdivisions=2) -> tuple[np.ndarray, np.ndarray]:
     """Geodesic sphere: an icosahedron split ``subdivisions`` times (20 * 4**s triangles)."""
     t = (1.0 + 5.0**0.5) / 2.0
     vertices = [(-1, t, 0), (1, t, 0), (-1, -t, 0), (1, -t, 0), (0, -1, t), (0, 1, t),
@@ -454,7 +454,7 @@ def ico_sphere_mesh(center=(0.0, 0.0, 0.0), radius=1.0, subdivisions=2):
     for _ in range(int(subdivisions)):
         midpoints = {}
 
-        def midpoint(i, j):
+        def midpoint(i, j) -> int:
             key = (min(i, j), max(i, j))
             if key not in midpoints:
                 m = vertices[i] + vertices[j]
@@ -470,7 +470,7 @@ def ico_sphere_mesh(center=(0.0, 0.0, 0.0), radius=1.0, subdivisions=2):
     return np.asarray(center, np.float64) + radius * np.array(vertices), np.array(triangles, np.int64)
 
 
-def torus_mesh(center=(0.0, 0.0, 0.0), major_radius=1.0, minor_radius=0.25, major_segments=48, minor_segments=24):
+def torus_mesh(center=(0.0, 0.0, 0.0), major_radius=1.0, minor_radius=0.25, major_segments=48, minor_segments=24) -> tuple[np.ndarray, np.ndarray]:
     """Torus around the z axis: tube of radius ``minor_radius`` at distance ``major_radius``."""
     if major_segments < 3 or minor_segments < 3:
         raise MeshError("torus_mesh: needs at least 3 major and 3 minor segments")
@@ -489,7 +489,7 @@ def torus_mesh(center=(0.0, 0.0, 0.0), major_radius=1.0, minor_radius=0.25, majo
     return np.asarray(center, np.float64) + vertices, triangles.astype(np.int64)
 
 
-def cylinder_mesh(center=(0.0, 0.0, 0.0), radius=1.0, height=1.0, segments=32):
+def cylinder_mesh(center=(0.0, 0.0, 0.0), radius=1.0, height=1.0, segments=32) -> tuple[np.ndarray, np.ndarray]:
     """Closed cylinder along z, centred at ``center``, with fan-triangulated caps."""
     if segments < 3:
         raise MeshError("cylinder_mesh: needs at least 3 segments")
@@ -511,7 +511,7 @@ def cylinder_mesh(center=(0.0, 0.0, 0.0), radius=1.0, height=1.0, segments=32):
     return np.asarray(center, np.float64) + vertices, triangles.astype(np.int64)
 
 
-def plane_mesh(center=(0.0, 0.0, 0.0), size=(1.0, 1.0), divisions=(1, 1)):
+def plane_mesh(center=(0.0, 0.0, 0.0), size=(1.0, 1.0), divisions=(1, 1)) -> tuple[np.ndarray, np.ndarray]:
     """Open rectangular sheet in the xy plane facing +z (for thin or deforming colliders)."""
     nx, ny = int(divisions[0]), int(divisions[1])
     if nx < 1 or ny < 1:
@@ -527,7 +527,7 @@ def plane_mesh(center=(0.0, 0.0, 0.0), size=(1.0, 1.0), divisions=(1, 1)):
     return np.asarray(center, np.float64) + vertices, triangles.astype(np.int64)
 
 
-def transform_points(matrix, points):
+def transform_points(matrix, points) -> np.ndarray:
     """Apply a 4x4 world matrix (column-vector convention) to (N, 3) points."""
     matrix = np.asarray(matrix, np.float64)
     points = np.asarray(points, np.float64)

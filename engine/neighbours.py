@@ -20,13 +20,13 @@ class NeighbourList:
     indices: np.ndarray  # (P,) int64, the j of each pair
 
     @property
-    def rows(self):
+    def rows(self) -> np.ndarray:
         """(P,) int64: the i of each pair."""
         counts = np.diff(self.offsets)
         return np.repeat(np.arange(len(counts), dtype=np.int64), counts)
 
     @property
-    def counts(self):
+    def counts(self) -> np.ndarray:
         return np.diff(self.offsets)
 
 
@@ -48,7 +48,7 @@ def _to_csr(rows, cols, n):
     return NeighbourList(offsets=offsets, indices=cols.astype(np.int64))
 
 
-def find_neighbours(points, radius):
+def find_neighbours(points, radius) -> NeighbourList:
     """All directed pairs within ``radius`` among ``points`` (self excluded).
 
     Args:
@@ -71,7 +71,7 @@ def find_neighbours(points, radius):
     return _to_csr(rows, cols, n)
 
 
-def find_neighbours_between(points, others, radius, others_tree=None):
+def find_neighbours_between(points, others, radius, others_tree=None) -> NeighbourList:
     """Pairs (i, k) with |points_i - others_k| < radius; i indexes ``points``.
 
     Used for fluid-to-boundary pairs. ``others_tree`` may be a prebuilt cKDTree
@@ -147,7 +147,7 @@ class SkinPairs:
                 return True
         return False
 
-    def update(self, points, others=None, key=None):
+    def update(self, points, others=None, key=None) -> tuple[tuple, tuple | None]:
         """Pairs for the current positions.
 
         Args:

@@ -50,12 +50,16 @@ i < j, q compression (kg/m^3), alpha the DFSPH factor (m^5/kg), m particle mass 
 """
 
 import os
+from typing import TYPE_CHECKING
 
 import numpy as np
 import onnxruntime as ort
 import scipy.sparse as sparse
 
 from .errors import SolverError
+
+if TYPE_CHECKING:
+    import onnx
 
 #: Iterations unrolled into one onnxruntime call (the default of ``OrtJacobi``).
 ITERATIONS_PER_CALL = 8
@@ -120,7 +124,7 @@ class JacobiTables:
         self.rest_density = float(rest_density)
 
     @classmethod
-    def from_operators(cls, ops):
+    def from_operators(cls, ops) -> "JacobiTables":
         """Tables from an ``engine.sph.PairOperators`` (reads its pair lists and gradient columns).
 
         The upper-triangle CSR matrices hold m grad W_ij in pair order (pairs sorted by i,
@@ -130,7 +134,7 @@ class JacobiTables:
                    ops.boundary_rate, ops.rest_density)
 
     @property
-    def width(self):
+    def width(self) -> int:
         """K, the table width (most neighbours of any particle)."""
         return self.neighbours.shape[1]
 
@@ -157,16 +161,16 @@ class _Graph:
         self.initializers = []
         self._count = 0
 
-    def name(self, stem):
+    def name(self, stem) -> str:
         self._count += 1
         return f"{stem}_{self._count}"
 
-    def op(self, op_type, inputs, stem=None, **attributes):
+    def op(self, op_type, inputs, stem=None, **attributes) -> str:
         out = self.name(stem or op_type.lower())
         self.nodes.append(self.onnx.helper.make_node(op_type, list(inputs), [out], name=out, **attributes))
         return out
 
-    def constant(self, stem, values, dtype=np.int64):
+    def constant(self, stem, values, dtype=np.int64) -> str:
         name = self.name(stem)
         self.initializers.append(self.onnx.numpy_helper.from_array(np.asarray(values, dtype), name))
         return name
@@ -187,7 +191,7 @@ def _rate(g, dv, shapes, axis0, axis2):
     return g.op("ReduceSum", [g.op("Sub", [g.op("Mul", ["own", dv]), others]), axis0], keepdims=0)
 
 
-def build_model(iterations):
+def build_model(iterations) -> "onnx.ModelProto":
     """ONNX model of ``iterations`` unrolled Jacobi iterations on the corrections (module docstring).
 
     Inputs (N and K symbolic): dv (3, N), dkappa (N,), compression (N,) float32 (state);
@@ -281,7 +285,7 @@ class OrtJacobi:
         model = build_model(self.iterations_per_call)
         self.session = ort.InferenceSession(model.SerializeToString(), options, providers=["CPUExecutionProvider"])
 
-    def solve(self, ops, tables, velocities, kappa, floor, dt, tolerance, min_iterations, max_iterations):
+    def solve(self, ops, tables, velocities, kappa, floor, dt, tolerance, min_iterations, max_iterations) -> tuple:
         """``engine.sph._jacobi_solve`` with the iterations in onnxruntime (float32 corrections).
 
         Args:

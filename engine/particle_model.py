@@ -15,17 +15,17 @@ and the scene checks take these rules from here.
 SUPPORT_SPACINGS = 2.0
 
 
-def support_radius(particle_spacing):
+def support_radius(particle_spacing) -> float:
     """H in metres for a particle spacing d in metres: ``SUPPORT_SPACINGS * d``."""
     return SUPPORT_SPACINGS * particle_spacing
 
 
-def particle_mass(rest_density, particle_spacing):
+def particle_mass(rest_density, particle_spacing) -> float:
     """m = rho0 d^3 in kg (rho0 in kg/m^3, d in metres)."""
     return rest_density * particle_spacing**3
 
 
-def cfl_step(speed, particle_spacing, cfl_factor, max_time_step):
+def cfl_step(speed, particle_spacing, cfl_factor, max_time_step) -> float:
     """The CFL time step in seconds: cfl_factor * d / speed, at most ``max_time_step``.
 
     Args:
@@ -37,6 +37,6 @@ def cfl_step(speed, particle_spacing, cfl_factor, max_time_step):
     return min(cfl_factor * particle_spacing / speed, max_time_step)
 
 
-def cfl_speed_limit(particle_spacing, cfl_factor, min_time_step):
+def cfl_speed_limit(particle_spacing, cfl_factor, min_time_step) -> float:
     """The speed (m/s) at which the CFL step reaches ``min_time_step``: cfl_factor * d / min_time_step."""
     return cfl_factor * particle_spacing / min_time_step

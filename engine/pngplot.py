@@ -36,13 +36,13 @@ _FONT = {
 _COLOURS = ((31, 119, 180), (214, 39, 40), (44, 160, 44), (148, 103, 189), (255, 127, 14), (23, 190, 207))
 
 
-def png_bytes(image):
+def png_bytes(image) -> bytes:
     """Encode an (H, W, 3) uint8 RGB array as PNG bytes (see the module docstring)."""
     image = np.ascontiguousarray(image, dtype=np.uint8)
     height, width, _ = image.shape
     raw = np.concatenate([np.zeros((height, 1), np.uint8), image.reshape(height, width * 3)], axis=1)
 
-    def chunk(kind, data):
+    def chunk(kind, data) -> bytes:
         body = kind + data
         return struct.pack(">I", len(data)) + body + struct.pack(">I", zlib.crc32(body) & 0xFFFFFFFF)
 
@@ -76,7 +76,7 @@ def _tick(value):
     return f"{value:.3g}"
 
 
-def line_plot_png(series, path=None, width=720, height=420, log_y=False, x_label="", y_label=""):
+def line_plot_png(series, path=None, width=720, height=420, log_y=False, x_label="", y_label="") -> bytes:
     """Draw series as a line chart; return the PNG bytes and write them to ``path`` if given.
 
     Args:
@@ -108,7 +108,7 @@ def line_plot_png(series, path=None, width=720, height=420, log_y=False, x_label
     pad = 0.05 * (y_max - y_min)
     y_min, y_max = y_min - pad, y_max + pad
 
-    def to_px(x, y):
+    def to_px(x, y) -> tuple[float | np.ndarray, float | np.ndarray]:
         px = left + (x - x_min) / (x_max - x_min) * (width - left - right)
         py = height - bottom - (y - y_min) / (y_max - y_min) * (height - top - bottom)
         return px, py

@@ -30,7 +30,7 @@ import json
 import math
 import os
 from dataclasses import dataclass
-from typing import Optional
+from typing import NoReturn, Optional
 
 import numpy as np
 
@@ -157,19 +157,19 @@ class Scene:
     source: Optional[str] = None  # the scene file, when loaded from one
 
     @property
-    def fill_emitters(self):
+    def fill_emitters(self) -> tuple[FillEmitter, ...]:
         return tuple(e for e in self.emitters if isinstance(e, FillEmitter))
 
     @property
-    def stream_emitters(self):
+    def stream_emitters(self) -> tuple[StreamEmitter, ...]:
         return tuple(e for e in self.emitters if isinstance(e, StreamEmitter))
 
-    def time_of_frame(self, frame):
+    def time_of_frame(self, frame) -> float:
         """Simulated time in seconds of frame ``frame`` (frame_start is t = 0)."""
         return (frame - self.frame_start) / self.fps
 
     @property
-    def end_time(self):
+    def end_time(self) -> float:
         """Simulated time of frame_end in seconds."""
         return self.time_of_frame(self.frame_end)
 
@@ -183,15 +183,15 @@ class _Checker:
     def __init__(self, source):
         self.source = source
 
-    def fail(self, where, problem, fix, error=SceneError):
+    def fail(self, where, problem, fix, error=SceneError) -> NoReturn:
         raise error(f"{self.source}: {where}: {problem}; {fix}")
 
-    def mapping(self, value, where):
+    def mapping(self, value, where) -> dict:
         if not isinstance(value, dict):
             self.fail(where, f"expected an object, got {_show(value)}", "write it as {...}")
         return value
 
-    def keys(self, value, allowed, where, required=()):
+    def keys(self, value, allowed, where, required=()) -> None:
         for key in value:
             if key not in allowed:
                 self.fail(where, f'unknown key "{key}"', f"use only {', '.join(allowed)}")
@@ -199,7 +199,7 @@ class _Checker:
             if key not in value:
                 self.fail(where, f'missing key "{key}"', f'add "{key}"')
 
-    def number(self, value, where, minimum=None, exclusive=False, maximum=None, hint=""):
+    def number(self, value, where, minimum=None, exclusive=False, maximum=None, hint="") -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             self.fail(where, f"expected a number, got {_show(value)}", f"give a number{hint}")
         try:
@@ -215,12 +215,12 @@ class _Checker:
             self.fail(where, f"must be <= {maximum:g}, got {value:g}", f"give a value <= {maximum:g}{hint}")
         return value
 
-    def ranged(self, value, where, limit, hint=""):
+    def ranged(self, value, where, limit, hint="") -> float:
         """A number within ``LIMITS[limit]`` (see DEVELOPERS.md, scene reference)."""
         low, high = LIMITS[limit]
         return self.number(value, where, low, maximum=high, hint=hint)
 
-    def integer(self, value, where, minimum=None, maximum=None):
+    def integer(self, value, where, minimum=None, maximum=None) -> int:
         if isinstance(value, bool) or not isinstance(value, int):
             if isinstance(value, float) and value.is_integer() and abs(value) <= 2**53:
                 value = int(value)
@@ -232,14 +232,14 @@ class _Checker:
             self.fail(where, f"must be <= {maximum}, got {_show(value)}", f"give an integer <= {maximum}")
         return int(value)
 
-    def vector3(self, value, where, hint="", limit=None):
+    def vector3(self, value, where, hint="", limit=None) -> np.ndarray:
         if not isinstance(value, (list, tuple, np.ndarray)) or len(value) != 3:
             self.fail(where, f"expected 3 numbers, got {_show(value)}", f"give [x, y, z]{hint}")
         if limit is not None:
             return np.array([self.ranged(v, f"{where}[{i}]", limit, hint=hint) for i, v in enumerate(value)], np.float64)
         return np.array([self.number(v, f"{where}[{i}]", hint=hint) for i, v in enumerate(value)], np.float64)
 
-    def text(self, value, where):
+    def text(self, value, where) -> str:
         if not safe_name(value):
             self.fail(where, f"expected a name, got {_show(value)}",
                       "give 1 to 100 printable characters without / or \\")
@@ -259,7 +259,7 @@ def _show(value):
 # --------------------------------------------------------------------------- loading
 
 
-def load_scene(path):
+def load_scene(path) -> Scene:
     """Read, validate and resolve a scene file.
 
     Args:
@@ -295,7 +295,7 @@ def _check_emitter_speeds(check, emitters, spacing, solver):
                        f"give a speed below {limit:.4g} m/s, or lower solver.min_time_step")
 
 
-def scene_from_dict(data, base_dir=".", source=None, allow_inline=True):
+def scene_from_dict(data, base_dir=".", source=None, allow_inline=True) -> Scene:
     """Validate a scene given as a dict (the JSON structure) and resolve it.
 
     Args:
@@ -670,12 +670,12 @@ def _frame_vertices(context, value, label, vertex_count):
 # --------------------------------------------------------------------------- writing and hashing
 
 
-def scene_to_dict(scene):
+def scene_to_dict(scene) -> dict:
     """The canonical JSON-able dict of a Scene (defaults written out; inline arrays as arrays).
 
     Inline arrays (``*_file`` None) stay numpy arrays; ``save_scene`` writes them out.
     """
-    def vec(v):
+    def vec(v) -> list[float]:
         return [float(x) for x in v]
 
     emitters = []
@@ -716,7 +716,7 @@ def _inline(vertices, triangles):
     return {"vertices": vertices, "triangles": triangles}
 
 
-def save_scene(path, scene, mesh_folder="meshes"):
+def save_scene(path, scene, mesh_folder="meshes") -> Scene:
     """Write a scene file (validated first) and any inline arrays as npz beside it.
 
     Args:
@@ -803,7 +803,7 @@ def _write_array(target, key, array):
     os.replace(temporary, target)
 
 
-def scene_hash(scene):
+def scene_hash(scene) -> str:
     """sha256 hex of the canonical scene JSON plus the bytes of every mesh and motion array.
 
     Args:

@@ -8,6 +8,8 @@ Solver modules are imported only when a solver is made, so ``import engine.solve
 does not load onnxruntime.
 """
 
+from pathlib import Path
+
 from .errors import UsageError
 from .protocols import Solver
 from .learned.contract import check_folder, default_model_path, find_model, load_contract, shipped_models_dir
@@ -51,13 +53,13 @@ def make_solver(name, **options) -> Solver:
     raise UsageError(f"solver {name!r} is not one of {', '.join(SOLVER_NAMES)}; choose --solver sph or learned")
 
 
-def check_model_option(name, model):
+def check_model_option(name, model) -> None:
     """Raise UsageError when a model is given for a solver that takes none (only "learned" does)."""
     if model is not None and name != "learned":
         raise UsageError(f"--model {model}: a model is for the learned preview; add --solver learned")
 
 
-def model_contract(model=None):
+def model_contract(model=None) -> tuple[dict, Path]:
     """The checked contract of a model (``find_model``'s forms; None: the shipped model).
 
     Returns:
@@ -69,7 +71,7 @@ def model_contract(model=None):
     return load_contract(default_model_path() if model is None else find_model(model))
 
 
-def installed_models(folder=None):
+def installed_models(folder=None) -> list[tuple[str, Path]]:
     """The models in ``folder`` (default: the shipped models) that pass their contract check.
 
     Returns:

@@ -69,6 +69,7 @@ import os
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.sparse as sparse
@@ -79,6 +80,9 @@ from .kernels import kernel, kernel_terms
 from .particle_model import cfl_speed_limit, cfl_step, particle_mass, support_radius
 from .scene import DEFAULT_GRAVITY, Fluid, SolverSettings
 from .neighbours import SkinPairs
+
+if TYPE_CHECKING:
+    from .state import State
 
 KAPPA = "sph_kappa"
 DRIFT = "sph_drift"
@@ -137,15 +141,15 @@ class SphParams:
     neighbour_skin: float
 
     @property
-    def support_radius(self):
+    def support_radius(self) -> float:
         return support_radius(self.particle_spacing)
 
     @property
-    def particle_mass(self):
+    def particle_mass(self) -> float:
         return particle_mass(self.rest_density, self.particle_spacing)
 
     @property
-    def max_speed(self):
+    def max_speed(self) -> float:
         """Speed above which the CFL step would drop below ``min_time_step`` (m/s)."""
         return cfl_speed_limit(self.particle_spacing, self.cfl_factor, self.min_time_step)
 
@@ -194,7 +198,7 @@ MAX_STEP_HALVINGS = 3
 LAST_STEP = "sph_last_step"
 
 
-def warm_start_kappa(kappa, last_dt, dt):
+def warm_start_kappa(kappa, last_dt, dt) -> np.ndarray:
     """The constant-density kappa to warm-start a substep of length ``dt`` with.
 
     kappa acts as the velocity change dt * kappa / rho, so kappa carried over
@@ -219,13 +223,13 @@ def make_params(particle_spacing, *, rest_density=Fluid.rest_density, viscosity=
                 max_time_step=SolverSettings.max_time_step, min_time_step=SolverSettings.min_time_step,
                 density_tolerance=SolverSettings.density_tolerance,
                 divergence_tolerance=SolverSettings.divergence_tolerance,
-                max_iterations=SolverSettings.max_iterations, neighbour_skin=None):
+                max_iterations=SolverSettings.max_iterations, neighbour_skin=None) -> SphParams:
     """Validated SphParams; the defaults are the scene format's (``engine.scene``), ``neighbour_skin`` 0.25 H.
 
     Raises:
         SceneError: naming the field, the bad value and the allowed range.
     """
-    def positive(name, value):
+    def positive(name, value) -> float:
         value = float(value)
         if not math.isfinite(value) or value <= 0:
             raise SceneError(f"{name}: must be a finite number > 0, got {value!r}; set a positive value")
@@ -263,7 +267,7 @@ def make_params(particle_spacing, *, rest_density=Fluid.rest_density, viscosity=
                      neighbour_skin=skin, **values)
 
 
-def params_from_world(world, neighbour_skin=None):
+def params_from_world(world, neighbour_skin=None) -> SphParams:
     """SphParams from a world (``engine.world.World`` or a validation case): spacing, fluid, gravity, solver."""
     solver = world.solver_settings
     return make_params(
@@ -274,7 +278,7 @@ def params_from_world(world, neighbour_skin=None):
         neighbour_skin=neighbour_skin)
 
 
-def cfl_time_step(velocities, params):
+def cfl_time_step(velocities, params) -> tuple[float, int]:
     """dt = cfl_factor * d / max|v| clipped to [min_time_step, max_time_step] (SCA 2015 CFL rule).
 
     Args:
@@ -293,7 +297,7 @@ def cfl_time_step(velocities, params):
     return cfl_step(speed, params.particle_spacing, params.cfl_factor, params.max_time_step), fastest
 
 
-def substep_length(dt, remaining):
+def substep_length(dt, remaining) -> float:
     """The step actually taken so that substeps land exactly on the end time.
 
     Takes the rest if it fits in one step; splits it in two equal steps if it
@@ -376,7 +380,7 @@ class PairOperators:
         self._rate_sum = total  # multiplies v_i in D rho / Dt
         self._accel_sum = total  # boundary term k_i Psi_b grad W_ib: p_i / rho_i^2 only
 
-    def density_rate(self, velocities):
+    def density_rate(self, velocities) -> np.ndarray:
         """(D rho / Dt)_i = sum_j m (v_i - v_j).grad W_ij + sum_b Psi_b (v_i - v_b).grad W_ib, kg/(m^3 s)."""
         rate = np.einsum("ij,ij->i", velocities, self._rate_sum) - self.boundary_rate
         columns = [np.ascontiguousarray(velocities[:, c]) for c in range(3)]
@@ -386,7 +390,7 @@ class PairOperators:
             rate += products[2 * c + 1]
         return rate
 
-    def pressure_term(self, k):
+    def pressure_term(self, k) -> np.ndarray:
         """(N, 3) sum_j m (k_i + k_j) grad W_ij + k_i sum_b Psi_b grad W_ib, with k = kappa / rho."""
         out = self._accel_sum * k[:, None]
         products = _products([(m, k) for c in range(3) for m in (self._upper[c], self._lower[c])])
@@ -395,7 +399,7 @@ class PairOperators:
             out[:, c] -= products[2 * c + 1]
         return out
 
-    def xsph(self, velocities, epsilon, mass):
+    def xsph(self, velocities, epsilon, mass) -> np.ndarray:
         """XSPH-smoothed velocities v_i + eps sum_j (m / rho_ij)(v_j - v_i) W_ij (Monaghan 1989),
         plus the same smoothing toward the boundary particles' velocities,
         eps sum_b (Psi_b / rho_i)(v_b - v_i) W_ib: walls and colliders are no-slip, as real ones
@@ -497,7 +501,7 @@ def _jacobi_solve(ops, velocities, kappa, floor, dt, tolerance, min_iterations, 
     return velocities, kappa, iterations, error, float(np.max(compression)) / rho0, converged
 
 
-def dfsph_substep(positions, velocities, kappa, drift, boundary, params, dt, pairs=None):
+def dfsph_substep(positions, velocities, kappa, drift, boundary, params, dt, pairs=None) -> SubstepResult:
     """One substep of length dt (see the module docstring for the equations).
 
     Args:
@@ -561,7 +565,7 @@ def dfsph_substep(positions, velocities, kappa, drift, boundary, params, dt, pai
         seconds={"neighbours": t_pairs - clock, "density": t_density - t_pairs, "solvers": t_solve - t_density})
 
 
-def settle_positions(positions, boundary, params, passes=SETTLE_PASSES):
+def settle_positions(positions, boundary, params, passes=SETTLE_PASSES) -> np.ndarray:
     """Positions moved by the drift solve alone (no velocity) until no particle is denser than rho0.
 
     Each pass searches neighbours again and runs the drift solve with zero velocity over
@@ -585,7 +589,7 @@ def settle_positions(positions, boundary, params, passes=SETTLE_PASSES):
     return positions
 
 
-def sph_density(positions, boundary, params, pairs=None):
+def sph_density(positions, boundary, params, pairs=None) -> np.ndarray:
     """rho_i = sum_j m W_ij + sum_b Psi_b W_ib (self included), (N,) float64 kg/m^3."""
     positions = np.asarray(positions, np.float64)
     if len(positions) == 0:
@@ -641,7 +645,7 @@ def _with_solver_arrays(state):
     return dataclasses.replace(state, particle_arrays=arrays) if changed else state
 
 
-def check_health(positions, velocities, ids, params, time_now):
+def check_health(positions, velocities, ids, params, time_now) -> None:
     """Raise SolverError on NaN/inf or a particle faster than ``params.max_speed``."""
     finite = np.isfinite(positions).all(axis=1) & np.isfinite(velocities).all(axis=1)
     if not finite.all():
@@ -683,7 +687,7 @@ class SphSolver:
             self._pairs = SkinPairs(self._params.support_radius, self._params.neighbour_skin)
         return self._params
 
-    def settings(self):
+    def settings(self) -> dict:
         """Solver settings for the cache manifest (resolved once ``start`` or ``advance`` ran)."""
         out = {"method": "DFSPH (Bender & Koschier 2015), density error corrected by position (drift solve)",
                "kernel": "cubic spline, H = 2 * spacing",
@@ -699,7 +703,7 @@ class SphSolver:
                        max_iterations=p.max_iterations, neighbour_skin=p.neighbour_skin)
         return out
 
-    def start(self, world):
+    def start(self, world) -> "State":
         """Initial state (t = 0) of ``world``, settled to rest density, with zeroed warm-start arrays.
 
         Fill lattices next to walls start over-dense (a lattice point one spacing from a
@@ -712,7 +716,7 @@ class SphSolver:
         positions = settle_positions(state.positions, world.boundary_at(0.0), params)
         return dataclasses.replace(state, positions=positions)
 
-    def advance(self, state, world, t_end):
+    def advance(self, state, world, t_end) -> tuple["State", StepStats]:
         """Integrate from ``state.time`` to exactly ``t_end`` seconds.
 
         Per substep: boundary at t, DFSPH substep, ``world.enforce_bounds``,
@@ -781,7 +785,7 @@ class SphSolver:
                           neighbour_rebuilds=self._pairs.rebuilds - rebuilds_before, **totals)
         return state, stats
 
-    def frame_attributes(self, state, world):
+    def frame_attributes(self, state, world) -> dict:
         """Per-particle ``density`` (kg/m^3, SPH sum at the state's positions) and
         ``pressure`` (Pa, from the last substep; 0 for particles emitted since) for the cache."""
         params = self._params_for(world)

@@ -44,16 +44,16 @@ class State:
     scalars: dict = field(default_factory=dict)
 
     @property
-    def count(self):
+    def count(self) -> int:
         return len(self.ids)
 
 
-def empty_state(time=0.0):
+def empty_state(time=0.0) -> State:
     return State(time=float(time), positions=np.zeros((0, 3)), velocities=np.zeros((0, 3)),
                  ids=np.zeros(0, np.int64))
 
 
-def select(state, keep):
+def select(state, keep) -> State:
     """State with only the particles where ``keep`` (bool mask or index array) holds."""
     return dataclasses.replace(
         state,
@@ -64,7 +64,7 @@ def select(state, keep):
     )
 
 
-def append(state, positions, velocities, fill=None):
+def append(state, positions, velocities, fill=None) -> State:
     """State with new particles appended; they get fresh ids.
 
     ``fill`` maps a particle-array name to the value new particles get there
@@ -91,7 +91,7 @@ def append(state, positions, velocities, fill=None):
     )
 
 
-def state_to_arrays(state):
+def state_to_arrays(state) -> dict:
     """Flat dict of arrays for ``numpy.savez`` (see the module docstring)."""
     out = {
         "time": np.float64(state.time),
@@ -108,7 +108,7 @@ def state_to_arrays(state):
     return out
 
 
-def state_from_arrays(arrays, source="checkpoint"):
+def state_from_arrays(arrays, source="checkpoint") -> State:
     """Inverse of ``state_to_arrays``; ``arrays`` is a mapping such as an NpzFile."""
     try:
         state = State(

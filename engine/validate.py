@@ -360,7 +360,7 @@ def dam_break(progress=None, across=20, slab_layers=4, t_max_scaled=3.45) -> dic
     chunks = int(math.ceil(t_end / sample))
     bounds = (np.asarray(lower), np.asarray(upper))
 
-    def measure(current):
+    def measure(current) -> tuple[float, int, float]:
         x = current.positions
         return (dam_front(x, spacing, 0.0, slab_layers) / a,
                 int(np.sum(np.any((x < bounds[0]) | (x > bounds[1]), axis=1))),
@@ -496,7 +496,7 @@ def sloshing(progress=None, length=0.4, depth=0.2, width_layers=4, spacing=0.01,
     }
 
 
-def impact(progress=None, radius_spacings=14.0, spacing=0.01, speed=2.0, fit_window=(0.08, 0.20), until=0.40):
+def impact(progress=None, radius_spacings=14.0, spacing=0.01, speed=2.0, fit_window=(0.08, 0.20), until=0.40) -> dict:
     """A ball of water striking a rigid wall head-on, against the early-time impact law.
 
     Set-up: a lattice ball of radius R (``radius_spacings`` spacings; R from its volume,
@@ -616,7 +616,7 @@ def _fit_damped_period(times, signal, guess):
     """(period, decay rate) of c + A exp(-lambda t) sin(2 pi t / T + phi) fitted to ``signal``."""
     from scipy.optimize import curve_fit
 
-    def model(t, c, amplitude, decay, period, phase):
+    def model(t, c, amplitude, decay, period, phase) -> np.ndarray:
         return c + amplitude * np.exp(-decay * t) * np.sin(2.0 * np.pi * t / period + phase)
 
     start = [float(np.mean(signal)), float(np.ptp(signal) / 2.0), 0.0, guess, 0.0]

@@ -56,7 +56,7 @@ MAX_VARIANTS = 1000
 # --------------------------------------------------------------------------- planning
 
 
-def parse_vary(text):
+def parse_vary(text) -> tuple[str, list]:
     """'fluid.viscosity=0.01,0.05' -> ('fluid.viscosity', [0.01, 0.05]); UsageError otherwise."""
     key, sep, values = str(text).partition("=")
     key = key.strip()
@@ -82,7 +82,7 @@ def parse_vary(text):
     return key, parsed
 
 
-def set_scene_value(data, key, value):
+def set_scene_value(data, key, value) -> None:
     """Set the dotted ``key`` in a scene dict (in place); named list items are found by their name.
 
     Raises:
@@ -123,19 +123,19 @@ def _value_text(value):
     return value if isinstance(value, str) else json.dumps(value)
 
 
-def variant_name(index, settings):
+def variant_name(index, settings) -> str:
     """Folder name of a variant: 'v03_viscosity-0.05_speed-2' (path-safe, at most 80 characters)."""
     words = [f"{key.split('.')[-1]}-{_value_text(value)}" for key, value in settings.items()]
     text = re.sub(r"[^A-Za-z0-9._-]+", "", "_".join(words))[:72]
     return f"v{index:02d}_{text}" if text else f"v{index:02d}"
 
 
-def label_of(settings):
+def label_of(settings) -> str:
     """Tile label: 'viscosity=0.05 speed=2'."""
     return " ".join(f"{key.split('.')[-1]}={_value_text(value)}" for key, value in settings.items())
 
 
-def plan_variants(scene_file, vary, out_dir, solver_name):
+def plan_variants(scene_file, vary, out_dir, solver_name) -> list[dict]:
     """Write every variant's scene file and return the wedge plan.
 
     Args:
@@ -191,7 +191,7 @@ def plan_variants(scene_file, vary, out_dir, solver_name):
 # --------------------------------------------------------------------------- one variant
 
 
-def variant_progress(cache_dir):
+def variant_progress(cache_dir) -> tuple[int, bool]:
     """(frames listed in the variant's manifest, manifest complete?) or (0, False) when it has none yet.
 
     Read without verifying checksums: for progress reports only (the bake verifies on resume).
@@ -204,7 +204,7 @@ def variant_progress(cache_dir):
         return 0, False
 
 
-def is_variant_complete(cache_dir, first, last):
+def is_variant_complete(cache_dir, first, last) -> bool:
     """True when the cache holds every frame first..last (listed, on disk) and says it is complete."""
     try:
         cache = open_cache(cache_dir)
@@ -215,7 +215,7 @@ def is_variant_complete(cache_dir, first, last):
             and all(cache.frame_path(f).is_file() for f in range(first, last + 1)))  # fmt: skip
 
 
-def bake_variant(job, should_stop=None):
+def bake_variant(job, should_stop=None) -> dict:
     """Bake (or resume, or skip) one variant; returns a plain dict of what happened.
 
     Args:
@@ -268,7 +268,7 @@ def _now():
     return time.strftime("%Y-%m-%dT%H:%M:%S%z")
 
 
-def new_manifest(scene_file, solver_name, model, frames, vary, plan):
+def new_manifest(scene_file, solver_name, model, frames, vary, plan) -> dict:
     from .scene import scene_hash
 
     return {
@@ -287,7 +287,7 @@ def new_manifest(scene_file, solver_name, model, frames, vary, plan):
     }  # fmt: skip
 
 
-def check_same_wedge(out_dir, manifest):
+def check_same_wedge(out_dir, manifest) -> dict | None:
     """Refuse a wedge folder that holds a wedge of another scene, solver, model, frames or values."""
     path = Path(out_dir) / WEDGE_MANIFEST
     if not path.is_file():
@@ -305,12 +305,12 @@ def check_same_wedge(out_dir, manifest):
     return old
 
 
-def write_manifest(out_dir, manifest):
+def write_manifest(out_dir, manifest) -> None:
     manifest["updated"] = _now()
     write_atomic(Path(out_dir) / WEDGE_MANIFEST, (json.dumps(manifest, indent=1) + "\n").encode())
 
 
-def apply_report(entry, report, frames_total):
+def apply_report(entry, report, frames_total) -> None:
     """Fold one bake_variant report into the manifest entry of its variant."""
     done, _ = variant_progress(entry["cache"])
     state = {"skipped": "complete", "complete": "complete", "cancelled": "partial"}.get(report["state"], "failed")
@@ -325,7 +325,7 @@ def apply_report(entry, report, frames_total):
 # --------------------------------------------------------------------------- summary
 
 
-def summary_rows(manifest):
+def summary_rows(manifest) -> list[dict]:
     """One plain dict per variant for the table and --json."""
     rows = []
     for v in manifest["variants"]:
@@ -336,7 +336,7 @@ def summary_rows(manifest):
     return rows
 
 
-def format_table(rows, keys):
+def format_table(rows, keys) -> str:
     """A plain-text table: variant, one column per varied key, state, frames, particles, seconds."""
     header = ["variant"] + [k.split(".")[-1] for k in keys] + ["state", "frames", "particles", "seconds"]
     body = []
@@ -353,7 +353,7 @@ def format_table(rows, keys):
 # --------------------------------------------------------------------------- contact sheet
 
 
-def render_tile(positions, velocities, lower, upper, size=(240, 180), spacing=None):
+def render_tile(positions, velocities, lower, upper, size=(240, 180), spacing=None) -> np.ndarray:
     """Side view (x right, z up) of particles as dots coloured by speed, inside the shot's bounds.
 
     An orthographic projection onto the x-z plane, drawn far to near in y so nearer particles
@@ -397,7 +397,7 @@ def render_tile(positions, velocities, lower, upper, size=(240, 180), spacing=No
     return image
 
 
-def write_contact_sheet(manifest, frame, path, columns=None):
+def write_contact_sheet(manifest, frame, path, columns=None) -> Path:
     """One tile per variant at ``frame`` (a grey tile with 'no frame' where it is missing); returns the path."""
     from .pngplot import _text, png_bytes
 

@@ -66,13 +66,13 @@ ZONE_INTERIOR, ZONE_SURFACE, ZONE_SPRAY = 0, 1, 2
 ATTRIBUTES = ("zone", "trapped_air", "wave_crest", "foam")
 
 
-def clamp_potential(values, low, high):
+def clamp_potential(values, low, high) -> np.ndarray:
     """Phi(I, lo, hi) = (min(I, hi) - min(I, lo)) / (hi - lo): 0 below lo, 1 above hi, linear between."""
     values = np.asarray(values, np.float64)
     return (np.minimum(values, high) - np.minimum(values, low)) / (high - low)
 
 
-def whitewater(positions, velocities, particle_spacing, boundary_positions=None):
+def whitewater(positions, velocities, particle_spacing, boundary_positions=None) -> dict:
     """Zone and white-water potentials of each particle (see the module docstring).
 
     Args:

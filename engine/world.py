@@ -95,7 +95,7 @@ def _polar(matrix3):
     return rotation
 
 
-def interpolate_matrix(matrices, t, fps):
+def interpolate_matrix(matrices, t, fps) -> np.ndarray:
     """World matrix (4, 4) at time t from per-frame matrices (F, 4, 4).
 
     Rotation: polar factor of the element-wise blend of the two frames'
@@ -114,7 +114,7 @@ def interpolate_matrix(matrices, t, fps):
     return out
 
 
-def interpolate_vertices(frames, t, fps):
+def interpolate_vertices(frames, t, fps) -> tuple[np.ndarray, np.ndarray]:
     """Vertices (V, 3) and vertex velocities (V, 3) at time t from (F, V, 3) frames."""
     i0, i1, f = _frame_position(t, fps, len(frames))
     vertices = (1 - f) * frames[i0] + f * frames[i1]
@@ -169,7 +169,7 @@ def _resolve_collider(collider, spacing, support_radius):
     )
 
 
-def collider_vertices_at(collider, t, fps):
+def collider_vertices_at(collider, t, fps) -> tuple[np.ndarray, np.ndarray]:
     """World vertices (V, 3) and vertex velocities (V, 3) of a resolved collider at time t."""
     if collider.motion == "static":
         return collider.rest_vertices, np.zeros_like(collider.rest_vertices)
@@ -182,7 +182,7 @@ def collider_vertices_at(collider, t, fps):
     return vertices, (ahead - vertices) / delta
 
 
-def collider_samples_at(collider, t, fps, support_radius):
+def collider_samples_at(collider, t, fps, support_radius) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """(positions, velocities, normals, volumes) of a resolved collider's boundary particles at t."""
     vertices, vertex_velocities = collider_vertices_at(collider, t, fps)
     positions, normals = evaluate_surface(vertices, collider.triangles, collider.triangle_index, collider.barycentric)
@@ -205,7 +205,7 @@ def _perpendicular_basis(direction):
     return u, np.cross(direction, u)
 
 
-def disc_lattice(center, direction, radius, spacing):
+def disc_lattice(center, direction, radius, spacing) -> np.ndarray:
     """Square-lattice points of spacing ``spacing`` on a disc (centre included), (P, 3)."""
     u, w = _perpendicular_basis(np.asarray(direction, np.float64))
     k = int(np.floor(radius / spacing))
@@ -226,14 +226,14 @@ class _StreamState:
     transforms: np.ndarray = None
 
     @property
-    def key(self):
+    def key(self) -> str:
         return f"emit.{self.name}.layers"
 
     @property
-    def blocked_key(self):
+    def blocked_key(self) -> str:
         return f"emit.{self.name}.blocked"
 
-    def layers_before(self, time):
+    def layers_before(self, time) -> int:
         """Number of layers k >= 0 with start + k * interval < min(time, end)."""
         limit = min(time, self.end)
         if limit <= self.start:
@@ -259,7 +259,7 @@ def _resolve_stream(emitter, scene):
     )
 
 
-def stream_layer(stream, birth, fps):
+def stream_layer(stream, birth, fps) -> tuple[np.ndarray, np.ndarray]:
     """World positions (P, 3) and unit direction (3,) of the layer born at time ``birth``."""
     if stream.transforms is None:
         return stream.points, stream.direction
@@ -297,22 +297,22 @@ class World:
     _cache: dict = field(default_factory=dict, compare=False, repr=False)
 
     @property
-    def fps(self):
+    def fps(self) -> float:
         return self.scene.fps
 
-    def time_of_frame(self, frame):
+    def time_of_frame(self, frame) -> float:
         return self.scene.time_of_frame(frame)
 
     # -- states
 
-    def initial_state(self):
+    def initial_state(self) -> State:
         """State at t = 0 with the fill emitters' particles (ids 0..N-1)."""
         n = len(self.initial_positions)
         return State(time=0.0, positions=self.initial_positions.copy(), velocities=self.initial_velocities.copy(),
                      ids=np.arange(n, dtype=np.int64), next_id=n, removed=0,
                      scalars={s.key: 0.0 for s in self.streams})
 
-    def emit(self, state, t0, t1):
+    def emit(self, state, t0, t1) -> State:
         """State with the stream layers born in [t0, t1), placed as at t1, where there is room.
 
         Layers born before t0 that were not emitted yet (by the counter in
@@ -356,7 +356,7 @@ class World:
         weights[found] = kernel(distances[found], self.support_radius) * volumes[index[found]]
         return weights.sum(axis=1)
 
-    def free_space(self, points, liquid, t):
+    def free_space(self, points, liquid, t) -> np.ndarray:
         """(P,) bool: where a new particle may be placed at time t (see ``emit``)."""
         spacing = self.particle_spacing
         free = np.all((points > self.lower) & (points < self.upper), axis=1)
@@ -385,11 +385,11 @@ class World:
         return free
 
     @property
-    def energy_datum(self):
+    def energy_datum(self) -> tuple[np.ndarray, float]:
         """Height datum of the energy audit: the lowest bounds corner (``engine.energy.height_datum``)."""
         return energy.height_datum(self.gravity, self.lower, self.upper)
 
-    def stream_sources(self):
+    def stream_sources(self) -> list[tuple[np.ndarray, float]]:
         """[(points (P, 3), speed)]: every stream's layer points, at every position its motion takes."""
         out = []
         for stream in self.streams:
@@ -401,7 +401,7 @@ class World:
 
     # -- boundary
 
-    def boundary_at(self, t):
+    def boundary_at(self, t) -> BoundaryParticles:
         """Boundary particles of the walls and colliders at time t (cached for the last t)."""
         t = float(t)
         cached = self._cache.get("boundary")
@@ -426,7 +426,7 @@ class World:
         return boundary
 
     @property
-    def boundary_segments(self):
+    def boundary_segments(self) -> tuple[tuple[str, int, int], ...]:
         """((name, start, stop), ...): which rows of ``boundary_at(t)`` belong to which object.
 
         "bounds" (the walls) first, then the colliders in scene order; the
@@ -438,13 +438,13 @@ class World:
             start += len(collider.triangle_index)
         return tuple(segments)
 
-    def collider_triangles_at(self, t):
+    def collider_triangles_at(self, t) -> list[tuple[str, np.ndarray]]:
         """[(name, (T, 3, 3) world-space triangles)] of every collider at time t."""
         return [(c.name, triangle_corners(collider_vertices_at(c, t, self.fps)[0], c.triangles)) for c in self.colliders]
 
     # -- constraints
 
-    def enforce_bounds(self, state, previous=None):
+    def enforce_bounds(self, state, previous=None) -> State:
         """Apply the hard constraints at ``state.time``; returns a new State.
 
         ``previous``: optional (N, 3) positions of the same particles before the step that
@@ -565,7 +565,7 @@ class World:
 
     # -- estimate
 
-    def estimate_particles(self):
+    def estimate_particles(self) -> dict:
         """Exact particle counts: {"initial", "emitted", "total", "per_emitter": {name: count}}.
 
         ``total`` is initial + everything the streams emit in their windows
@@ -584,7 +584,7 @@ class World:
 # --------------------------------------------------------------------------- building
 
 
-def build_world(scene, contact_margin=None):
+def build_world(scene, contact_margin=None) -> World:
     """Resolve a Scene into a World (sampling fills, streams, walls and colliders once).
 
     Args:

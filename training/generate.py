@@ -46,7 +46,7 @@ from . import scenes
 DATA_FORMAT = "splashdraft-training-data"
 
 
-def shot_plan(heldout, count, frame_step=scenes.TARGET_STEP_FROUDE):
+def shot_plan(heldout, count, frame_step=scenes.TARGET_STEP_FROUDE) -> list[tuple[str, list]]:
     """[(name, spec)] of the shots to generate; ``make_scene(spec, frame_step)`` builds each scene dict.
 
     A spec is plain data (``["heldout", kind]`` or ``["train", index]``) so that it can travel to a worker.
@@ -56,7 +56,7 @@ def shot_plan(heldout, count, frame_step=scenes.TARGET_STEP_FROUDE):
     return [(f"shot_{i:04d}", ["train", i]) for i in range(count)]
 
 
-def make_scene(spec, frame_step=scenes.TARGET_STEP_FROUDE, duration=None):
+def make_scene(spec, frame_step=scenes.TARGET_STEP_FROUDE, duration=None) -> dict:
     """The scene dict of a shot spec from ``shot_plan`` (``duration`` in s overrides its length)."""
     kind, value = spec
     if kind == "heldout":
@@ -116,7 +116,7 @@ def _write_manifest(out, kind, shots, seed, frame_step=scenes.TARGET_STEP_FROUDE
     write_atomic(out / "data_manifest.json", (json.dumps(manifest, indent=1) + "\n").encode())
 
 
-def generate_shot(job):
+def generate_shot(job) -> dict:
     """Bake (or resume, or skip) one shot; returns {"summary": ..., "message": ...}.
 
     Args:
@@ -143,7 +143,7 @@ def generate_shot(job):
 
 
 def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=print,
-             frame_step=scenes.TARGET_STEP_FROUDE, scheduler=None, workers=None):
+             frame_step=scenes.TARGET_STEP_FROUDE, scheduler=None, workers=None) -> list[dict]:
     """Generate (or finish) the shots; returns the list of shot summaries.
 
     ``frame_step`` (sqrt(d/g)) sets the training shots' fps; held-out shots keep the default.
@@ -174,7 +174,7 @@ def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=prin
             if number % total == index]  # fmt: skip
     kind, seed = ("heldout", scenes.HELDOUT_SEED) if heldout else ("train", scenes.TRAIN_SEED)
 
-    def record(job, result):
+    def record(job, result) -> None:
         summaries[job["name"]] = result["summary"]
         log(result["message"])
         # Re-read so concurrent shards do not drop each other's entries.
@@ -198,7 +198,7 @@ def generate(out, count=24, heldout=False, shard=(0, 1), duration=None, log=prin
     return [summaries[k] for k in sorted(summaries)]
 
 
-def main(argv=None):
+def main(argv=None) -> int:
     parser = argparse.ArgumentParser(
         prog="python -m training.generate",
         description="Bake procedural training shots (or the held-out shots) with the reference solver.",

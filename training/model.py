@@ -56,7 +56,7 @@ class Round(nn.Module):
         self.norm = nn.LayerNorm(latent)
 
     def forward(self, h, neighbour_index, neighbour_mask, edge_features, boundary_rows, boundary_slot,
-                boundary_features, boundary_mask):
+                boundary_features, boundary_mask) -> torch.Tensor:
         pre = self.receiver(h).unsqueeze(1) + self.sender(h)[neighbour_index] + self.edge(edge_features)
         summed = (torch.relu(pre) * neighbour_mask.unsqueeze(-1)).sum(dim=1) * NEIGHBOUR_SCALE
         degree = neighbour_mask.sum(dim=1, keepdim=True) * NEIGHBOUR_SCALE
@@ -84,7 +84,7 @@ class GraphCore(nn.Module):
         self.decoder = _mlp(latent, latent, 3)
 
     def forward(self, node_features, neighbour_index, neighbour_mask, edge_features, boundary_rows, boundary_slot,
-                boundary_features, boundary_mask):
+                boundary_features, boundary_mask) -> torch.Tensor:
         h = self.encoder_norm(self.encoder(node_features))
         for block in self.blocks:
             h = block(h, neighbour_index, neighbour_mask, edge_features, boundary_rows, boundary_slot,
@@ -96,12 +96,12 @@ INPUT_ORDER = ("node_features", "neighbour_index", "neighbour_mask", "edge_featu
                "boundary_slot", "boundary_features", "boundary_mask")
 
 
-def as_tensors(inputs):
+def as_tensors(inputs) -> tuple[torch.Tensor, ...]:
     """dict of numpy core inputs -> tuple of tensors in ONNX input order."""
     return tuple(torch.from_numpy(inputs[name]) for name in INPUT_ORDER)
 
 
-def export_onnx(model, path, example_inputs, opset=17):
+def export_onnx(model, path, example_inputs, opset=17) -> None:
     """Export ``model`` to ONNX with dynamic N, K, Nb, Kb (legacy TorchScript exporter, no scatter ops).
 
     Args:

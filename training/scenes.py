@@ -32,7 +32,7 @@ TRAIN_SEED = 20240611
 HELDOUT_SEED = 77001
 
 
-def frame_rate_for_step(spacing=TRAINING_SPACING, step_froude=TARGET_STEP_FROUDE, gravity=GRAVITY):
+def frame_rate_for_step(spacing=TRAINING_SPACING, step_froude=TARGET_STEP_FROUDE, gravity=GRAVITY) -> tuple[int, float]:
     """Integer fps closest to one frame per ``step_froude`` sqrt(d/g), and the exact frame interval it gives."""
     tau = math.sqrt(spacing / gravity)
     fps = max(1, int(round(1.0 / (step_froude * tau))))
@@ -73,7 +73,7 @@ FAMILIES = ("mixed", "throw", "tall_column", "container", "pusher")
 
 
 def training_scene(index, seed=TRAIN_SEED, spacing=TRAINING_SPACING, duration_s=2.0, max_particles=4500,
-                   frame_step=TARGET_STEP_FROUDE):
+                   frame_step=TARGET_STEP_FROUDE) -> dict:
     """Scene dict of training shot ``index`` (inline meshes; see the module docstring and ``FAMILIES``).
 
     ``frame_step`` (sqrt(d/g)) sets the fps only; the shot's content does not depend on it.
@@ -101,7 +101,7 @@ def _thin_box(lower, upper, wall):
     keep_inner = [tri[::-1] + len(ov) for tri in it if not all(abs(iv[v][2] - hi[2]) <= tol for v in tri)]
     centre = np.array([(lo[0] + hi[0]) / 2, (lo[1] + hi[1]) / 2])
 
-    def ring(ids):
+    def ring(ids) -> list[int]:
         return sorted(ids, key=lambda k: math.atan2(vertices[k][1] - centre[1], vertices[k][0] - centre[0]))
 
     outer_ring, inner_ring = ring(top_outer), ring(top_inner)
@@ -288,7 +288,7 @@ def _mixed_scene(index, rng, seed, spacing, duration_s, max_particles, frame_ste
 HELDOUT_KINDS = ("ring", "stairs", "paddle")
 
 
-def heldout_scene(kind, seed=HELDOUT_SEED, spacing=TRAINING_SPACING, duration_s=10.0):
+def heldout_scene(kind, seed=HELDOUT_SEED, spacing=TRAINING_SPACING, duration_s=10.0) -> dict:
     """Held-out shot dict: ``ring`` (torus obstacle), ``stairs`` (a staircase), ``paddle`` (moving rigid collider)."""
     rng = np.random.default_rng([seed, HELDOUT_KINDS.index(kind)])
     d = spacing

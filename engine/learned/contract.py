@@ -73,7 +73,7 @@ UNITS = {
 RETRAIN_HINT = "retrain and export it with `python -m training.train` (see models/README or the model card)"
 
 
-def sha256_file(path):
+def sha256_file(path) -> str:
     digest = hashlib.sha256()
     with open(path, "rb") as handle:
         for block in iter(lambda: handle.read(1 << 20), b""):
@@ -83,7 +83,7 @@ def sha256_file(path):
 
 def make_contract(name, onnx_path, normalisation, radius_spacings, step_froude, rounds, training=None,
                   density_support_spacings=2.0, max_neighbours=48, max_boundary_neighbours=32, architecture=None,
-                  step_froude_min=None):
+                  step_froude_min=None) -> dict:
     """A contract dict for an exported ONNX file (the sha256 is computed here)."""
     stats = {key: [float(x) for x in np.asarray(normalisation[key]).reshape(-1)] for key in _STAT_SIZES}
     return {
@@ -110,17 +110,17 @@ def make_contract(name, onnx_path, normalisation, radius_spacings, step_froude, 
     }
 
 
-def write_contract(path, contract):
+def write_contract(path, contract) -> None:
     Path(path).write_text(json.dumps(contract, indent=1) + "\n", encoding="utf-8")
 
 
-def contract_path_for(model_path):
+def contract_path_for(model_path) -> Path:
     """The contract JSON beside a model: ``x.onnx`` -> ``x.json``; a ``.json`` path is returned as is."""
     path = Path(model_path)
     return path if path.suffix == ".json" else path.with_suffix(".json")
 
 
-def load_contract(model_path):
+def load_contract(model_path) -> tuple[dict, Path]:
     """Read and check the contract of ``model_path`` (the .onnx or its .json).
 
     Returns:
@@ -212,7 +212,7 @@ def load_contract(model_path):
     return contract, onnx_path
 
 
-def check_folder(folder):
+def check_folder(folder) -> tuple[list[tuple[dict, Path]], list[str]]:
     """Check every contract (``*.json``) in ``folder``.
 
     Returns:
@@ -228,7 +228,7 @@ def check_folder(folder):
     return models, reasons
 
 
-def find_model(path):
+def find_model(path) -> Path:
     """The .onnx model a ``--model`` argument names: a model folder, an .onnx file or its .json contract.
 
     A folder must hold exactly one contract (``*.json`` with format ``splashdraft-model-contract``)
@@ -259,7 +259,7 @@ def find_model(path):
     return load_contract(path)[1]
 
 
-def shipped_models_dir():
+def shipped_models_dir() -> Path:
     """The folder of the shipped models.
 
     In a checkout or the Blender extension it is ``models/`` beside ``engine/`` (so a working copy
@@ -278,6 +278,6 @@ def shipped_models_dir():
         return beside
 
 
-def default_model_path():
+def default_model_path() -> Path:
     """Path of the shipped model's .onnx file (``shipped_models_dir() / "preview-gn4.onnx"``)."""
     return shipped_models_dir() / f"{DEFAULT_MODEL_NAME}.onnx"

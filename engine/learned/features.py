@@ -63,7 +63,7 @@ EDGE_FEATURE_NAMES = ("dx", "dy", "dz", "distance", "dvx", "dvy", "dvz")
 BOUNDARY_FEATURE_NAMES = ("dx", "dy", "dz", "distance", "nx", "ny", "nz", "dvx", "dvy", "dvz", "volume")
 
 
-def gravity_rotation(gravity):
+def gravity_rotation(gravity) -> tuple[np.ndarray, float]:
     """Rotation matrix (3, 3) taking world vectors into the frame where gravity is along -z.
 
     Args:
@@ -98,15 +98,15 @@ class Units:
         self.time = float(np.sqrt(self.spacing / self.g))  # tau, s
         self.velocity = float(np.sqrt(self.g * self.spacing))  # sqrt(g d), m/s
 
-    def to_model_vectors(self, vectors):
+    def to_model_vectors(self, vectors) -> np.ndarray:
         """World vectors (..., 3) -> gravity frame (no scaling)."""
         return np.asarray(vectors) @ self.rotation.T
 
-    def to_world_vectors(self, vectors):
+    def to_world_vectors(self, vectors) -> np.ndarray:
         return np.asarray(vectors) @ self.rotation
 
 
-def neighbour_pairs(positions, radius, tree=None, max_neighbours=None):
+def neighbour_pairs(positions, radius, tree=None, max_neighbours=None) -> tuple[np.ndarray, np.ndarray]:
     """Every pair of points closer than ``radius``, each once: (first, second) int64 arrays with first < second.
 
     Args:
@@ -153,7 +153,7 @@ def _most_in_one_cell(positions, size):
     return int(np.unique(key, return_counts=True)[1].max())
 
 
-def fluid_neighbour_table(positions, radius, max_neighbours=48, pairs=None):
+def fluid_neighbour_table(positions, radius, max_neighbours=48, pairs=None) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """Dense padded table of fluid neighbours within ``radius`` (self excluded).
 
     Args:
@@ -176,7 +176,7 @@ def fluid_neighbour_table(positions, radius, max_neighbours=48, pairs=None):
     return pair_table(first, second, len(positions), distance, max_neighbours)
 
 
-def pair_table(first, second, count, distance=None, max_neighbours=None):
+def pair_table(first, second, count, distance=None, max_neighbours=None) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """Pack a pair list into a dense padded table with each pair in both of its rows.
 
     Args:
@@ -224,7 +224,7 @@ def pair_table(first, second, count, distance=None, max_neighbours=None):
     return index, mask, distances, truncated
 
 
-def symmetric_table(neighbour_index, neighbour_mask):
+def symmetric_table(neighbour_index, neighbour_mask) -> tuple[np.ndarray, np.ndarray]:
     """A table with each pair of ``neighbour_index`` in both of its rows: (index, mask).
 
     For a table whose capped rows dropped some neighbours (``fluid_neighbour_table``), the pairs
@@ -239,7 +239,7 @@ def symmetric_table(neighbour_index, neighbour_mask):
     return index, mask
 
 
-def boundary_neighbour_rows(positions, boundary_positions, radius, max_neighbours=32, tree=None, boundary_tree=None):
+def boundary_neighbour_rows(positions, boundary_positions, radius, max_neighbours=32, tree=None, boundary_tree=None) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Boundary neighbours within ``radius`` for the particles that have any, nearest first.
 
     Args:
@@ -276,7 +276,7 @@ def boundary_neighbour_rows(positions, boundary_positions, radius, max_neighbour
     return rows.astype(np.int64), index, mask, distances
 
 
-def boundary_neighbour_table(positions, boundary_positions, radius, max_neighbours=32, tree=None):
+def boundary_neighbour_table(positions, boundary_positions, radius, max_neighbours=32, tree=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Nearest boundary particles within ``radius``: index (N, Kb) int64, mask (N, Kb) float32, distances.
 
     The every-row form of ``boundary_neighbour_rows``: padding entries have index 0 and mask 0
@@ -293,7 +293,7 @@ def boundary_neighbour_table(positions, boundary_positions, radius, max_neighbou
 
 
 def density_ratio(fluid_distances, fluid_mask, boundary_distances, boundary_mask, boundary_volumes_per_d3, support,
-                  boundary_rows=None):
+                  boundary_rows=None) -> np.ndarray:
     """SPH density / rho0 from neighbour tables, in spacing units.
 
     rho_i / rho0 = sum_j W(r_ij) + W(0) + sum_b (V_b / d^3) W(r_ib), with
@@ -351,7 +351,7 @@ class Graph:
         for name in self.__slots__:
             setattr(self, name, values[name])
 
-    def inputs(self):
+    def inputs(self) -> dict:
         """The raw (unnormalised) core inputs as a dict keyed by ONNX input name."""
         return {
             "node_features": self.node_features,
@@ -365,7 +365,7 @@ class Graph:
         }
 
 
-def compact_boundary_rows(rows, count):
+def compact_boundary_rows(rows, count) -> tuple[np.ndarray, np.ndarray]:
     """(rows, slot) of the compact boundary layout for ``count`` particles.
 
     rows: (Nb,) int64 particles with a boundary neighbour (``boundary_neighbour_rows``); when
@@ -384,7 +384,7 @@ def compact_boundary_rows(rows, count):
 
 def build_graph(positions, velocities, previous_velocities, boundary, units, radius_spacings,
                 density_support_spacings=2.0, max_neighbours=48, max_boundary_neighbours=32, boundary_tree=None,
-                *, step_froude):
+                *, step_froude) -> Graph:
     """Build the core's inputs from world-space arrays (see the module docstring).
 
     Args:
@@ -468,7 +468,7 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
                  truncated_rows=truncated)
 
 
-def normalise(graph, stats, in_place=False):
+def normalise(graph, stats, in_place=False) -> dict:
     """Core inputs normalised with the contract's statistics: (value - mean) / std per feature column.
 
     Padding entries stay exactly zero (the mask multiplies them out), so the
@@ -485,7 +485,7 @@ def normalise(graph, stats, in_place=False):
     Returns:
         dict of float32 / int64 arrays keyed by ONNX input name.
     """
-    def scaled(values, mean, std, mask=None):
+    def scaled(values, mean, std, mask=None) -> np.ndarray:
         if in_place and values.dtype == np.float32:
             out = values
             out -= np.asarray(mean, np.float32)
@@ -509,7 +509,7 @@ def normalise(graph, stats, in_place=False):
     }
 
 
-def acceleration_from_output(output, stats, units):
+def acceleration_from_output(output, stats, units) -> np.ndarray:
     """World-space acceleration (N, 3) m/s^2 from the core's normalised output (N, 3).
 
     a = gravity + g * R^T (output * target_std + target_mean), i.e. the core
@@ -520,17 +520,17 @@ def acceleration_from_output(output, stats, units):
     return units.g * units.to_world_vectors(gravity_frame)
 
 
-def target_from_accelerations(accelerations, units):
+def target_from_accelerations(accelerations, units) -> np.ndarray:
     """Inverse of ``acceleration_from_output`` before normalisation: (a - gravity) / g in the gravity frame."""
     return units.to_model_vectors(np.asarray(accelerations, np.float64)) / units.g - np.array([0.0, 0.0, -1.0])
 
 
-def integrate(positions, velocities, accelerations, time_step):
+def integrate(positions, velocities, accelerations, time_step) -> tuple[np.ndarray, np.ndarray]:
     """Semi-implicit Euler: v' = v + dt a, x' = x + dt v'. Shapes (N, 3); SI units. Returns (x', v')."""
     new_velocities = np.asarray(velocities, np.float64) + time_step * np.asarray(accelerations, np.float64)
     return np.asarray(positions, np.float64) + time_step * new_velocities, new_velocities
 
 
-def finite_difference_accelerations(previous_positions, positions, next_positions, time_step):
+def finite_difference_accelerations(previous_positions, positions, next_positions, time_step) -> np.ndarray:
     """Accelerations consistent with ``integrate``: (x_{t+1} - 2 x_t + x_{t-1}) / dt^2, (N, 3)."""
     return (np.asarray(next_positions) - 2.0 * np.asarray(positions) + np.asarray(previous_positions)) / time_step**2

@@ -39,7 +39,7 @@ DEFAULT_EPSILON = 1e-3
 
 def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions=None,
                   boundary_volumes=None, boundary_index=None, boundary_mask=None, iterations=2,
-                  support=2.0, epsilon=DEFAULT_EPSILON, boundary_rows=None):
+                  support=2.0, epsilon=DEFAULT_EPSILON, boundary_rows=None) -> np.ndarray:
     """Move particles to reduce SPH over-density (see the module docstring).
 
     Args:
@@ -84,11 +84,11 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
         bvol = np.asarray(boundary_volumes, np.float64)[bcols].astype(np.float32)
     w0 = float(kernel(0.0, support))
 
-    def row_sums(weights, columns):
+    def row_sums(weights, columns) -> np.ndarray:
         """(N, 3) float64: sum over each row of weights * columns[c], for c = 0, 1, 2."""
         return np.stack([np.einsum("nk,nk->n", weights, column) for column in columns], axis=1).astype(np.float64)
 
-    def boundary_sum3(scale, offsets):
+    def boundary_sum3(scale, offsets) -> np.ndarray:
         return np.stack([np.bincount(brows, scale * offsets[:, c], minlength=n) for c in range(3)], axis=1)
 
     for _ in range(int(iterations)):

@@ -17,11 +17,15 @@ provide. So the tiled result equals the untiled one up to float rounding
 """
 
 import os
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from ..errors import ModelError
 from .contract import INPUT_SPECS, OUTPUT_SPECS, RETRAIN_HINT
+
+if TYPE_CHECKING:
+    import onnxruntime
 
 #: Padded neighbour slots (particles x table width) the core runs on in one call: graphs up to
 #: this size run whole (fastest: no halo work). At 2M (50k particles, 36 wide) a learned step
@@ -39,7 +43,7 @@ DEFAULT_TILE_PARTICLES = None
 UNTILED_MAX_PARTICLES = 25000
 
 
-def make_session(onnx_path, threads=2):
+def make_session(onnx_path, threads=2) -> "onnxruntime.InferenceSession":
     """An onnxruntime InferenceSession for the CPU; ModelError if the file is not a loadable model.
 
     onnxruntime 1.32 writes a device id and a telemetry database under ``~/.cache/Microsoft`` when
@@ -73,7 +77,7 @@ def make_session(onnx_path, threads=2):
     return session
 
 
-def morton_order(points, cell):
+def morton_order(points, cell) -> np.ndarray:
     """Permutation sorting points by the Morton (Z-order) code of their cell of size ``cell``."""
     points = np.asarray(points, np.float64)
     if len(points) == 0:
@@ -87,7 +91,7 @@ def morton_order(points, cell):
     return np.argsort(code, kind="stable")
 
 
-def halo_nodes(receivers, neighbour_index, rounds):
+def halo_nodes(receivers, neighbour_index, rounds) -> np.ndarray:
     """Node list for one tile: the receivers first, then their <= ``rounds``-hop neighbours (sorted)."""
     inside = np.zeros(len(neighbour_index), bool)
     inside[receivers] = True
@@ -105,7 +109,7 @@ def halo_nodes(receivers, neighbour_index, rounds):
     return np.concatenate([receivers, halo[~is_receiver[halo]]])
 
 
-def subgraph(inputs, nodes):
+def subgraph(inputs, nodes) -> dict:
     """The core inputs restricted to ``nodes`` (indices into the full graph), neighbours re-indexed.
 
     Neighbours outside ``nodes`` are masked out (they can only belong to the
@@ -144,7 +148,7 @@ def subgraph(inputs, nodes):
     }
 
 
-def random_inputs(particles, neighbours, boundary_neighbours, seed=0, boundary_fraction=0.25):
+def random_inputs(particles, neighbours, boundary_neighbours, seed=0, boundary_fraction=0.25) -> dict:
     """Core inputs of the contract's shapes on a random graph (for ``CoreRunner.warm_up``).
 
     The first ``boundary_fraction`` of the particles have boundary neighbours.
@@ -193,7 +197,7 @@ class CoreRunner:
         self.tile_receiver_slots = int(tile_receiver_slots)
         self.session = make_session(onnx_path, threads)
 
-    def warm_up(self, particles=2000, neighbours=30, boundary_neighbours=8, seed=0):
+    def warm_up(self, particles=2000, neighbours=30, boundary_neighbours=8, seed=0) -> None:
         """Run the session twice on a random graph of the given size (first calls are slow)."""
         for _ in range(2):
             self._run(random_inputs(particles, neighbours, boundary_neighbours, seed))
@@ -201,7 +205,7 @@ class CoreRunner:
     def _run(self, inputs):
         return self.session.run(None, inputs)[0]
 
-    def tile_size(self, particles, width):
+    def tile_size(self, particles, width) -> int:
         """Receivers per call for a graph of ``particles`` rows ``width`` wide (``particles``: untiled)."""
         if self.tile_particles is not None:
             is_whole = self.tile_particles <= 0 or particles <= self.untiled_max
@@ -212,7 +216,7 @@ class CoreRunner:
         tiles = -(-slots // self.tile_receiver_slots)
         return -(-particles // tiles)
 
-    def run(self, inputs, positions=None, cell=None):
+    def run(self, inputs, positions=None, cell=None) -> np.ndarray:
         """Normalised core output (N, 3) float32 for normalised ``inputs``.
 
         ``positions`` (N, 3) and ``cell`` (same unit) order the tiles

@@ -43,6 +43,7 @@ import math
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy.spatial import cKDTree
@@ -54,13 +55,16 @@ from .relax import relax_density
 from .viscosity import reference_substeps, smooth_velocities, smoothing_plan
 from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
 
+if TYPE_CHECKING:
+    from ..state import State
+
 PREVIOUS_VELOCITY = "learned_previous_velocity"
 
 #: Density relaxation iterations after each learned step (bench/eval_learned.py, model card).
 DEFAULT_RELAX_ITERATIONS = 5
 
 
-def step_plan(interval, step_max):
+def step_plan(interval, step_max) -> tuple[int, float]:
     """(n, dt) for a frame interval (s): n = ceil(interval / step_max) equal steps, dt = interval / n; (0, 0) if none."""
     if not interval > 0:
         return 0, 0.0
@@ -127,7 +131,7 @@ class LearnedSolver:
 
     # -- protocol
 
-    def settings(self):
+    def settings(self) -> dict:
         c = self.contract
         return {
             "method": "message-passing graph network preview (own design), onnxruntime CPU",
@@ -146,7 +150,7 @@ class LearnedSolver:
             "pressure": "equation-of-state estimate c^2 max(rho - rho0, 0), c = 10 sqrt(g * bounds height); not solved",
         }
 
-    def range_warnings(self, world):
+    def range_warnings(self, world) -> list[str]:
         """Named warnings for inputs outside what the model was trained on (empty when none).
 
         The network does not take the viscosity as an input: it moves like the reference bakes it
@@ -180,13 +184,13 @@ class LearnedSolver:
                 "lower the frame rate, or bake with --solver sph")
         return warnings
 
-    def start(self, world):
+    def start(self, world) -> "State":
         state = world.initial_state()
         arrays = dict(state.particle_arrays)
         arrays[PREVIOUS_VELOCITY] = state.velocities.copy()
         return dataclasses.replace(state, particle_arrays=arrays)
 
-    def step_acceleration(self, state, world, units, time_step, timings=None):
+    def step_acceleration(self, state, world, units, time_step, timings=None) -> tuple[np.ndarray, features.Graph]:
         """World-space accelerations (N, 3) m/s^2 the model predicts for ``state`` and a step of
         ``time_step`` s; also returns the Graph. Adds the seconds spent on the graph
         ("neighbours": search and features) and on the core ("network") to ``timings``."""
@@ -219,7 +223,7 @@ class LearnedSolver:
             timings["network"] += time.perf_counter() - built
         return features.acceleration_from_output(output, self.stats, units), graph
 
-    def advance(self, state, world, t_end):
+    def advance(self, state, world, t_end) -> tuple["State", LearnedStepStats]:
         """Learned steps from ``state.time`` to exactly ``t_end`` (see the module docstring).
 
         Raises:
@@ -289,17 +293,17 @@ class LearnedSolver:
                                  steps_below_range=count if dt < (1 - 1e-9) * step_min else 0)
         return state, stats
 
-    def step_plan(self, interval, units):
+    def step_plan(self, interval, units) -> tuple[int, float]:
         """(n, dt): n = ceil(interval / step_max) equal learned steps of dt s (see the module docstring)."""
         return step_plan(interval, self.contract["step_froude"] * units.time)
 
-    def trained_viscosity_range(self):
+    def trained_viscosity_range(self) -> tuple[float, float]:
         """(low, high) ``fluid.viscosity`` of the model's training bakes (contract record; models
         without it were trained at the scene default 0.02)."""
         low, high = self.contract.get("training", {}).get("viscosity_range") or (0.02, 0.02)
         return float(low), float(high)
 
-    def smooth(self, positions, velocities, graph, world, boundary, step, epsilon):
+    def smooth(self, positions, velocities, graph, world, boundary, step, epsilon) -> np.ndarray:
         """``velocities`` after the XSPH smoothing of ``epsilon`` over a learned step (``viscosity``),
         fluid pairs and the step's boundary particles (no-slip, as in the reference)."""
         solver = world.solver_settings
@@ -315,7 +319,7 @@ class LearnedSolver:
                                  graph.neighbour_mask, coefficient, passes,
                                  support=self.contract["density_support_spacings"], wall=wall)
 
-    def relax(self, positions, graph, boundary, units):
+    def relax(self, positions, graph, boundary, units) -> np.ndarray:
         """``positions`` (N, 3) m after ``relax_iterations`` density iterations on ``graph``'s tables.
 
         The tables were found at the start of the step; pairs that came within
@@ -335,7 +339,7 @@ class LearnedSolver:
                                 boundary_rows=graph.boundary_rows)
         return relaxed * d
 
-    def frame_attributes(self, state, world):
+    def frame_attributes(self, state, world) -> dict:
         """``density`` (kg/m^3, SPH estimate) and ``pressure`` (Pa, equation-of-state estimate) per particle."""
         from ..measures import sph_density
 

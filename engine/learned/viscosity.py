@@ -33,14 +33,14 @@ from ..particle_model import cfl_step
 APPLICATIONS = 2
 
 
-def reference_substeps(velocities, step, spacing, cfl_factor, max_time_step):
+def reference_substeps(velocities, step, spacing, cfl_factor, max_time_step) -> int:
     """About how many reference substeps a learned step of ``step`` seconds spans (>= 1)."""
     speed = float(np.sqrt(np.max(np.einsum("ij,ij->i", velocities, velocities)))) if len(velocities) else 0.0
     reference_step = cfl_step(speed, spacing, cfl_factor, max_time_step)
     return max(1, math.ceil(step / reference_step - 1e-9))
 
 
-def smoothing_plan(epsilon, substeps, applications=APPLICATIONS):
+def smoothing_plan(epsilon, substeps, applications=APPLICATIONS) -> tuple[float, int]:
     """(coefficient, passes): ``passes`` = min(applications, substeps) XSPH passes whose per-pass
     coefficient stands for ``substeps`` passes of ``epsilon`` (module docstring); (0, 0) for none."""
     if epsilon <= 0.0:
@@ -50,7 +50,7 @@ def smoothing_plan(epsilon, substeps, applications=APPLICATIONS):
 
 
 def smooth_velocities(positions, velocities, neighbour_index, neighbour_mask, epsilon, passes, support=2.0,
-                      wall=None):
+                      wall=None) -> np.ndarray:
     """``velocities`` (N, 3) after ``passes`` XSPH passes of coefficient ``epsilon`` (module docstring).
 
     Args:
