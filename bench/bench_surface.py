@@ -1,11 +1,15 @@
 """Benchmark of the liquid surface (the add-on's Geometry Nodes surface) at splash-frame sizes.
 
-Usage:  .venv/bin/python -m bench.bench_surface [--points 100000] [--repeats 5]
+Usage:  .venv/bin/python -m bench.bench_surface [--points 100000] [--repeats 5] [--compare detail=0.6]
 
 Target (Blender 5.0, bpy module, 2 cores): building the joined surface of one
 100k-particle frame <= 0.3 s (wall time; CPU seconds of the process are printed beside it,
-steadier on a shared machine). ``--compare-detail 0.6`` also times the same frames with
-another voxel size, alternating, for a ratio measured in the same run. The frame is made up here: a resting pool (a
+steadier on a shared machine). ``--compare detail=0.6,smoothing=2`` also times the same frames
+with other settings (``reach``, ``detail``, ``smoothing`` in spacings, as ``surface_inputs`` takes
+them; ``meshing=resample`` meshes the way the graph did before 2026-12-05: Volume to Mesh resampling
+the volume at the voxel size instead of using its grid), alternating frame by frame, for ratios
+measured in the same run; ``--compare-detail 0.6`` is short for ``--compare detail=0.6``. The frame is
+made up here: a resting pool (a
 jittered lattice slab), a one-particle-thick curved sheet rising from it and a
 cloud of droplets (70 / 20 / 10 % of the points), at 1 cm spacing. Each repeat
 moves every particle a little (a new frame: nothing is reused from the last
@@ -15,6 +19,7 @@ Prints a table and writes bench/results/surface.json.
 """
 
 import argparse
+import os
 import platform
 import sys
 import time
@@ -48,11 +53,38 @@ def splash_frame(points, spacing, rng):
     return np.concatenate([pool, sheet, drops])
 
 
-def child_surface(points, repeats, compare_detail="0"):
+def parse_compare(text):
+    """``"detail=0.6,meshing=resample"`` -> ({"detail": 0.6}, "resample"); raises ValueError naming the bad item."""
+    settings, meshing = {}, "grid"
+    for item in filter(None, text.split(",")):
+        key, _, value = item.partition("=")
+        key, value = key.strip(), value.strip()
+        if key == "meshing" and value in ("grid", "resample"):
+            meshing = value
+        elif key in ("reach", "detail", "smoothing") and value:
+            settings[key] = int(value) if key == "smoothing" else float(value)
+        else:
+            raise ValueError(f"--compare: cannot read {item!r}; use reach=, detail=, smoothing= (spacings, "
+                             f"passes) or meshing=grid|resample, separated by commas")
+    return settings, meshing
+
+
+def resampling_copy(display, group):
+    """A copy of the surface group whose Volume to Mesh resamples the volume at the voxel size."""
+    old = group.copy()
+    to_mesh = next(node for node in old.nodes if node.bl_idname == "GeometryNodeVolumeToMesh")
+    display._set_resolution_mode(to_mesh, "VOXEL_SIZE")
+    source = next(node for node in old.nodes if node.bl_idname == "NodeGroupInput")
+    old.links.new(source.outputs["Voxel Size"], to_mesh.inputs["Voxel Size"])
+    return old
+
+
+def child_surface(points, repeats, compare=""):
     import bpy
     import numpy as np
 
-    points, repeats, compare_detail = int(points), int(repeats), float(compare_detail)
+    points, repeats = int(points), int(repeats)
+    settings, meshing = parse_compare(compare)
     blender_env.reset_scene()
     module = blender_env.enable_from_source()
     display = sys.modules[module + ".addon.display"]
@@ -60,16 +92,17 @@ def child_surface(points, repeats, compare_detail="0"):
     rng = np.random.default_rng(0)
     group = display.surface_group(display.liquid_material())
     objects = {}
-    for label, inputs in (("default", display.surface_inputs(spacing)),
-                          ("compare", display.surface_inputs(spacing, detail=compare_detail))):
-        if label == "compare" and not compare_detail:
-            continue
+    configurations = [("default", group, display.surface_inputs(spacing))]
+    if compare:
+        configurations.append(("compare", resampling_copy(display, group) if meshing == "resample" else group,
+                               display.surface_inputs(spacing, **settings)))
+    for label, node_group, inputs in configurations:
         obj = bpy.data.objects.new(f"bench {label}", bpy.data.meshes.new(f"bench {label}"))
         bpy.context.scene.collection.objects.link(obj)
         modifier = obj.modifiers.new("surface", "NODES")
-        modifier.node_group = group
+        modifier.node_group = node_group
         for name, value in inputs.items():
-            modifier[group.interface.items_tree[name].identifier] = value
+            modifier[node_group.interface.items_tree[name].identifier] = value
         objects[label] = obj
     base = splash_frame(points, spacing, rng)
     out = {label: {"seconds": [], "cpu_seconds": []} for label in objects}
@@ -103,15 +136,30 @@ def child_surface(points, repeats, compare_detail="0"):
     return {"blender": bpy.app.version_string, **out["default"], "compare": out.get("compare"), "defaults": defaults}
 
 
+def load_average():
+    """The 1-minute load average (as `uptime` prints it): how busy the shared machine was."""
+    return os.getloadavg()[0]
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description="Time the liquid surface build of one splash frame in Blender.")
     parser.add_argument("--points", type=int, default=100_000, help="Particles in the frame. Default: 100000.")
     parser.add_argument("--repeats", type=int, default=5, help="Timed frames after one warm-up. Default: 5.")
+    parser.add_argument("--compare", default="",
+                        help="Also time other settings, alternating frame by frame: comma-separated reach=, detail=, "
+                             "smoothing= (spacings, passes) and meshing=grid|resample (resample: Volume to Mesh "
+                             "resamples at the voxel size, as before 2026-12-05). Default: off.")
     parser.add_argument("--compare-detail", type=float, default=0.0,
-                        help="Also time another voxel size (in spacings), alternating frame by frame. Default: off.")
+                        help="Short for --compare detail=VALUE. Default: off.")
     args = parser.parse_args(argv)
-    result, _ = blender_env.run_child(HERE, "child_surface", args.points, args.repeats, args.compare_detail,
-                                      timeout=1200)
+    compare = ",".join(filter(None, [args.compare, f"detail={args.compare_detail}" if args.compare_detail else ""]))
+    try:
+        parse_compare(compare)
+    except ValueError as error:
+        parser.error(str(error))
+    uptime_before = load_average()
+    result, _ = blender_env.run_child(HERE, "child_surface", args.points, args.repeats, compare, timeout=1200)
+    uptime_after = load_average()
     seconds = sorted(result["seconds"])
     best, median = seconds[0], seconds[len(seconds) // 2]
     cpu = sorted(result["cpu_seconds"])[len(seconds) // 2]
@@ -133,13 +181,15 @@ def main(argv=None):
     if other:
         other_median = sorted(other["seconds"])[len(other["seconds"]) // 2]
         other_cpu = sorted(other["cpu_seconds"])[len(other["cpu_seconds"]) // 2]
-        print(f"{'same frames, voxel ' + str(args.compare_detail) + ' spacings':40s} {min(other['seconds']):7.3f}s "
+        print(f"{'same frames, ' + compare:40s} {min(other['seconds']):7.3f}s "
               f"{other_median:7.3f}s {other_cpu:7.3f}s  ({other['vertices']:,} vertices; default/this: wall "
               f"{median / other_median:.2f}, cpu {cpu / other_cpu:.2f})")
-        results["compare"] = {"detail_spacings": args.compare_detail, "median_seconds": other_median,
+        results["compare"] = {"settings": compare, "median_seconds": other_median,
                               "median_cpu_seconds": other_cpu, "all_seconds": other["seconds"],
                               "vertices": other["vertices"], "faces": other["faces"],
                               "default_over_this_wall": median / other_median, "default_over_this_cpu": cpu / other_cpu}
+    print(f"load average (1 min) before / after: {uptime_before:.2f} / {uptime_after:.2f} on {os.cpu_count()} cores")
+    results["load_average_before_after"] = [uptime_before, uptime_after]
     target = write_result("surface.json", results)
     print(f"wrote {target.relative_to(ROOT)}")
     return 0
