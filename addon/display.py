@@ -417,6 +417,7 @@ def surface_group(material):
     to_points = nodes.new("GeometryNodeMeshToPoints")
     links.new(source.outputs["Geometry"], to_points.inputs["Mesh"])
     to_volume = nodes.new("GeometryNodePointsToVolume")
+    to_volume.name = SURFACE_STAGES[0]
     to_volume.inputs["Density"].default_value = 1.0
     _set_resolution_mode(to_volume, "VOXEL_SIZE")
     links.new(to_points.outputs["Points"], to_volume.inputs["Points"])
@@ -425,6 +426,7 @@ def surface_group(material):
     # Mesh the grid at its own resolution: a voxel size here, even the same one, makes the node
     # resample the grid first, which cost 30 % of the build for the same mesh (bench_surface.py).
     to_mesh = nodes.new("GeometryNodeVolumeToMesh")
+    to_mesh.name = SURFACE_STAGES[1]
     _set_resolution_mode(to_mesh, "GRID")
     links.new(to_volume.outputs["Volume"], to_mesh.inputs["Volume"])
     # Relax the sphere bumps: average each vertex with its neighbours (Smoothing times).
@@ -434,6 +436,7 @@ def surface_group(material):
     links.new(position.outputs["Position"], blur.inputs["Value"])
     links.new(source.outputs["Smoothing"], blur.inputs["Iterations"])
     relax = nodes.new("GeometryNodeSetPosition")
+    relax.name = SURFACE_STAGES[3]
     links.new(blur.outputs["Value"], relax.inputs["Position"])
     # Move the surface in, from the sphere union to where the particles' volume ends.
     normal = nodes.new("GeometryNodeInputNormal")
@@ -446,6 +449,7 @@ def surface_group(material):
     links.new(source.outputs["Shrink"], negate.inputs[0])
     links.new(negate.outputs["Value"], inward.inputs["Scale"])
     shrink = nodes.new("GeometryNodeSetPosition")
+    shrink.name = SURFACE_STAGES[2]
     links.new(to_mesh.outputs["Mesh"], shrink.inputs["Geometry"])
     links.new(inward.outputs["Vector"], shrink.inputs["Offset"])
     # Shrink first, relax after: relaxing a droplet's small sphere first would leave the shrink
@@ -458,6 +462,7 @@ def surface_group(material):
     nearest.domain = "POINT"
     links.new(to_points.outputs["Points"], nearest.inputs["Geometry"])
     keep_index = nodes.new("GeometryNodeStoreNamedAttribute")
+    keep_index.name = SURFACE_STAGES[4]
     keep_index.data_type = "INT"
     keep_index.domain = "POINT"
     keep_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
@@ -485,6 +490,7 @@ def surface_group(material):
         links.new(sample.outputs[0], store.inputs["Value"])
         geometry = store.outputs["Geometry"]
     forget_index = nodes.new("GeometryNodeRemoveAttribute")
+    forget_index.name = SURFACE_STAGES[5]
     forget_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
     links.new(geometry, forget_index.inputs["Geometry"])
     smooth = nodes.new("GeometryNodeSetShadeSmooth")
@@ -494,6 +500,12 @@ def surface_group(material):
     links.new(smooth.outputs[0], set_material.inputs["Geometry"])
     links.new(set_material.outputs["Geometry"], sink.inputs["Geometry"])
     return group
+
+
+#: Names of the surface group's step nodes in the order they run; the first output of each is the
+#: geometry so far (``bench/bench_surface.py --stages`` times the graph cut after each).
+SURFACE_STAGES = ("Spheres to volume", "Volume to surface", "Inward offset", "Relax", "Nearest particle",
+                  "Attributes")
 
 
 #: Temporary surface attribute: the index of each vertex's nearest particle (removed before output).

@@ -8,13 +8,13 @@ steadier on a shared machine). ``--compare detail=0.6,smoothing=2`` also times t
 with other settings (``reach``, ``detail``, ``smoothing`` in spacings, as ``surface_inputs`` takes
 them; ``meshing=resample`` meshes the way the graph did before 2026-12-05: Volume to Mesh resampling
 the volume at the voxel size instead of using its grid), alternating frame by frame, for ratios
-measured in the same run; ``--compare-detail 0.6`` is short for ``--compare detail=0.6``. The frame is
-made up here: a resting pool (a
-jittered lattice slab), a one-particle-thick curved sheet rising from it and a
-cloud of droplets (70 / 20 / 10 % of the points), at 1 cm spacing. Each repeat
-moves every particle a little (a new frame: nothing is reused from the last
-evaluation) and times Blender's evaluation of the object (refill of the mesh
-excluded). Runs in a child process (bpy can be imported once per process).
+measured in the same run; ``--compare-detail 0.6`` is short for ``--compare detail=0.6``. ``--stages``
+times the graph cut after each step (``display.SURFACE_STAGES``) on the same frames.
+
+The frame is made up here: a resting pool (a jittered lattice slab), a one-particle-thick curved
+sheet rising from it and a cloud of droplets (70 / 20 / 10 % of the points), at 1 cm spacing. Each
+repeat moves every particle a little (a new frame: nothing is reused from the last evaluation) and
+times Blender's evaluation of one object at a time (refill of the mesh excluded). Runs in a child process (bpy can be imported once per process).
 Prints a table and writes bench/results/surface.json.
 """
 
@@ -79,11 +79,21 @@ def resampling_copy(display, group):
     return old
 
 
-def child_surface(points, repeats, compare=""):
+def stage_copy(display, group, stage):
+    """A copy of the surface group whose output is the geometry after the step node named ``stage``."""
+    cut = group.copy()
+    sink = next(node for node in cut.nodes if node.bl_idname == "NodeGroupOutput")
+    cut.links.new(cut.nodes[stage].outputs[0], sink.inputs["Geometry"])
+    return cut
+
+
+def child_surface(points, repeats, compare="", stages="0"):
+    import inspect
+
     import bpy
     import numpy as np
 
-    points, repeats = int(points), int(repeats)
+    points, repeats, stages = int(points), int(repeats), stages == "1"
     settings, meshing = parse_compare(compare)
     blender_env.reset_scene()
     module = blender_env.enable_from_source()
@@ -91,11 +101,14 @@ def child_surface(points, repeats, compare=""):
     spacing = 0.01
     rng = np.random.default_rng(0)
     group = display.surface_group(display.liquid_material())
-    objects = {}
-    configurations = [("default", group, display.surface_inputs(spacing))]
+    defaults = display.surface_inputs(spacing)
+    configurations = [("default", group, defaults)]
     if compare:
         configurations.append(("compare", resampling_copy(display, group) if meshing == "resample" else group,
                                display.surface_inputs(spacing, **settings)))
+    if stages:
+        configurations += [(stage, stage_copy(display, group, stage), defaults) for stage in display.SURFACE_STAGES]
+    objects = {}
     for label, node_group, inputs in configurations:
         obj = bpy.data.objects.new(f"bench {label}", bpy.data.meshes.new(f"bench {label}"))
         bpy.context.scene.collection.objects.link(obj)
@@ -112,6 +125,8 @@ def child_surface(points, repeats, compare=""):
         positions = base + rng.normal(scale=0.02 * spacing, size=base.shape)
         velocities = rng.normal(size=base.shape)
         for label, obj in objects.items():
+            for other in objects.values():  # evaluate one object at a time
+                other.hide_viewport = other is not obj
             display.write_points(obj.data, {"positions": positions, "velocities": velocities,
                                             "ids": np.arange(points), "density": np.full(points, 1000.0),
                                             "pressure": np.zeros(points), **marks})
@@ -123,17 +138,19 @@ def child_surface(points, repeats, compare=""):
             else:
                 out[label]["seconds"].append(wall)
                 out[label]["cpu_seconds"].append(cpu)
-            result = evaluated.to_mesh()
-            out[label]["vertices"], out[label]["faces"] = len(result.vertices), len(result.polygons)
-            evaluated.to_mesh_clear()
-            obj.hide_viewport = True  # evaluate one object at a time
-        for obj in objects.values():
-            obj.hide_viewport = False
-    import inspect
+            if evaluated.type == "MESH":
+                result = evaluated.to_mesh()
+                out[label]["vertices"], out[label]["faces"] = len(result.vertices), len(result.polygons)
+                evaluated.to_mesh_clear()
+    settings_spacings = {name: p.default for name, p in inspect.signature(display.surface_inputs).parameters.items()
+                         if name != "spacing"}
+    return {"blender": bpy.app.version_string, **out.pop("default"), "compare": out.pop("compare", None),
+            "stages": out, "defaults": settings_spacings}
 
-    defaults = {name: p.default for name, p in inspect.signature(display.surface_inputs).parameters.items()
-                if name != "spacing"}
-    return {"blender": bpy.app.version_string, **out["default"], "compare": out.get("compare"), "defaults": defaults}
+
+def middle(values):
+    """The median of a list (the upper one of the two middle values for an even count)."""
+    return sorted(values)[len(values) // 2]
 
 
 def load_average():
@@ -151,6 +168,9 @@ def main(argv=None):
                              "resamples at the voxel size, as before 2026-12-05). Default: off.")
     parser.add_argument("--compare-detail", type=float, default=0.0,
                         help="Short for --compare detail=VALUE. Default: off.")
+    parser.add_argument("--stages", action="store_true",
+                        help="Also time the default graph cut after each of its steps, alternating with the rest, "
+                             "to see which step costs what. Default: off.")
     args = parser.parse_args(argv)
     compare = ",".join(filter(None, [args.compare, f"detail={args.compare_detail}" if args.compare_detail else ""]))
     try:
@@ -158,11 +178,10 @@ def main(argv=None):
     except ValueError as error:
         parser.error(str(error))
     uptime_before = load_average()
-    result, _ = blender_env.run_child(HERE, "child_surface", args.points, args.repeats, compare, timeout=1200)
+    result, _ = blender_env.run_child(HERE, "child_surface", args.points, args.repeats, compare, int(args.stages),
+                                      timeout=1200)
     uptime_after = load_average()
-    seconds = sorted(result["seconds"])
-    best, median = seconds[0], seconds[len(seconds) // 2]
-    cpu = sorted(result["cpu_seconds"])[len(seconds) // 2]
+    best, median, cpu = min(result["seconds"]), middle(result["seconds"]), middle(result["cpu_seconds"])
     verdict = "met" if median <= TARGET_SECONDS else "missed"
     defaults = result["defaults"]
     print(f"Splashdraft liquid surface, Blender {result['blender']}, {args.points:,} particles at 1 cm "
@@ -179,8 +198,7 @@ def main(argv=None):
                "target_met": median <= TARGET_SECONDS}
     other = result.get("compare")
     if other:
-        other_median = sorted(other["seconds"])[len(other["seconds"]) // 2]
-        other_cpu = sorted(other["cpu_seconds"])[len(other["cpu_seconds"]) // 2]
+        other_median, other_cpu = middle(other["seconds"]), middle(other["cpu_seconds"])
         print(f"{'same frames, ' + compare:40s} {min(other['seconds']):7.3f}s "
               f"{other_median:7.3f}s {other_cpu:7.3f}s  ({other['vertices']:,} vertices; default/this: wall "
               f"{median / other_median:.2f}, cpu {cpu / other_cpu:.2f})")
@@ -188,6 +206,14 @@ def main(argv=None):
                               "median_cpu_seconds": other_cpu, "all_seconds": other["seconds"],
                               "vertices": other["vertices"], "faces": other["faces"],
                               "default_over_this_wall": median / other_median, "default_over_this_cpu": cpu / other_cpu}
+    if result["stages"]:
+        print(f"{'graph cut after step (same frames)':40s} {'median':>8s} {'cpu med':>8s} {'cpu step':>8s}")
+        results["stages"], previous = [], 0.0
+        for stage, times in result["stages"].items():
+            stage_wall, stage_cpu = middle(times["seconds"]), middle(times["cpu_seconds"])
+            print(f"{stage:40s} {stage_wall:7.3f}s {stage_cpu:7.3f}s {stage_cpu - previous:+7.3f}s")
+            results["stages"].append({"step": stage, "median_seconds": stage_wall, "median_cpu_seconds": stage_cpu})
+            previous = stage_cpu
     print(f"load average (1 min) before / after: {uptime_before:.2f} / {uptime_after:.2f} on {os.cpu_count()} cores")
     results["load_average_before_after"] = [uptime_before, uptime_after]
     target = write_result("surface.json", results)
