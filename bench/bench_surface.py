@@ -6,8 +6,8 @@ Target (Blender 5.0, bpy module, 2 cores): building the joined surface of one
 100k-particle frame <= 0.3 s (wall time; CPU seconds of the process are printed beside it,
 steadier on a shared machine). ``--compare detail=0.6,smoothing=2`` also times the same frames
 with other settings (``reach``, ``detail``, ``smoothing`` in spacings, as ``surface_inputs`` takes
-them; ``meshing=resample`` meshes the way the graph did before 2026-12-05: Volume to Mesh resampling
-the volume at the voxel size instead of using its grid), alternating frame by frame, for ratios
+them; ``graph=old`` builds the node graph as it was before 2026-12-05: Volume to Mesh resampling the
+volume at the voxel size, the nearest particle looked up in the point cloud), alternating frame by frame, for ratios
 measured in the same run; ``--compare-detail 0.6`` is short for ``--compare detail=0.6``. ``--stages``
 times the graph cut after each step (``display.SURFACE_STAGES``) on the same frames.
 
@@ -54,28 +54,33 @@ def splash_frame(points, spacing, rng):
 
 
 def parse_compare(text):
-    """``"detail=0.6,meshing=resample"`` -> ({"detail": 0.6}, "resample"); raises ValueError naming the bad item."""
-    settings, meshing = {}, "grid"
+    """``"detail=0.6,graph=old"`` -> ({"detail": 0.6}, "old"); raises ValueError naming the bad item."""
+    settings, graph = {}, "new"
     for item in filter(None, text.split(",")):
         key, _, value = item.partition("=")
         key, value = key.strip(), value.strip()
-        if key == "meshing" and value in ("grid", "resample"):
-            meshing = value
+        if key == "graph" and value in ("new", "old"):
+            graph = value
         elif key in ("reach", "detail", "smoothing") and value:
             settings[key] = int(value) if key == "smoothing" else float(value)
         else:
             raise ValueError(f"--compare: cannot read {item!r}; use reach=, detail=, smoothing= (spacings, "
-                             f"passes) or meshing=grid|resample, separated by commas")
-    return settings, meshing
+                             f"passes) or graph=new|old, separated by commas")
+    return settings, graph
 
 
-def resampling_copy(display, group):
-    """A copy of the surface group whose Volume to Mesh resamples the volume at the voxel size."""
+def old_graph_copy(display, group):
+    """A copy of the surface group as it was before 2026-12-05 (same mesh and attributes): Volume to Mesh
+    resamples the volume at the voxel size, and the nearest particle is looked up in the point cloud."""
     old = group.copy()
-    to_mesh = next(node for node in old.nodes if node.bl_idname == "GeometryNodeVolumeToMesh")
-    display._set_resolution_mode(to_mesh, "VOXEL_SIZE")
     source = next(node for node in old.nodes if node.bl_idname == "NodeGroupInput")
-    old.links.new(source.outputs["Voxel Size"], to_mesh.inputs["Voxel Size"])
+    to_points = next(node for node in old.nodes if node.bl_idname == "GeometryNodeMeshToPoints")
+    for node in old.nodes:
+        if node.bl_idname == "GeometryNodeVolumeToMesh":
+            display._set_resolution_mode(node, "VOXEL_SIZE")
+            old.links.new(source.outputs["Voxel Size"], node.inputs["Voxel Size"])
+        elif node.bl_idname in ("GeometryNodeSampleNearest", "GeometryNodeSampleIndex"):
+            old.links.new(to_points.outputs["Points"], node.inputs["Geometry"])
     return old
 
 
@@ -94,7 +99,7 @@ def child_surface(points, repeats, compare="", stages="0"):
     import numpy as np
 
     points, repeats, stages = int(points), int(repeats), stages == "1"
-    settings, meshing = parse_compare(compare)
+    settings, graph = parse_compare(compare)
     blender_env.reset_scene()
     module = blender_env.enable_from_source()
     display = sys.modules[module + ".addon.display"]
@@ -104,7 +109,7 @@ def child_surface(points, repeats, compare="", stages="0"):
     defaults = display.surface_inputs(spacing)
     configurations = [("default", group, defaults)]
     if compare:
-        configurations.append(("compare", resampling_copy(display, group) if meshing == "resample" else group,
+        configurations.append(("compare", old_graph_copy(display, group) if graph == "old" else group,
                                display.surface_inputs(spacing, **settings)))
     if stages:
         configurations += [(stage, stage_copy(display, group, stage), defaults) for stage in display.SURFACE_STAGES]
@@ -164,8 +169,8 @@ def main(argv=None):
     parser.add_argument("--repeats", type=int, default=5, help="Timed frames after one warm-up. Default: 5.")
     parser.add_argument("--compare", default="",
                         help="Also time other settings, alternating frame by frame: comma-separated reach=, detail=, "
-                             "smoothing= (spacings, passes) and meshing=grid|resample (resample: Volume to Mesh "
-                             "resamples at the voxel size, as before 2026-12-05). Default: off.")
+                             "smoothing= (spacings, passes) and graph=new|old (old: the node graph as it was "
+                             "before 2026-12-05, same mesh). Default: off.")
     parser.add_argument("--compare-detail", type=float, default=0.0,
                         help="Short for --compare detail=VALUE. Default: off.")
     parser.add_argument("--stages", action="store_true",
