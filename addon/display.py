@@ -424,7 +424,7 @@ def surface_group(material):
     links.new(source.outputs["Radius"], to_volume.inputs["Radius"])
     links.new(source.outputs["Voxel Size"], to_volume.inputs["Voxel Size"])
     # Mesh the grid at its own resolution: a voxel size here, even the same one, makes the node
-    # resample the grid first, which cost 30 % of the build for the same mesh (bench_surface.py).
+    # resample the grid first, about 30 % of the build for the same mesh (bench_surface.py).
     to_mesh = nodes.new("GeometryNodeVolumeToMesh")
     to_mesh.name = SURFACE_STAGES[1]
     _set_resolution_mode(to_mesh, "GRID")
