@@ -417,15 +417,18 @@ def surface_group(material):
     to_points = nodes.new("GeometryNodeMeshToPoints")
     links.new(source.outputs["Geometry"], to_points.inputs["Mesh"])
     to_volume = nodes.new("GeometryNodePointsToVolume")
+    to_volume.name = SURFACE_STAGES[0]
     to_volume.inputs["Density"].default_value = 1.0
-    _set_voxel_size_mode(to_volume)
+    _set_resolution_mode(to_volume, "VOXEL_SIZE")
     links.new(to_points.outputs["Points"], to_volume.inputs["Points"])
     links.new(source.outputs["Radius"], to_volume.inputs["Radius"])
     links.new(source.outputs["Voxel Size"], to_volume.inputs["Voxel Size"])
+    # Mesh the grid at its own resolution: a voxel size here, even the same one, makes the node
+    # resample the grid first, about 30 % of the build for the same mesh (bench_surface.py).
     to_mesh = nodes.new("GeometryNodeVolumeToMesh")
-    _set_voxel_size_mode(to_mesh)
+    to_mesh.name = SURFACE_STAGES[1]
+    _set_resolution_mode(to_mesh, "GRID")
     links.new(to_volume.outputs["Volume"], to_mesh.inputs["Volume"])
-    links.new(source.outputs["Voxel Size"], to_mesh.inputs["Voxel Size"])
     # Relax the sphere bumps: average each vertex with its neighbours (Smoothing times).
     position = nodes.new("GeometryNodeInputPosition")
     blur = nodes.new("GeometryNodeBlurAttribute")
@@ -433,6 +436,7 @@ def surface_group(material):
     links.new(position.outputs["Position"], blur.inputs["Value"])
     links.new(source.outputs["Smoothing"], blur.inputs["Iterations"])
     relax = nodes.new("GeometryNodeSetPosition")
+    relax.name = SURFACE_STAGES[3]
     links.new(blur.outputs["Value"], relax.inputs["Position"])
     # Move the surface in, from the sphere union to where the particles' volume ends.
     normal = nodes.new("GeometryNodeInputNormal")
@@ -445,6 +449,7 @@ def surface_group(material):
     links.new(source.outputs["Shrink"], negate.inputs[0])
     links.new(negate.outputs["Value"], inward.inputs["Scale"])
     shrink = nodes.new("GeometryNodeSetPosition")
+    shrink.name = SURFACE_STAGES[2]
     links.new(to_mesh.outputs["Mesh"], shrink.inputs["Geometry"])
     links.new(inward.outputs["Vector"], shrink.inputs["Offset"])
     # Shrink first, relax after: relaxing a droplet's small sphere first would leave the shrink
@@ -453,10 +458,14 @@ def surface_group(material):
     # Velocity, speed, zone and foam of the nearest particle, for shading and motion blur.
     # The nearest particle is looked up once and stored: a field feeding several Store nodes is
     # evaluated once per node, and the lookup is the costly part (measured: bench/bench_surface.py).
+    # Looked up among the input mesh's vertices, not the point cloud made from them (same points, same
+    # order): 4.2's Sample Nearest on a point cloud took 2.3 CPU s at 100k particles against 0.13 s on
+    # the vertices (5.0: about the same either way; bench_surface.py --stages).
     nearest = nodes.new("GeometryNodeSampleNearest")
     nearest.domain = "POINT"
-    links.new(to_points.outputs["Points"], nearest.inputs["Geometry"])
+    links.new(source.outputs["Geometry"], nearest.inputs["Geometry"])
     keep_index = nodes.new("GeometryNodeStoreNamedAttribute")
+    keep_index.name = SURFACE_STAGES[4]
     keep_index.data_type = "INT"
     keep_index.domain = "POINT"
     keep_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
@@ -473,7 +482,7 @@ def surface_group(material):
         sample = nodes.new("GeometryNodeSampleIndex")
         sample.data_type = kind
         sample.domain = "POINT"
-        links.new(to_points.outputs["Points"], sample.inputs["Geometry"])
+        links.new(source.outputs["Geometry"], sample.inputs["Geometry"])
         links.new(read.outputs["Attribute"], sample.inputs["Value"])
         links.new(read_index.outputs["Attribute"], sample.inputs["Index"])
         store = nodes.new("GeometryNodeStoreNamedAttribute")
@@ -484,6 +493,7 @@ def surface_group(material):
         links.new(sample.outputs[0], store.inputs["Value"])
         geometry = store.outputs["Geometry"]
     forget_index = nodes.new("GeometryNodeRemoveAttribute")
+    forget_index.name = SURFACE_STAGES[5]
     forget_index.inputs["Name"].default_value = NEAREST_ATTRIBUTE
     links.new(geometry, forget_index.inputs["Geometry"])
     smooth = nodes.new("GeometryNodeSetShadeSmooth")
@@ -493,6 +503,12 @@ def surface_group(material):
     links.new(smooth.outputs[0], set_material.inputs["Geometry"])
     links.new(set_material.outputs["Geometry"], sink.inputs["Geometry"])
     return group
+
+
+#: Names of the surface group's step nodes in the order they run; the first output of each is the
+#: geometry so far (``bench/bench_surface.py --stages`` times the graph cut after each).
+SURFACE_STAGES = ("Spheres to volume", "Volume to surface", "Inward offset", "Relax", "Nearest particle",
+                  "Attributes")
 
 
 #: Temporary surface attribute: the index of each vertex's nearest particle (removed before output).
@@ -521,12 +537,16 @@ def surface_inputs(spacing, reach=1.0, detail=0.8, smoothing=3):
             "Shrink": spacing * max(reach - FACE_OFFSET, 0.0), "Smoothing": int(smoothing)}
 
 
-def _set_voxel_size_mode(node):
+#: Resolution modes of the volume nodes: 4.2's node property value -> 5.0's menu item.
+_RESOLUTION_MENU_ITEMS = {"VOXEL_SIZE": "Size", "GRID": "Grid"}
+
+
+def _set_resolution_mode(node, mode):
     # 4.2 has a node property; 5.0 turned it into a menu input socket.
     if hasattr(node, "resolution_mode"):
-        node.resolution_mode = "VOXEL_SIZE"
+        node.resolution_mode = mode
     elif "Resolution Mode" in node.inputs:
-        node.inputs["Resolution Mode"].default_value = "Size"
+        node.inputs["Resolution Mode"].default_value = _RESOLUTION_MENU_ITEMS[mode]
 
 
 def pass_through_group():
