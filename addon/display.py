@@ -42,6 +42,11 @@ from ..engine.errors import CacheError
 
 POINTS_GROUP = "Splashdraft points"
 SURFACE_GROUP = "Splashdraft liquid surface"
+#: Revision of the surface graph, stored on the node group; a file saved with an older graph (2:
+#: Volume to Mesh on the volume's own grid, the nearest particle looked up among the mesh vertices)
+#: gets the current one when its liquid object is next set up.
+SURFACE_REVISION = 2
+REVISION_KEY = "splashdraft_revision"
 PASS_GROUP = "Splashdraft pass-through"
 READER_GROUP = "Splashdraft file reader"
 READER_MODIFIER = "Splashdraft file reader"
@@ -391,6 +396,11 @@ def points_group(material):
     return group
 
 
+def surface_group_is_current(group) -> bool:
+    """Whether ``group`` is the surface graph of this add-on's revision."""
+    return group.name == SURFACE_GROUP and group.get(REVISION_KEY) == SURFACE_REVISION
+
+
 def surface_group(material):
     """Points -> joined, smoothed liquid surface carrying ``velocity``, ``speed``, ``zone`` and ``foam`` (4.2+).
 
@@ -405,9 +415,13 @@ def surface_group(material):
     its nearest particle, for shading and motion blur. Every input is a length in Blender units (set
     from the particle spacing by ``apply_display_settings``).
     """
+    old = bpy.data.node_groups.get(SURFACE_GROUP)
+    if old is not None and not surface_group_is_current(old):
+        old.name = SURFACE_GROUP + " (superseded)"  # left without users, dropped when the file is saved
     group, is_new = _new_group(SURFACE_GROUP)
     if not is_new:
         return group
+    group[REVISION_KEY] = SURFACE_REVISION
     _input_socket(group, "Radius", "NodeSocketFloat", 0.02)
     _input_socket(group, "Voxel Size", "NodeSocketFloat", 0.01, minimum=1e-4)
     _input_socket(group, "Shrink", "NodeSocketFloat", 0.01)
@@ -678,8 +692,8 @@ def ensure_display_object(scene):
     if POINTS_MODIFIER not in obj.modifiers:
         obj.modifiers.new(POINTS_MODIFIER, "NODES").node_group = points_group(material)
     surface = obj.modifiers.get(SURFACE_MODIFIER) or obj.modifiers.new(SURFACE_MODIFIER, "NODES")
-    if surface.node_group is None or surface.node_group.name != SURFACE_GROUP:
-        surface.node_group = surface_group(material)  # also replaces the blob surface of older files
+    if surface.node_group is None or not surface_group_is_current(surface.node_group):
+        surface.node_group = surface_group(material)  # also replaces older files' surfaces
     apply_display_settings(scene)
     return obj
 

@@ -175,7 +175,8 @@ def test_liquid_surface_of_the_demo_block_is_one_watertight_body_of_the_particle
     block at frame 1: one connected, watertight component whose enclosed volume is within 10 % of
     particles x spacing^3, carrying the particles' speed, zone and foam; under every playback mode this
     Blender has. A scattered cache (block, one-particle-thick sheet, lone droplet) keeps the sheet and
-    the droplet as their own visible bodies, and the droplet's body reads as spray.
+    the droplet as their own visible bodies, and the droplet's body reads as spray. A file saved with an
+    older surface graph gets the current one when its liquid object is set up again.
 
     Oracles: the divergence theorem for the enclosed volume (V = sum det[a, b, c] / 6 over the
     triangles; Gauss, any calculus text, common practice), a closed 2-manifold has every edge in
@@ -213,6 +214,8 @@ def test_liquid_surface_of_the_demo_block_is_one_watertight_body_of_the_particle
     assert scattered["droplet_centre_error"] <= 0.1 * scattered["spacing"], scattered
     # The one-particle sheet: closed and thinner than 2 spacings, but not vanished.
     assert 0.3 * scattered["spacing"] <= scattered["sheet_thickness"] <= 2.0 * scattered["spacing"], scattered
+    upgrade = result["upgrade"]
+    assert upgrade["rebuilt"] and upgrade["current"] and upgrade["old_users"] == 0, upgrade
 
 
 def test_failures_are_named_in_blenders_words_never_as_tracebacks(tmp_path):
@@ -968,6 +971,15 @@ def child_surface(tmp):
                  droplet_centre_error=float(np.linalg.norm(drop.mean(axis=0) - droplet[0])),
                  sheet_thickness=float(np.ptp(sheet_points[:, 2])))
     out["scattered"] = stats
+
+    # A file saved with an older surface graph (no revision on the group) gets the current graph when
+    # its liquid object is set up again, and the old graph is left without users.
+    old_group = shot.display_object.modifiers[display.SURFACE_MODIFIER].node_group
+    del old_group[display.REVISION_KEY]
+    display.ensure_display_object(scene)
+    group = shot.display_object.modifiers[display.SURFACE_MODIFIER].node_group
+    out["upgrade"] = {"rebuilt": group != old_group, "current": display.surface_group_is_current(group),
+                      "old_users": old_group.users, "name": group.name}
     return out
 
 
