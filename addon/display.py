@@ -33,11 +33,12 @@ whole.
 """
 
 from pathlib import Path
+from typing import Optional
 
 import bpy
 import numpy as np
 
-from ..engine.cache import FRAME_FILE_PATTERN, MANIFEST_NAME, open_cache
+from ..engine.cache import FRAME_FILE_PATTERN, MANIFEST_NAME, CacheReader, open_cache
 from ..engine.errors import CacheError
 
 POINTS_GROUP = "Splashdraft points"
@@ -60,7 +61,7 @@ _reported = []      # the messages printed, oldest first (shown by the panel, re
 _last_shown = {}    # display object name -> (folder, frame, mtime) last written
 
 
-def warn_once(key, message):
+def warn_once(key, message) -> None:
     """Print a warning the first time ``key`` is seen (never raises)."""
     if key in _warned:
         return
@@ -69,19 +70,19 @@ def warn_once(key, message):
     print(f"Splashdraft warning: {message}")
 
 
-def reported_warnings():
+def reported_warnings() -> list[str]:
     """Warnings printed since the last ``clear_warnings`` (list of str)."""
     return list(_reported)
 
 
-def clear_warnings():
+def clear_warnings() -> None:
     _warned.clear()
     _reported.clear()
     _last_shown.clear()
     _checked.clear()
 
 
-def reader_for(folder):
+def reader_for(folder) -> CacheReader:
     """Open (or reuse) the cache reader of ``folder``; reopened whenever the manifest changes (running bakes).
 
     Raises:
@@ -101,7 +102,7 @@ def reader_for(folder):
     return reader
 
 
-def empty_frame():
+def empty_frame() -> dict:
     return {"positions": np.zeros((0, 3), np.float32), "velocities": np.zeros((0, 3), np.float32),
             "ids": np.zeros(0, np.int32), "density": np.zeros(0, np.float32), "pressure": np.zeros(0, np.float32)}
 
@@ -110,7 +111,7 @@ def empty_frame():
 WHITEWATER_ATTRIBUTES = {"zone": "INT", "trapped_air": "FLOAT", "wave_crest": "FLOAT", "foam": "FLOAT"}
 
 
-def write_points(mesh, arrays, scale_length=1.0):
+def write_points(mesh, arrays, scale_length=1.0) -> None:
     """Replace the vertices of ``mesh`` by the particles of one frame.
 
     Args:
@@ -147,7 +148,7 @@ def write_points(mesh, arrays, scale_length=1.0):
     mesh.update()
 
 
-def current_version(scene):
+def current_version(scene) -> "bpy.types.PropertyGroup | None":
     """The version row shown for ``scene`` (or None)."""
     shot = scene.splashdraft
     if not len(shot.versions):
@@ -156,7 +157,7 @@ def current_version(scene):
     return shot.versions[index]
 
 
-def frame_arrays(folder, frame):
+def frame_arrays(folder, frame) -> dict:
     """Arrays of ``frame`` in the bake ``folder``, or an empty frame (warned once) when it cannot be read."""
     try:
         reader = reader_for(folder)
@@ -173,17 +174,17 @@ def frame_arrays(folder, frame):
         return empty_frame()
 
 
-def reads_in_nodes(scene):
+def reads_in_nodes(scene) -> bool:
     """True when the shot plays back through the file-reader node tree (NODES, or AUTO on Blender 5.0+)."""
     return scene.splashdraft.playback in ("NODES", "AUTO") and reader_nodes_available()
 
 
-def reader_nodes_available():
+def reader_nodes_available() -> bool:
     """The PLY file-import and string-format nodes exist (Blender 5.0 and newer)."""
     return hasattr(bpy.types, "GeometryNodeImportPLY") and hasattr(bpy.types, "FunctionNodeFormatString")
 
 
-def show_frame(scene, frame=None, force=False):
+def show_frame(scene, frame=None, force=False) -> Optional[int]:
     """Fill the scene's liquid object with ``frame`` (default: the current frame) of the shown version.
 
     Returns the number of points shown, or None when there is nothing to show into
@@ -211,7 +212,7 @@ def show_frame(scene, frame=None, force=False):
 
 
 @bpy.app.handlers.persistent
-def on_frame_change(scene, depsgraph=None):
+def on_frame_change(scene, depsgraph=None) -> None:
     """frame_change_pre handler: show the new frame; never raises into Blender's loop."""
     try:
         show_frame(scene)
@@ -222,7 +223,7 @@ def on_frame_change(scene, depsgraph=None):
 _checked = {}       # frame file path -> ((size, mtime_ns), problem text or None)
 
 
-def frame_problem(folder, frame):
+def frame_problem(folder, frame) -> Optional[str]:
     """Why a listed frame of the bake ``folder`` cannot be shown as baked, or None when it is sound.
 
     Missing, truncated or altered files are found by the manifest's checksum (and the PLY parse),
@@ -255,7 +256,7 @@ def frame_problem(folder, frame):
     return problem
 
 
-def check_version(folder):
+def check_version(folder) -> list[str]:
     """Problems of every listed frame of ``folder`` (list of str; empty when all are sound)."""
     try:
         frames = reader_for(folder).frames
@@ -265,7 +266,7 @@ def check_version(folder):
 
 
 @bpy.app.handlers.persistent
-def on_frame_checked(scene, depsgraph=None):
+def on_frame_checked(scene, depsgraph=None) -> None:
     """frame_change_post handler: in NODES playback, check the shown frame (REFILL checks as it reads).
 
     The file-reader node shows whatever the file holds; this names a damaged or missing frame in the
@@ -285,7 +286,7 @@ def on_frame_checked(scene, depsgraph=None):
 
 
 @bpy.app.handlers.persistent
-def on_file_loaded(*_args):
+def on_file_loaded(*_args) -> None:
     """load_post handler: forget readers and warnings of the previous file."""
     _readers.clear()
     clear_warnings()
@@ -328,7 +329,7 @@ def _socket(sockets, identifier):
     return next(socket for socket in sockets if socket.identifier == identifier)
 
 
-def liquid_material():
+def liquid_material() -> "bpy.types.Material":
     """Material coloured by the ``speed`` attribute through the fall-height ramp above, whitened by
     the ``foam`` attribute and for spray (``zone`` 2)."""
     material = bpy.data.materials.get(MATERIAL_NAME)
@@ -378,7 +379,7 @@ def liquid_material():
     return material
 
 
-def points_group(material):
+def points_group(material) -> "bpy.types.NodeTree":
     """Mesh to Points (radius input) + Set Material."""
     group, is_new = _new_group(POINTS_GROUP)
     if not is_new:
@@ -401,7 +402,7 @@ def surface_group_is_current(group) -> bool:
     return group.name == SURFACE_GROUP and group.get(REVISION_KEY) == SURFACE_REVISION
 
 
-def surface_group(material):
+def surface_group(material) -> "bpy.types.NodeTree":
     """Points -> joined, smoothed liquid surface carrying ``velocity``, ``speed``, ``zone`` and ``foam`` (4.2+).
 
     Steps: every point becomes a sphere of ``Radius`` in a volume of ``Voxel Size`` (Points to
@@ -535,7 +536,7 @@ NEAREST_ATTRIBUTE = "splashdraft_nearest"
 FACE_OFFSET = 0.55
 
 
-def surface_inputs(spacing, reach=1.0, detail=0.8, smoothing=3):
+def surface_inputs(spacing, reach=1.0, detail=0.8, smoothing=3) -> dict:
     """Inputs of the surface node group, in Blender units, from settings in particle spacings.
 
     Args:
@@ -563,7 +564,7 @@ def _set_resolution_mode(node, mode):
         node.inputs["Resolution Mode"].default_value = _RESOLUTION_MENU_ITEMS[mode]
 
 
-def pass_through_group():
+def pass_through_group() -> "bpy.types.NodeTree":
     """Input -> output; lets Alembic/USD see the points as an animated mesh (host notes §9)."""
     group, is_new = _new_group(PASS_GROUP)
     if is_new:
@@ -572,7 +573,7 @@ def pass_through_group():
     return group
 
 
-def reader_group():
+def reader_group() -> "bpy.types.NodeTree":
     """Scene frame -> file name -> Import PLY -> metres to scene units -> velocity/speed/id/zone attributes.
 
     Inputs: ``Path Pattern`` (a Python-style format string with ``{frame}``, e.g.
@@ -636,7 +637,7 @@ def reader_group():
     return group
 
 
-def path_pattern(folder):
+def path_pattern(folder) -> str:
     """The reader's format string for the frames of ``folder`` (braces in the path escaped)."""
     escaped = str(Path(bpy.path.abspath(folder)).resolve()).replace("{", "{{").replace("}", "}}")
     return f"{escaped}/{FRAME_FILE_PATTERN}"
@@ -667,7 +668,7 @@ def _socket_id(group, name):
     return group.interface.items_tree[name].identifier
 
 
-def ensure_display_object(scene):
+def ensure_display_object(scene) -> "bpy.types.Object":
     """The scene's liquid object, created (with modifiers and material) if missing.
 
     Returns the bpy Object; also stored in ``scene.splashdraft.display_object``.
@@ -698,7 +699,7 @@ def ensure_display_object(scene):
     return obj
 
 
-def apply_display_settings(scene):
+def apply_display_settings(scene) -> None:
     """Point radius, voxel size and the spheres/surface switch from the shot settings."""
     shot = scene.splashdraft
     obj = shot.display_object
@@ -728,7 +729,7 @@ def apply_display_settings(scene):
     obj.data.update()
 
 
-def refresh(scene):
+def refresh(scene) -> None:
     """Re-apply settings and re-show the current frame (after a version switch or setting change)."""
     try:
         if scene.splashdraft.display_object is not None:
@@ -738,7 +739,7 @@ def refresh(scene):
         warn_once(("refresh", type(exc).__name__), f"could not refresh the liquid object: {exc}")
 
 
-def register():
+def register() -> None:
     if on_frame_change not in bpy.app.handlers.frame_change_pre:
         bpy.app.handlers.frame_change_pre.append(on_frame_change)
     if on_frame_checked not in bpy.app.handlers.frame_change_post:
@@ -747,7 +748,7 @@ def register():
         bpy.app.handlers.load_post.append(on_file_loaded)
 
 
-def unregister():
+def unregister() -> None:
     for handlers, function in ((bpy.app.handlers.frame_change_pre, on_frame_change),
                                (bpy.app.handlers.frame_change_post, on_frame_checked),
                                (bpy.app.handlers.load_post, on_file_loaded)):
