@@ -594,6 +594,34 @@ def test_a_viscosity_the_model_was_not_trained_on_is_a_named_warning_in_the_mani
         assert len([w for w in warnings if w.startswith("viscosity-outside-training")]) == expected
 
 
+def test_liquid_that_starts_faster_than_the_training_bakes_is_a_named_warning(tmp_path):
+    """A model whose contract records the fastest particle of its training data (in sqrt(g d)) names
+    a shot whose fill or stream starts faster; a slower shot, or a model without the record (the
+    shipped preview-gn4), gets none. The speed is |v| of the fill velocity (vector norm)."""
+    import json as _json
+
+    from engine.demo import write_demo_scene
+    from engine.scene import load_scene
+    from engine.solvers import make_solver
+    from engine.world import build_world
+
+    path = write_demo_scene(tmp_path / "scene", preset="small", frame_end=2)
+    data = _json.loads(Path(path).read_text())
+    froude = np.sqrt(9.81 * data["particle_spacing"])
+    solver = make_solver("learned")
+    assert "speed_range_froude" not in solver.contract.get("training", {})
+    recorded = dict(solver.contract, training=dict(solver.contract.get("training", {}), speed_range_froude=[0.0, 5.0]))
+    for speed, expected in ((3.0, 0), (4.9, 0), (5.1, 1)):
+        data["emitters"][0]["velocity"] = [0.6 * speed * froude, 0.0, -0.8 * speed * froude]  # |v| = speed sqrt(g d)
+        Path(path).write_text(_json.dumps(data))
+        world = build_world(load_scene(path))
+        assert not [w for w in solver.range_warnings(world) if w.startswith("speed-outside-training")]
+        solver.contract = recorded
+        named = [w for w in solver.range_warnings(world) if w.startswith("speed-outside-training")]
+        solver.contract = make_solver("learned").contract
+        assert len(named) == expected, (speed, named)
+
+
 def test_preview_viscosity_smoothing_matches_the_xsph_formula_per_particle():
     """The smoothing the preview adds above its trained viscosity is XSPH (Monaghan 1989, "On the
     problem of penetration in particle methods", J. Comput. Phys. 82:1-15):

@@ -178,6 +178,11 @@ def test_train_checkpoints_resumes_and_exports_a_checked_contract(tmp_path, free
     assert contract["rounds"] == 2 and onnx_path.name == "tiny.onnx"
     assert contract["step_froude"] == pytest.approx(scenes.frame_rate_for_step(SPACING)[1])
     assert contract["step_froude_min"] == contract["step_froude"]
+    # The trained speed range: the fastest particle of the data, the free fall's last frame,
+    # |v0 + g t| = sqrt(0.3^2 + (9.81 t)^2) at t = 7 frames (textbook kinematics), in sqrt(g d).
+    fps = json.loads((free_fall_data / "shot_0000" / "scene.json").read_text())["fps"]
+    fastest = np.hypot(0.3, 9.81 * 7 / fps) / np.sqrt(9.81 * SPACING)
+    assert contract["training"]["speed_range_froude"] == pytest.approx([0.0, fastest], abs=2e-3)
 
 
 def test_strides_set_the_trained_step_range_in_the_contract(tmp_path, free_fall_data):

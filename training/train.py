@@ -383,6 +383,17 @@ def _fit(session, pool, validation, config, stats, minutes, save_checkpoint, log
     return samples
 
 
+def fastest_froude(shots) -> float:
+    """The fastest particle of any frame of ``shots``, in sqrt(g d) (the contract's trained speed range;
+    the learned solver names a shot whose liquid starts faster)."""
+    fastest = 0.0
+    for shot in shots:
+        for velocities in shot.velocities:
+            if len(velocities):
+                fastest = max(fastest, float(np.linalg.norm(velocities, axis=1).max()) / shot.units.velocity)
+    return round(fastest, 3)
+
+
 def _training_info(data, manifest, shots, train_shots, validation_shots, session, seconds, config) -> dict:
     """The ``training`` record of the model contract: data, shots, iterations, time, final losses, command."""
     history = session.history
@@ -392,6 +403,7 @@ def _training_info(data, manifest, shots, train_shots, validation_shots, session
                           "shots": len(shots), "particle_spacing": manifest.get("particle_spacing"),
                           "fps": manifest.get("fps")},
         "viscosity_range": [min(s.scene.fluid.viscosity for s in shots), max(s.scene.fluid.viscosity for s in shots)],
+        "speed_range_froude": [0.0, fastest_froude(shots)],
         "train_shots": [s.name for s in train_shots],
         "validation_shots": [s.name for s in validation_shots],
         "iterations": session.iteration,

@@ -91,6 +91,14 @@ class LearnedStepStats:
     steps_below_range: int = 0
 
 
+def launch_speed(world) -> float:
+    """The fastest liquid a shot starts or emits, m/s: fill velocities and stream speeds."""
+    speeds = [float(stream.speed) for stream in world.streams]
+    if len(world.initial_velocities):
+        speeds.append(float(np.linalg.norm(world.initial_velocities, axis=1).max()))
+    return max(speeds, default=0.0)
+
+
 class LearnedSolver:
     """The learned preview (Solver protocol).
 
@@ -158,7 +166,9 @@ class LearnedSolver:
         models without the record were trained at the scene default 0.02). A viscosity above
         that range is added beside the network as the reference's own XSPH smoothing
         (``viscosity``); one below it cannot be taken out. Frame intervals shorter than the
-        trained step range are taken as one short step (``step_plan``).
+        trained step range are taken as one short step (``step_plan``). Liquid that starts faster
+        (``launch_speed``) than any particle of the training bakes (``training.speed_range_froude``,
+        in sqrt(g d); models without the record are not checked) is named too.
         """
         warnings = []
         trained = self.trained_viscosity_range()
@@ -175,6 +185,13 @@ class LearnedSolver:
                 f"the preview model {name} was trained on; the preview moves as at {trained[0]:g} "
                 "(bake with --solver sph to see the setting's effect)")
         units = features.Units(world.particle_spacing, world.gravity)
+        speed_range = self.contract.get("training", {}).get("speed_range_froude")
+        launch = launch_speed(world)
+        if speed_range and launch > (1 + 1e-9) * float(speed_range[1]) * units.velocity:
+            warnings.append(
+                f"speed-outside-training: liquid starts at {launch:.3g} m/s ({launch / units.velocity:.3g} sqrt(g d)), "
+                f"faster than any the preview model {name} was trained on ({float(speed_range[1]):.3g} sqrt(g d)); "
+                "a fast throw or jet may swell or slow in the preview (bake with --solver sph for the final look)")
         interval = 1.0 / world.fps
         step_min = self.contract["step_froude_min"] * units.time
         if interval < (1 - 1e-9) * step_min:
