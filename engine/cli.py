@@ -215,6 +215,9 @@ def build_parser():
                       help="Share of each bake's last frames held back for the before/after figures. Default: 0.25.")
     tune.add_argument("--checkpoint-every", type=int, metavar="N", help="Iterations between checkpoints. Default: 50.")
     tune.add_argument("--lr", type=float, metavar="RATE", help="Adam learning rate. Default: 3e-5.")
+    tune.add_argument("--unroll", type=int, metavar="M",
+                      help="Train each step from a state the model itself reached, rolled up to M frames from a "
+                      "reference frame (pushforward); 0 trains one step from the reference's own state. Default: 0.")
     tune.add_argument("--json", action="store_true", help="Print the tune record as JSON on stdout.")
 
     # The compare command is handled by engine.compare.main_compare (see main); listed here for --help.
@@ -507,13 +510,13 @@ def command_tune(args):
     words = ["python -m engine tune", "--bakes", *args.bakes, "--out", args.out]
     for flag, value in (("--base", args.base), ("--minutes", args.minutes), ("--iterations", args.iterations),
                         ("--hold-back", args.hold_back), ("--checkpoint-every", args.checkpoint_every),
-                        ("--lr", args.lr)):
+                        ("--lr", args.lr), ("--unroll", args.unroll)):
         if value is not None:
             words += [flag, str(value)]
     command = " ".join(words)
     record = tune(args.bakes, args.out, base=args.base, minutes=args.minutes, iterations=args.iterations,
                   hold_back=args.hold_back, checkpoint_every=args.checkpoint_every, command=command, log=_say,
-                  lr=args.lr)
+                  lr=args.lr, unroll=args.unroll)
     if args.json:
         _print_json(record)
     before, after = record["before"], record["after"]
