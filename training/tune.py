@@ -1,6 +1,7 @@
 """Fine-tuning the preview on an artist's own reference bakes (``python -m engine tune``).
 
     python -m engine tune --bakes DIR [DIR ...] [--base MODEL] --out MODEL_DIR [--minutes M] [--iterations N]
+                          [--lr RATE] [--unroll M]
 
 Continues training a shipped model (default ``models/preview-gn4``) on DFSPH
 bakes the artist already has (ordinary cache folders with their ``scene/``
@@ -29,6 +30,13 @@ The learned step: the preview takes n = ceil(T / step_froude) steps per
 frame interval T. Reference bakes give frame-to-frame targets, so a bake
 is usable when one learned step spans one of its frames (T <= step_froude
 in sqrt(d/g)); otherwise the error says what frame rate to bake at.
+
+Loss (``--unroll``): with M > 0 the pushforward loss of training/pushforward.py: each sampled
+step k -> k + 1 starts from the state the model being trained reaches in m = 1..min(M, k) preview
+steps (no gradient) from the reference frame k - m, and its target lands the preview's integrator
+on the reference's frame k + 1; the card's figure is such a free rollout, which a one-step loss
+from the reference's own state never shows the network. With M = 0 the one-step loss of
+``training.train`` (velocity-walk noise). Both use ``train.train_step``.
 
 Normalisation statistics stay the base model's (the weights were trained
 against them). Resumable: ``checkpoint.pt`` (our own state dicts, loaded
@@ -345,6 +353,16 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     return record
 
 
+def loss_text(settings):
+    """One sentence naming the training loss of a tune run, for the card."""
+    if settings.get("unroll"):
+        return (f"pushforward (training/pushforward.py): each step trained from the state the model itself "
+                f"reached in 1..{settings['unroll']} preview steps from a reference frame, target landing on the "
+                f"reference's next frame; lr {settings['lr']:g}.")  # fmt: skip
+    return (f"one step ahead from the reference's own state, velocity-walk noise {settings['noise']:g} "
+            f"sqrt(g d); lr {settings['lr']:g}.")  # fmt: skip
+
+
 def write_card(name, record):
     """The model card (Markdown) of a fine-tuned model: data, command, time, before/after."""
     def show(value, digits=3):
@@ -359,6 +377,7 @@ def write_card(name, record):
         f"- **Command:** `{record['command']}`",
         f"- **Export check:** onnxruntime against PyTorch, max relative error "
         f"{record['export_check']['max_relative_error']:.2g} (limit 1e-4).",
+        f"- **Loss:** {loss_text(record['settings'])}",
         "- **Data:** the reference (DFSPH) bakes below; the last frames of each were held back and never "
         "used as a training target.",
         "",
