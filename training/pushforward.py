@@ -117,20 +117,21 @@ def normalised_pushforward_sample(stepper, shot, j, k, config, stats):
 
 
 def pushforward_pool(shots, keep):
-    """[(shot, k)] of the steps k -> k + 1 with k >= 1 and k + 1 before ``keep[shot.name]`` (the held-back tail)."""
-    return [(shot, k) for shot in shots for k in range(1, keep[shot.name] - 1) if len(shot.ids[k])]
+    """[(shot, k)] of the steps k -> k + 1 with k + 1 before ``keep[shot.name]`` (the held-back tail)."""
+    return [(shot, k) for shot in shots for k in range(0, keep[shot.name] - 1) if len(shot.ids[k])]
 
 
 def train_on_pushforward(model, optimiser, pool, stepper, config, stats, rng, batch, unroll):
     """Pick ``batch`` (shot, k) entries of ``pool`` at random (with replacement), push each from the
-    reference frame k - m (m uniform in 1..min(unroll, k)) and take one ``train.train_step`` on the
-    pushed samples. Returns (the loss or None, the samples)."""
+    reference frame k - m (m uniform in 1..min(unroll, k); the first step, k = 0, from the initial
+    state itself) and take one ``train.train_step`` on the pushed samples. Returns (the loss or
+    None, the samples)."""
     from .train import train_step
 
     picks = rng.integers(0, len(pool), batch)
     samples = []
     for i in picks:
         shot, k = pool[i]
-        m = int(rng.integers(1, min(unroll, k) + 1))
+        m = int(rng.integers(min(1, k), min(unroll, k) + 1))
         samples.append(normalised_pushforward_sample(stepper, shot, k - m, k, config, stats))
     return train_step(model, optimiser, samples), samples
