@@ -197,3 +197,10 @@ def test_push_from_the_first_frame_retraces_the_preview_bake(reference_bake, tmp
     assert moved > 0.5 * shot.scene.particle_spacing  # three frames of a falling block: a real trajectory
     error = np.abs(frame["positions"][order] - state.positions).max() / shot.scene.particle_spacing
     assert error < 1e-4
+
+
+def test_tune_refuses_a_negative_unroll(reference_bake, tmp_path, capsys):
+    pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
+    _, reference = reference_bake
+    assert main(["tune", "--bakes", str(reference), "--out", str(tmp_path / "m"), "--unroll", "-1"]) == 64
+    assert "--unroll -1: give a whole number of frames >= 0" in capsys.readouterr().err

@@ -31,7 +31,7 @@ frame interval T. Reference bakes give frame-to-frame targets, so a bake
 is usable when one learned step spans one of its frames (T <= step_froude
 in sqrt(d/g)); otherwise the error says what frame rate to bake at.
 
-Loss (``--unroll``): with M > 0 the pushforward loss of training/pushforward.py: each sampled
+Loss (``--unroll``, default 8): with M > 0 the pushforward loss of training/pushforward.py: each sampled
 step k -> k + 1 starts from the state the model being trained reaches in m = 1..min(M, k) preview
 steps (no gradient) from the reference frame k - m, and its target lands the preview's integrator
 on the reference's frame k + 1; the card's figure is such a free rollout, which a one-step loss
@@ -59,12 +59,14 @@ from engine.learned.contract import default_model_path
 
 from . import dataset
 
-#: lr: the shipped model ended its own training at 1e-4; Adam at 3e-4 on the few one-step samples of short
-#: bakes over-fitted them (two 12-frame demo bakes, 136 iterations: held-back one-step loss 0.154 -> 0.197,
-#: rollout Chamfer 0.634 -> 0.964 spacings), at 3e-5 it did not (0.154 -> 0.151; Chamfer 0.634 -> 0.691).
-#: Measured 2026-12-04, README "Fine-tuning".
-TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-5, "batch": 2, "noise": 0.02, "seed": 0, "hold_back": 0.25,
-                 "checkpoint_every": 50, "unroll": 0}  # fmt: skip
+#: Loss and lr, measured on two 12-frame bakes of one shot (viscosity 0.01 and 0.03), README "Fine-tuning":
+#: the pushforward loss (unroll 8) at lr 3e-4 lowered the held-back rollout Chamfer (0.629 -> 0.533 spacings
+#: in 210 iterations, 0.527 in 30 minutes), where the one-step loss made it worse at every rate tried
+#: (3e-4: 0.634 -> 0.964, over-fitting the few one-step samples; 3e-5: 0.634 -> 0.691). The one-step loss
+#: (--unroll 0) keeps its own default rate, ONE_STEP_LR.
+TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-4, "batch": 2, "noise": 0.02, "seed": 0, "hold_back": 0.25,
+                 "checkpoint_every": 50, "unroll": 8}  # fmt: skip
+ONE_STEP_LR = 3e-5
 
 
 def weights_from_onnx(onnx_path, latent, rounds):
@@ -210,6 +212,8 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     base_onnx = contract_module.find_model(base) if base is not None else default_model_path()
     base_contract, base_onnx = contract_module.load_contract(base_onnx)
     settings = dict(TUNE_DEFAULTS)
+    if unroll == 0 and lr is None:
+        settings["lr"] = ONE_STEP_LR
     for key, value in (("iterations", iterations), ("hold_back", hold_back), ("seed", seed),
                        ("checkpoint_every", checkpoint_every), ("lr", lr), ("unroll", unroll)):  # fmt: skip
         if value is not None:
