@@ -87,7 +87,7 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--bakes", nargs="+", required=True, help="Reference (sph) bake folders, as for tune.")
     parser.add_argument("--runs", nargs="+", default=["3e-4:136", "3e-5:136", "3e-5:40"],
-                        help="LR:ITERATIONS of each tune run. Default: 3e-4:136 3e-5:136 3e-5:40.")
+                        help="LR:ITERATIONS[:UNROLL] of each tune run (UNROLL default 0, the one-step loss). Default: 3e-4:136 3e-5:136 3e-5:40.")
     parser.add_argument("--tuned", default=None, help="Measure this tuned model (file or folder) instead of tuning.")
     parser.add_argument("--unseen", nargs="+", default=[], help="Reference bakes of the family not used to tune.")
     parser.add_argument("--out", default=None, help="Working folder (default: a temporary one).")

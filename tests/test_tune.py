@@ -150,7 +150,7 @@ def test_pushforward_target_lands_the_preview_step_on_the_reference_frame(refere
     j, k = 2, 5
     _, target, mask, state = pushforward_sample(stepper, shot, j, k, config)
     assert mask.sum() > 0.9 * len(mask)
-    truth_now = shot.positions[k][shot._lookup(k, state.ids)]
+    truth_now = shot.positions[k][shot.lookup(k, state.ids)]
     assert np.linalg.norm(state.positions - truth_now, axis=1)[mask].mean() > 1e-3 * d  # really pushed off
 
     stats = {key: np.asarray(value) for key, value in contract["normalisation"].items()}
@@ -159,7 +159,7 @@ def test_pushforward_target_lands_the_preview_step_on_the_reference_frame(refere
     dt = shot.times[k + 1] - shot.times[k]
     v_next = state.velocities + dt * a
     x_next = state.positions + dt * v_next
-    truth_next = shot.positions[k + 1][shot._lookup(k + 1, state.ids)]
+    truth_next = shot.positions[k + 1][shot.lookup(k + 1, state.ids)]
     assert np.abs(x_next - truth_next)[mask].max() < 1e-7 * d
 
     graph, target0, mask0, _ = pushforward_sample(stepper, shot, k, k, config)

@@ -64,7 +64,7 @@ class Shot:
         """Frame positions k usable as 'now' (k-2s and k+s exist, and frame k has particles)."""
         return [k for k in range(2 * stride, len(self.frames) - stride) if len(self.ids[k])]
 
-    def _lookup(self, k, ids):
+    def lookup(self, k, ids):
         """Index into frame k of each id (or -1; all -1 for a frame position before the first)."""
         if k < 0:
             return np.full(len(ids), -1)
@@ -74,8 +74,8 @@ class Shot:
         found = (len(frame_ids) > 0) & (frame_ids[where] == ids) if len(frame_ids) else np.zeros(len(ids), bool)
         return np.where(found, where, -1)
 
-    def _gather(self, k, where, fallback):
-        """Positions of frame k at ``where`` (from ``_lookup``), ``fallback`` where -1."""
+    def gather(self, k, where, fallback):
+        """Positions of frame k at ``where`` (from ``lookup``), ``fallback`` where -1."""
         found = where >= 0
         if not found.any():
             return fallback
@@ -91,11 +91,11 @@ class Shot:
         ids, x, v_cached = self.ids[k], self.positions[k], self.velocities[k]
         s = stride
         dt = self.dt * s
-        i1, i2 = self._lookup(k - s, ids), self._lookup(k - 2 * s, ids)
+        i1, i2 = self.lookup(k - s, ids), self.lookup(k - 2 * s, ids)
         has1, has2 = i1 >= 0, i2 >= 0
-        x1 = self._gather(k - s, i1, x)
+        x1 = self.gather(k - s, i1, x)
         v = np.where(has1[:, None], (x - x1) / dt, v_cached)
-        x2 = self._gather(k - 2 * s, i2, x1)
+        x2 = self.gather(k - 2 * s, i2, x1)
         v_prev = np.where((has1 & has2)[:, None], (x1 - x2) / dt, v)
         return x, v, v_prev, has1
 
@@ -106,8 +106,8 @@ class Shot:
         next_velocity (N, 3), has_target (N,) bool.
         """
         x, v, v_prev, has1 = self.history(k, stride)
-        i_next = self._lookup(k + stride, self.ids[k])
-        x_next = self._gather(k + stride, i_next, x)
+        i_next = self.lookup(k + stride, self.ids[k])
+        x_next = self.gather(k + stride, i_next, x)
         v_next = (x_next - x) / (self.dt * stride)
         return {"positions": x, "velocity": v, "previous_velocity": v_prev, "next_velocity": v_next,
                 "has_target": has1 & (i_next >= 0)}

@@ -99,9 +99,9 @@ def pushforward_sample(stepper, shot, j, k, config):
         config["density_support_spacings"], config["max_neighbours"], config["max_boundary_neighbours"],
         step_froude=dt / units.time,
     )  # fmt: skip
-    where = shot._lookup(k + 1, state.ids)
+    where = shot.lookup(k + 1, state.ids)
     mask = (where >= 0) & np.isin(state.ids, shot.ids[j])
-    landing = shot._gather(k + 1, where, state.positions + dt * state.velocities)
+    landing = shot.gather(k + 1, where, state.positions + dt * state.velocities)
     accelerations = (landing - state.positions - dt * state.velocities) / dt**2
     target = features.target_from_accelerations(accelerations, units).astype(np.float32)
     return graph, target, mask, state
