@@ -1,9 +1,11 @@
 """Why fine-tuning can make the preview worse: a small study of ``python -m engine tune`` (needs PyTorch).
 
     python -m bench.tune_study --bakes DIR [DIR ...] [--runs 3e-4:136 3e-5:136 3e-5:40] [--out DIR]
+    python -m bench.tune_study --bakes DIR [DIR ...] --tuned MODEL [--unseen DIR [DIR ...]]
 
-For each run LR:ITERATIONS it tunes the shipped model on the bakes (``training.tune.tune``, the
-usual held-back tail) and reports, for the base model and each tuned one:
+For each run LR:ITERATIONS[:UNROLL] it tunes the shipped model on the bakes (``training.tune.tune``,
+the usual held-back tail; UNROLL is ``--unroll``, default 0), or takes an already tuned ``--tuned``
+model, and reports, for the base model and each tuned one:
 
 - rollout: mean Chamfer [d] and energy ratio on the held-back frames, as the tune card reports them
   (the preview bakes each shot from its first frame);
@@ -12,7 +14,9 @@ usual held-back tail) and reports, for the base model and each tuned one:
   one that only memorised its few training samples lowers the first and raises the second;
 - control (first run only): the base weights moved by a random update of the same size per
   tensor as that run's, twice, and by minus that run's update; how much the rollout Chamfer moves
-  for a change of weights that learned nothing is the noise floor of the comparison.
+  for a change of weights that learned nothing is the noise floor of the comparison;
+- unseen (with ``--unseen``): the same rollout figures on bakes of the family the tune never saw
+  (e.g. other viscosities of the same shot).
 
 Prints a table and JSON, and writes bench/results/tune_study.json.
 """
@@ -72,7 +76,9 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--bakes", nargs="+", required=True, help="Reference (sph) bake folders, as for tune.")
     parser.add_argument("--runs", nargs="+", default=["3e-4:136", "3e-5:136", "3e-5:40"],
-                        help="LR:ITERATIONS of each tune run. Default: 3e-4:136 3e-5:136 3e-5:40.")
+                        help="LR:ITERATIONS[:UNROLL] of each tune run (UNROLL default 0, the one-step loss). Default: 3e-4:136 3e-5:136 3e-5:40.")
+    parser.add_argument("--tuned", default=None, help="Measure this tuned model (file or folder) instead of tuning.")
+    parser.add_argument("--unseen", nargs="+", default=[], help="Reference bakes of the family not used to tune.")
     parser.add_argument("--out", default=None, help="Working folder (default: a temporary one).")
     args = parser.parse_args(argv)
 
@@ -97,34 +103,57 @@ def main(argv=None):
             group = "train" if k in training else "held back"
             samples[group].append(_normalised_sample(shot, k, 1, config, stats, None, 0.0))
 
+    unseen = load_bakes(args.unseen, contract) if args.unseen else []
+    unseen_held = {shot.name: split_frames(shot, TUNE_DEFAULTS["hold_back"])[1] for shot in unseen}
+
+    def rollout(group, group_held, onnx_path, label):
+        rows = _evaluate(group, group_held, onnx_path, work / "evaluation", label.replace(" ", "_").replace(":", "_"))
+        return (float(np.mean([r["mean_chamfer_spacings"] for r in rows])),
+                float(np.mean([r["energy_ratio"] for r in rows if r["energy_ratio"] is not None])))  # fmt: skip
+
     def measure(label, onnx_path):
-        rows = _evaluate(shots, held, onnx_path, work / "evaluation", label.replace(" ", "_").replace(":", "_"))
+        chamfer, energy = rollout(shots, held, onnx_path, label)
         losses = one_step_losses(onnx_path, samples, rounds, latent)
-        return {"model": label, "chamfer": float(np.mean([r["mean_chamfer_spacings"] for r in rows])),
-                "energy_ratio": float(np.mean([r["energy_ratio"] for r in rows if r["energy_ratio"] is not None])),
-                "one_step_train": losses["train"], "one_step_held_back": losses["held back"]}  # fmt: skip
+        row = {"model": label, "chamfer": chamfer, "energy_ratio": energy,
+               "one_step_train": losses["train"], "one_step_held_back": losses["held back"]}  # fmt: skip
+        if unseen:
+            row["chamfer_unseen"], row["energy_ratio_unseen"] = rollout(unseen, unseen_held, onnx_path, label + " u")
+        return row
 
     results = [measure("base", base_onnx)]
-    for number, run in enumerate(args.runs):
-        lr, iterations = run.split(":")
-        out = work / f"run{number}"
-        record = tune(args.bakes, out, lr=float(lr), iterations=int(iterations), checkpoint_every=10**6,
-                      log=lambda m: print(m, file=sys.stderr, flush=True))  # fmt: skip
-        results.append(dict(measure(f"lr {lr}, {iterations} it", record["model"]), lr=float(lr),
-                            iterations=int(iterations)))  # fmt: skip
+    if args.tuned:
+        _, tuned_onnx = contract_module.load_contract(contract_module.find_model(args.tuned))
+        candidates = [(f"given {Path(tuned_onnx).stem}", tuned_onnx, {})]
+    else:
+        candidates = []
+        for number, run in enumerate(args.runs):
+            lr, iterations, *rest = run.split(":")
+            unroll = int(rest[0]) if rest else 0
+            record = tune(args.bakes, work / f"run{number}", lr=float(lr), iterations=int(iterations),
+                          checkpoint_every=10**6, unroll=unroll, log=lambda m: print(m, file=sys.stderr, flush=True))
+            candidates.append((f"lr {lr}, {iterations} it, unroll {unroll}", record["model"],
+                               {"lr": float(lr), "iterations": int(iterations), "unroll": unroll}))  # fmt: skip
+    for number, (label, onnx_path, extra) in enumerate(candidates):
+        results.append(dict(measure(label, onnx_path), **extra))
         if number == 0:
             probe = samples["train"][0][0]
-            for label, path in control_models(base_onnx, record["model"], rounds, latent, probe, config, stats,
-                                              work / "control").items():  # fmt: skip
-                results.append(measure(f"control: {label} ({run})", path))
+            for control, path in control_models(base_onnx, onnx_path, rounds, latent, probe, config, stats,
+                                                work / "control").items():  # fmt: skip
+                results.append(measure(f"control: {control} ({label})", path))
     base_chamfer = results[0]["chamfer"]
-    print(f"{'model':<40}{'Chamfer [d]':>12}{'vs base':>9}{'energy':>8}{'1-step train':>14}{'1-step held':>13}")
+    print(f"{'model':<48}{'Chamfer [d]':>12}{'vs base':>9}{'energy':>8}{'1-step train':>14}{'1-step held':>13}"
+          + (f"{'unseen Ch.':>12}{'vs base':>9}{'energy':>8}" if unseen else ""))
     for row in results:
         row["chamfer_change"] = row["chamfer"] / base_chamfer - 1.0
-        print(f"{row['model']:<40}{row['chamfer']:>12.3f}{row['chamfer_change']:>+9.1%}{row['energy_ratio']:>8.3f}"
-              f"{row['one_step_train']:>14.4f}{row['one_step_held_back']:>13.4f}")
+        line = (f"{row['model']:<48}{row['chamfer']:>12.3f}{row['chamfer_change']:>+9.1%}{row['energy_ratio']:>8.3f}"
+                f"{row['one_step_train']:>14.4f}{row['one_step_held_back']:>13.4f}")
+        if unseen:
+            row["chamfer_unseen_change"] = row["chamfer_unseen"] / results[0]["chamfer_unseen"] - 1.0
+            line += f"{row['chamfer_unseen']:>12.3f}{row['chamfer_unseen_change']:>+9.1%}{row['energy_ratio_unseen']:>8.3f}"
+        print(line)
     result = {"bakes": [str(Path(b).resolve()) for b in args.bakes], "samples": {k: len(v) for k, v in samples.items()},
-              "held_back_frames": held, "rows": results}  # fmt: skip
+              "unseen": [str(Path(b).resolve()) for b in args.unseen], "held_back_frames": held,
+              "rows": results}  # fmt: skip
     print(json.dumps(result))
     (ROOT / "bench" / "results").mkdir(parents=True, exist_ok=True)
     (ROOT / "bench" / "results" / "tune_study.json").write_text(json.dumps(result, indent=1) + "\n")

@@ -215,7 +215,11 @@ def build_parser() -> argparse.ArgumentParser:
     tune.add_argument("--hold-back", type=float, metavar="SHARE",
                       help="Share of each bake's last frames held back for the before/after figures. Default: 0.25.")
     tune.add_argument("--checkpoint-every", type=int, metavar="N", help="Iterations between checkpoints. Default: 50.")
-    tune.add_argument("--lr", type=float, metavar="RATE", help="Adam learning rate. Default: 3e-5.")
+    tune.add_argument("--lr", type=float, metavar="RATE",
+                      help="Adam learning rate. Default: 3e-4 (3e-5 with --unroll 0).")
+    tune.add_argument("--unroll", type=int, metavar="M",
+                      help="Train each step from a state the model itself reached, rolled up to M frames from a "
+                      "reference frame (pushforward); 0 trains one step from the reference's own state. Default: 8.")
     tune.add_argument("--json", action="store_true", help="Print the tune record as JSON on stdout.")
 
     # The compare command is handled by engine.compare.main_compare (see main); listed here for --help.
@@ -508,13 +512,13 @@ def command_tune(args) -> int:
     words = ["python -m engine tune", "--bakes", *args.bakes, "--out", args.out]
     for flag, value in (("--base", args.base), ("--minutes", args.minutes), ("--iterations", args.iterations),
                         ("--hold-back", args.hold_back), ("--checkpoint-every", args.checkpoint_every),
-                        ("--lr", args.lr)):
+                        ("--lr", args.lr), ("--unroll", args.unroll)):
         if value is not None:
             words += [flag, str(value)]
     command = " ".join(words)
     record = tune(args.bakes, args.out, base=args.base, minutes=args.minutes, iterations=args.iterations,
                   hold_back=args.hold_back, checkpoint_every=args.checkpoint_every, command=command, log=_say,
-                  lr=args.lr)
+                  lr=args.lr, unroll=args.unroll)
     if args.json:
         _print_json(record)
     before, after = record["before"], record["after"]

@@ -64,13 +64,40 @@ class Shot:
         """Frame positions k usable as 'now' (k-2s and k+s exist, and frame k has particles)."""
         return [k for k in range(2 * stride, len(self.frames) - stride) if len(self.ids[k])]
 
-    def _lookup(self, k, ids):
-        """Index into frame k of each id (or -1)."""
+    def lookup(self, k, ids):
+        """Index into frame k of each id (or -1; all -1 for a frame position before the first)."""
+        if k < 0:
+            return np.full(len(ids), -1)
         frame_ids = self.ids[k]
         where = np.searchsorted(frame_ids, ids)
         where = np.clip(where, 0, max(len(frame_ids) - 1, 0))
         found = (len(frame_ids) > 0) & (frame_ids[where] == ids) if len(frame_ids) else np.zeros(len(ids), bool)
         return np.where(found, where, -1)
+
+    def gather(self, k, where, fallback):
+        """Positions of frame k at ``where`` (from ``lookup``), ``fallback`` where -1."""
+        found = where >= 0
+        if not found.any():
+            return fallback
+        return np.where(found[:, None], self.positions[k][np.maximum(where, 0)], fallback)
+
+    def history(self, k, stride=1):
+        """(positions, velocity, previous_velocity, has_previous) of frame position k, world units.
+
+        v_t = (x_t - x_{t-1}) / dt where the particle exists at t-1, else the cached velocity;
+        v_{t-1} = (x_{t-1} - x_{t-2}) / dt where it exists at t-2 and t-1, else v_t (also at
+        the first frames, where t-1 or t-2 is before the bake).
+        """
+        ids, x, v_cached = self.ids[k], self.positions[k], self.velocities[k]
+        s = stride
+        dt = self.dt * s
+        i1, i2 = self.lookup(k - s, ids), self.lookup(k - 2 * s, ids)
+        has1, has2 = i1 >= 0, i2 >= 0
+        x1 = self.gather(k - s, i1, x)
+        v = np.where(has1[:, None], (x - x1) / dt, v_cached)
+        x2 = self.gather(k - 2 * s, i2, x1)
+        v_prev = np.where((has1 & has2)[:, None], (x1 - x2) / dt, v)
+        return x, v, v_prev, has1
 
     def triple(self, k, stride=1):
         """Clean arrays for 'now' = frame position k and a step of ``stride`` frames (world units).
@@ -78,25 +105,12 @@ class Shot:
         Returns dict: positions (N, 3), velocity (N, 3), previous_velocity (N, 3),
         next_velocity (N, 3), has_target (N,) bool.
         """
-        ids, x, v_cached = self.ids[k], self.positions[k], self.velocities[k]
-        s = stride
-        dt = self.dt * s
-        i1, i2, i_next = self._lookup(k - s, ids), self._lookup(k - 2 * s, ids), self._lookup(k + s, ids)
-        has1, has2, has_next = i1 >= 0, i2 >= 0, i_next >= 0
-
-        def gather(j, where, found, fallback):
-            if not found.any():
-                return fallback
-            return np.where(found[:, None], self.positions[j][np.maximum(where, 0)], fallback)
-
-        x1 = gather(k - s, i1, has1, x)
-        v = np.where(has1[:, None], (x - x1) / dt, v_cached)
-        x2 = gather(k - 2 * s, i2, has2, x1)
-        v_prev = np.where((has1 & has2)[:, None], (x1 - x2) / dt, v)
-        x_next = gather(k + s, i_next, has_next, x)
-        v_next = (x_next - x) / dt
+        x, v, v_prev, has1 = self.history(k, stride)
+        i_next = self.lookup(k + stride, self.ids[k])
+        x_next = self.gather(k + stride, i_next, x)
+        v_next = (x_next - x) / (self.dt * stride)
         return {"positions": x, "velocity": v, "previous_velocity": v_prev, "next_velocity": v_next,
-                "has_target": has1 & has_next}
+                "has_target": has1 & (i_next >= 0)}
 
 
 def load_shots(data_dir, names=None):

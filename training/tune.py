@@ -1,6 +1,7 @@
 """Fine-tuning the preview on an artist's own reference bakes (``python -m engine tune``).
 
     python -m engine tune --bakes DIR [DIR ...] [--base MODEL] --out MODEL_DIR [--minutes M] [--iterations N]
+                          [--lr RATE] [--unroll M]
 
 Continues training a shipped model (default ``models/preview-gn4``) on DFSPH
 bakes the artist already has (ordinary cache folders with their ``scene/``
@@ -30,6 +31,13 @@ frame interval T. Reference bakes give frame-to-frame targets, so a bake
 is usable when one learned step spans one of its frames (T <= step_froude
 in sqrt(d/g)); otherwise the error says what frame rate to bake at.
 
+Loss (``--unroll``, default 8): with M > 0 the pushforward loss of training/pushforward.py: each sampled
+step k -> k + 1 starts from the state the model being trained reaches in m = 1..min(M, k) preview
+steps (no gradient) from the reference frame k - m, and its target lands the preview's integrator
+on the reference's frame k + 1; the card's figure is such a free rollout, which a one-step loss
+from the reference's own state never shows the network. With M = 0 the one-step loss of
+``training.train`` (velocity-walk noise). Both use ``train.train_step``.
+
 Normalisation statistics stay the base model's (the weights were trained
 against them). Resumable: ``checkpoint.pt`` (our own state dicts, loaded
 with ``weights_only=True``) is written every ``--checkpoint-every``
@@ -51,12 +59,14 @@ from engine.learned.contract import default_model_path
 
 from . import dataset
 
-#: lr: the shipped model ended its own training at 1e-4; Adam at 3e-4 on the few one-step samples of short
-#: bakes over-fitted them (two 12-frame demo bakes, 136 iterations: held-back one-step loss 0.154 -> 0.197,
-#: rollout Chamfer 0.634 -> 0.964 spacings), at 3e-5 it did not (0.154 -> 0.151; Chamfer 0.634 -> 0.691).
-#: Measured 2026-12-04, README "Fine-tuning".
-TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-5, "batch": 2, "noise": 0.02, "seed": 0, "hold_back": 0.25,
-                 "checkpoint_every": 50}  # fmt: skip
+#: Loss and lr, measured on two 12-frame bakes of one shot (viscosity 0.01 and 0.03), README "Fine-tuning":
+#: the pushforward loss (unroll 8) at lr 3e-4 lowered the held-back rollout Chamfer (0.629 -> 0.533 spacings
+#: in 210 iterations, 0.527 in 30 minutes), where the one-step loss made it worse at every rate tried
+#: (3e-4: 0.634 -> 0.964, over-fitting the few one-step samples; 3e-5: 0.634 -> 0.691). The one-step loss
+#: (--unroll 0) keeps its own default rate, ONE_STEP_LR.
+TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-4, "batch": 2, "noise": 0.02, "seed": 0, "hold_back": 0.25,
+                 "checkpoint_every": 50, "unroll": 8}  # fmt: skip
+ONE_STEP_LR = 3e-5
 
 
 def weights_from_onnx(onnx_path, latent, rounds):
@@ -142,9 +152,14 @@ def load_bakes(bakes, contract):
     return shots
 
 
+def held_back_start(shot, hold_back):
+    """Position of the first held-back frame: the last ``hold_back`` share of the frames, at least two."""
+    return len(shot.frames) - max(2, int(round(hold_back * len(shot.frames))))
+
+
 def split_frames(shot, hold_back):
     """(training 'now' positions, held-back frame numbers): targets stay before the held-back tail."""
-    keep = len(shot.frames) - max(2, int(round(hold_back * len(shot.frames))))
+    keep = held_back_start(shot, hold_back)
     training = [k for k in shot.sample_indices(1) if k + 1 < keep]
     return training, list(shot.frames[keep:])
 
@@ -176,7 +191,7 @@ def _evaluate(shots, held, onnx_path, out_dir, label):
 
 
 def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, checkpoint_every=None, seed=None,
-         command=None, log=print, lr=None):
+         command=None, log=print, lr=None, unroll=None):
     """Fine-tune ``base`` on ``bakes`` into the model folder ``out``; returns the tune record dict."""
     try:
         import torch
@@ -185,6 +200,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
 
         raise DependencyError("fine-tuning needs PyTorch, which is not installed; run "
                               "pip install -r requirements-train.txt (CPU build, about 200 MB)") from None  # fmt: skip
+    from .pushforward import preview_stepper, pushforward_pool, train_on_pushforward
     from .train import _normalised_sample, _save_torch, export, train_on_pool
 
     torch.set_num_threads(2)
@@ -196,14 +212,18 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     base_onnx = contract_module.find_model(base) if base is not None else default_model_path()
     base_contract, base_onnx = contract_module.load_contract(base_onnx)
     settings = dict(TUNE_DEFAULTS)
+    if unroll == 0 and lr is None:
+        settings["lr"] = ONE_STEP_LR
     for key, value in (("iterations", iterations), ("hold_back", hold_back), ("seed", seed),
-                       ("checkpoint_every", checkpoint_every), ("lr", lr)):  # fmt: skip
+                       ("checkpoint_every", checkpoint_every), ("lr", lr), ("unroll", unroll)):  # fmt: skip
         if value is not None:
             settings[key] = value
     if not 0.05 <= settings["hold_back"] <= 0.8:
         raise UsageError(f"--hold-back {settings['hold_back']}: give a share of frames from 0.05 to 0.8")
     if not 0 < settings["lr"] <= 0.1:
         raise UsageError(f"--lr {settings['lr']}: give a learning rate above 0 and at most 0.1")
+    if int(settings["unroll"]) != settings["unroll"] or settings["unroll"] < 0:
+        raise UsageError(f"--unroll {settings['unroll']}: give a whole number of frames >= 0 (0: one-step loss)")
     if int(settings["iterations"]) < 1:
         raise UsageError(f"--iterations {settings['iterations']}: give at least 1")
     shots = load_bakes(bakes, base_contract)
@@ -211,6 +231,8 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     for shot in shots:
         training, held[shot.name] = split_frames(shot, settings["hold_back"])
         pool += [(shot, k, 1) for k in training]
+    if settings["unroll"]:
+        pool = pushforward_pool(shots, {s.name: held_back_start(s, settings["hold_back"]) for s in shots})
     if not pool:
         raise UsageError("--bakes: no training frames left after holding back the tail; give longer bakes")
     c = base_contract
@@ -237,13 +259,14 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     model = weights_from_onnx(base_onnx, config["latent"], config["rounds"])
     rng = np.random.default_rng(settings["seed"])
     torch.manual_seed(settings["seed"])
-    probe_shot, probe_k, _ = pool[len(pool) // 2]
+    probe_shot, probe_k = pool[len(pool) // 2][:2]
     probe = _normalised_sample(probe_shot, probe_k, 1, config, stats, None, 0.0)[0]
     mismatch = check_against_onnx(model, base_onnx, config["rounds"], probe)
     if mismatch > 1e-4:
         raise ModelError(f"model file {base_onnx}: weights read back from the ONNX file differ from it by "
                          f"{mismatch:.3g} relative; it cannot be fine-tuned, retrain it with python -m training.train")
     optimiser = torch.optim.Adam(model.parameters(), lr=settings["lr"])
+    stepper = preview_stepper(model, base_onnx) if settings["unroll"] else None
     iteration, seconds_before, history = 0, 0.0, []
     if checkpoint_path.exists():
         payload = torch.load(checkpoint_path, weights_only=True)
@@ -272,7 +295,11 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         if minutes is not None and time.monotonic() - started > 60 * minutes:
             log(f"tune: time budget of {minutes} min reached at iteration {iteration}")
             break
-        loss, _ = train_on_pool(model, optimiser, pool, config, stats, rng, settings["batch"], settings["noise"])
+        if stepper is not None:
+            loss, _ = train_on_pushforward(model, optimiser, pool, stepper, config, stats, rng, settings["batch"],
+                                           int(settings["unroll"]))  # fmt: skip
+        else:
+            loss, _ = train_on_pool(model, optimiser, pool, config, stats, rng, settings["batch"], settings["noise"])
         iteration += 1
         if loss is None:
             continue
@@ -330,6 +357,16 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     return record
 
 
+def loss_text(settings):
+    """One sentence naming the training loss of a tune run, for the card."""
+    if settings.get("unroll"):
+        return (f"pushforward (training/pushforward.py): each step trained from the state the model itself "
+                f"reached in 1..{settings['unroll']} preview steps from a reference frame, target landing on the "
+                f"reference's next frame; lr {settings['lr']:g}.")  # fmt: skip
+    return (f"one step ahead from the reference's own state, velocity-walk noise {settings['noise']:g} "
+            f"sqrt(g d); lr {settings['lr']:g}.")  # fmt: skip
+
+
 def write_card(name, record):
     """The model card (Markdown) of a fine-tuned model: data, command, time, before/after."""
     def show(value, digits=3):
@@ -344,6 +381,7 @@ def write_card(name, record):
         f"- **Command:** `{record['command']}`",
         f"- **Export check:** onnxruntime against PyTorch, max relative error "
         f"{record['export_check']['max_relative_error']:.2g} (limit 1e-4).",
+        f"- **Loss:** {loss_text(record['settings'])}",
         "- **Data:** the reference (DFSPH) bakes below; the last frames of each were held back and never "
         "used as a training target.",
         "",
