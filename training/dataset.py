@@ -24,6 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
+from engine.boundary import BoundaryParticles
 from engine.cache import open_cache
 from engine.errors import SplashdraftError
 from engine.learned import features
@@ -53,18 +54,18 @@ class Shot:
         self.is_static = all(c.motion == "static" for c in self.scene.colliders)
         self._boundary = None
 
-    def boundary(self, k):
+    def boundary(self, k) -> BoundaryParticles:
         if self.is_static:
             if self._boundary is None:
                 self._boundary = self.world.boundary_at(0.0)
             return self._boundary
         return self.world.boundary_at(self.times[k])
 
-    def sample_indices(self, stride=1):
+    def sample_indices(self, stride=1) -> list[int]:
         """Frame positions k usable as 'now' (k-2s and k+s exist, and frame k has particles)."""
         return [k for k in range(2 * stride, len(self.frames) - stride) if len(self.ids[k])]
 
-    def lookup(self, k, ids):
+    def lookup(self, k, ids) -> np.ndarray:
         """Index into frame k of each id (or -1; all -1 for a frame position before the first)."""
         if k < 0:
             return np.full(len(ids), -1)
@@ -74,14 +75,14 @@ class Shot:
         found = (len(frame_ids) > 0) & (frame_ids[where] == ids) if len(frame_ids) else np.zeros(len(ids), bool)
         return np.where(found, where, -1)
 
-    def gather(self, k, where, fallback):
+    def gather(self, k, where, fallback) -> np.ndarray:
         """Positions of frame k at ``where`` (from ``lookup``), ``fallback`` where -1."""
         found = where >= 0
         if not found.any():
             return fallback
         return np.where(found[:, None], self.positions[k][np.maximum(where, 0)], fallback)
 
-    def history(self, k, stride=1):
+    def history(self, k, stride=1) -> tuple:
         """(positions, velocity, previous_velocity, has_previous) of frame position k, world units.
 
         v_t = (x_t - x_{t-1}) / dt where the particle exists at t-1, else the cached velocity;
@@ -99,7 +100,7 @@ class Shot:
         v_prev = np.where((has1 & has2)[:, None], (x1 - x2) / dt, v)
         return x, v, v_prev, has1
 
-    def triple(self, k, stride=1):
+    def triple(self, k, stride=1) -> dict:
         """Clean arrays for 'now' = frame position k and a step of ``stride`` frames (world units).
 
         Returns dict: positions (N, 3), velocity (N, 3), previous_velocity (N, 3),
@@ -113,7 +114,7 @@ class Shot:
                 "has_target": has1 & (i_next >= 0)}
 
 
-def load_shots(data_dir, names=None):
+def load_shots(data_dir, names=None) -> tuple[dict, list]:
     """Load the complete (or partially baked) shots listed in ``data_dir/data_manifest.json``."""
     data_dir = Path(data_dir)
     manifest_path = data_dir / "data_manifest.json"
@@ -134,7 +135,7 @@ def load_shots(data_dir, names=None):
     return manifest, shots
 
 
-def make_sample(shot, k, contract_like, rng=None, noise_std=0.0, stride=1):
+def make_sample(shot, k, contract_like, rng=None, noise_std=0.0, stride=1) -> tuple:
     """Core inputs (unnormalised Graph) and target for one frame, with optional noise.
 
     Args:
@@ -166,7 +167,7 @@ def make_sample(shot, k, contract_like, rng=None, noise_std=0.0, stride=1):
     return graph, target, arrays["has_target"]
 
 
-def batch_inputs(samples):
+def batch_inputs(samples) -> tuple[dict, np.ndarray, np.ndarray]:
     """Concatenate several (normalised inputs, target, mask) samples into one disjoint graph."""
     keys = ("node_features", "neighbour_index", "neighbour_mask", "edge_features", "boundary_rows", "boundary_slot",
             "boundary_features", "boundary_mask")
@@ -198,9 +199,9 @@ def batch_inputs(samples):
     return merged, target, mask
 
 
-def feature_statistics(graphs_and_targets):
+def feature_statistics(graphs_and_targets) -> dict:
     """Per-column mean and std of node, edge (masked), boundary (masked) features and of the target (masked)."""
-    def stats(values):
+    def stats(values) -> tuple[np.ndarray, np.ndarray]:
         values = np.asarray(values, np.float64)
         if len(values) == 0:
             return np.zeros(values.shape[-1]), np.ones(values.shape[-1])

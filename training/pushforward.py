@@ -38,7 +38,7 @@ class TorchCore:
     def __init__(self, model):
         self.model = model
 
-    def run(self, inputs, positions=None, cell=None):
+    def run(self, inputs, positions=None, cell=None) -> np.ndarray:
         import torch
 
         from .model import as_tensors
@@ -49,14 +49,14 @@ class TorchCore:
             return self.model(*as_tensors(inputs)).numpy()
 
 
-def preview_stepper(model, onnx_path):
+def preview_stepper(model, onnx_path) -> LearnedSolver:
     """A ``LearnedSolver`` of the contract at ``onnx_path`` whose core is the PyTorch ``model``."""
     solver = LearnedSolver(model=onnx_path)
     solver.runner = TorchCore(model)
     return solver
 
 
-def true_state(shot, j, stepper=None):
+def true_state(shot, j, stepper=None) -> State:
     """The reference frame at position j of ``shot`` as a preview State (velocity history from the frames).
 
     The shot's first frame at t = 0 is the scene's initial state, and with a ``stepper`` it is taken
@@ -76,7 +76,7 @@ def true_state(shot, j, stepper=None):
                  particle_arrays={PREVIOUS_VELOCITY: previous.copy()}, scalars=scalars)  # fmt: skip
 
 
-def push(stepper, shot, j, k):
+def push(stepper, shot, j, k) -> State:
     """The preview's state at frame position k, rolled from the reference's frame j (k >= j)."""
     state = true_state(shot, j, stepper)
     for position in range(j + 1, k + 1):
@@ -84,7 +84,7 @@ def push(stepper, shot, j, k):
     return state
 
 
-def pushforward_sample(stepper, shot, j, k, config):
+def pushforward_sample(stepper, shot, j, k, config) -> tuple:
     """(Graph, target (N, 3) float32, mask (N,) bool, pushed State) for the step k -> k + 1 pushed from j.
 
     The target is in the core's unnormalised output units (``features.target_from_accelerations``);
@@ -107,7 +107,7 @@ def pushforward_sample(stepper, shot, j, k, config):
     return graph, target, mask, state
 
 
-def normalised_pushforward_sample(stepper, shot, j, k, config, stats):
+def normalised_pushforward_sample(stepper, shot, j, k, config, stats) -> tuple:
     """``pushforward_sample`` normalised with ``stats`` as the training step takes it: (inputs, target, mask)."""
     graph, target, mask, _ = pushforward_sample(stepper, shot, j, k, config)
     inputs = features.normalise(graph, stats)
@@ -116,12 +116,12 @@ def normalised_pushforward_sample(stepper, shot, j, k, config, stats):
 
 
 
-def pushforward_pool(shots, keep):
+def pushforward_pool(shots, keep) -> list:
     """[(shot, k)] of the steps k -> k + 1 with k + 1 before ``keep[shot.name]`` (the held-back tail)."""
     return [(shot, k) for shot in shots for k in range(0, keep[shot.name] - 1) if len(shot.ids[k])]
 
 
-def train_on_pushforward(model, optimiser, pool, stepper, config, stats, rng, batch, unroll):
+def train_on_pushforward(model, optimiser, pool, stepper, config, stats, rng, batch, unroll) -> tuple:
     """Pick ``batch`` (shot, k) entries of ``pool`` at random (with replacement), push each from the
     reference frame k - m (m uniform in 1..min(unroll, k); the first step, k = 0, from the initial
     state itself) and take one ``train.train_step`` on the pushed samples. Returns (the loss or

@@ -69,7 +69,7 @@ TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-4, "batch": 2, "noise": 0.02, "seed
 ONE_STEP_LR = 3e-5
 
 
-def weights_from_onnx(onnx_path, latent, rounds):
+def weights_from_onnx(onnx_path, latent, rounds) -> "torch.nn.Module":
     """A GraphCore (training/model.py) holding the weights of an exported ONNX core.
 
     Named initialisers map one to one; the bias-free and post-sum linear layers were exported as
@@ -105,7 +105,7 @@ def weights_from_onnx(onnx_path, latent, rounds):
     return model
 
 
-def check_against_onnx(model, onnx_path, rounds, sample_inputs):
+def check_against_onnx(model, onnx_path, rounds, sample_inputs) -> float:
     """Max relative difference of PyTorch ``model`` against onnxruntime on ``sample_inputs``."""
     import torch
 
@@ -121,7 +121,7 @@ def check_against_onnx(model, onnx_path, rounds, sample_inputs):
     return float(np.abs(output - reference).max() / max(np.abs(reference).max(), 1e-12))
 
 
-def load_bakes(bakes, contract):
+def load_bakes(bakes, contract) -> list:
     """[Shot] of the reference bakes; UsageError naming a bake that cannot serve."""
     shots = []
     for folder in bakes:
@@ -152,12 +152,12 @@ def load_bakes(bakes, contract):
     return shots
 
 
-def held_back_start(shot, hold_back):
+def held_back_start(shot, hold_back) -> int:
     """Position of the first held-back frame: the last ``hold_back`` share of the frames, at least two."""
     return len(shot.frames) - max(2, int(round(hold_back * len(shot.frames))))
 
 
-def split_frames(shot, hold_back):
+def split_frames(shot, hold_back) -> tuple[list, list]:
     """(training 'now' positions, held-back frame numbers): targets stay before the held-back tail."""
     keep = held_back_start(shot, hold_back)
     training = [k for k in shot.sample_indices(1) if k + 1 < keep]
@@ -191,7 +191,7 @@ def _evaluate(shots, held, onnx_path, out_dir, label):
 
 
 def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, checkpoint_every=None, seed=None,
-         command=None, log=print, lr=None, unroll=None):
+         command=None, log=print, lr=None, unroll=None) -> dict:
     """Fine-tune ``base`` on ``bakes`` into the model folder ``out``; returns the tune record dict."""
     try:
         import torch
@@ -281,7 +281,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         log(f"tune: resumed at iteration {iteration}")
     started = time.monotonic()
 
-    def save():
+    def save() -> None:
         _save_torch(checkpoint_path, {
             "model": model.state_dict(), "optimiser": optimiser.state_dict(), "iteration": iteration,
             "seconds": seconds_before + time.monotonic() - started, "history": json.dumps(history),
@@ -331,7 +331,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     before = _evaluate(shots, held, base_onnx, out / "evaluation", "base")
     after = _evaluate(shots, held, final_onnx, out / "evaluation", "tuned")
 
-    def mean(rows, key):
+    def mean(rows, key) -> "float | None":
         values = [r[key] for r in rows if r[key] is not None]
         return float(np.mean(values)) if values else None
 
@@ -357,7 +357,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     return record
 
 
-def loss_text(settings):
+def loss_text(settings) -> str:
     """One sentence naming the training loss of a tune run, for the card."""
     if settings.get("unroll"):
         return (f"pushforward (training/pushforward.py): each step trained from the state the model itself "
@@ -367,9 +367,9 @@ def loss_text(settings):
             f"sqrt(g d); lr {settings['lr']:g}.")  # fmt: skip
 
 
-def write_card(name, record):
+def write_card(name, record) -> str:
     """The model card (Markdown) of a fine-tuned model: data, command, time, before/after."""
-    def show(value, digits=3):
+    def show(value, digits=3) -> str:
         return "-" if value is None else f"{value:.{digits}f}"
 
     lines = [
@@ -414,7 +414,7 @@ def write_card(name, record):
     return "\n".join(lines)
 
 
-def main(argv=None):
+def main(argv=None) -> int:
     from engine.cli import main as engine_main
 
     return engine_main(["tune", *(sys.argv[1:] if argv is None else argv)])
