@@ -34,6 +34,10 @@ def reference_bake(tmp_path_factory):
     return scene, folder / "reference"
 
 
+def scene_viscosity(scene_path):
+    return float(json.loads(Path(scene_path).read_text())["fluid"]["viscosity"])
+
+
 def test_weights_read_back_from_the_shipped_onnx_reproduce_it():
     torch = pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
     from engine.learned.runtime import random_inputs
@@ -57,6 +61,8 @@ def test_tune_writes_a_model_that_passes_its_contract_and_bakes(reference_bake, 
     contract, onnx_path = load_contract(out / "shot-tuned.json")
     assert onnx_path == out / "shot-tuned.onnx" and contract["name"] == "shot-tuned"
     assert contract["training"]["base_model"] == "preview-gn4" and contract["training"]["iterations"] == 6
+    # The trained viscosity range covers the base's (0.02, the scene default it was trained at) and the bake's.
+    assert contract["training"]["viscosity_range"] == [min(0.02, scene_viscosity(scene)), max(0.02, scene_viscosity(scene))]
     assert find_model(out) == onnx_path
     assert record["export_check"]["passed"] and record["iterations"] == 6
     assert record["is_better"] == (record["after"]["mean_chamfer_spacings"] < record["before"]["mean_chamfer_spacings"])

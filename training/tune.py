@@ -318,7 +318,8 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     training_info = {"kind": "fine-tune (python -m engine tune)", "base_model": c["name"],
                      "base_sha256": c["onnx_sha256"], "data": data_record, "iterations": iteration,
                      "training_seconds": round(train_seconds, 1), "settings": settings,
-                     "command": command or "", "normalisation": "the base model's statistics"}  # fmt: skip
+                     "command": command or "", "normalisation": "the base model's statistics",
+                     **trained_ranges(c.get("training", {}), shots)}  # fmt: skip
     train_config = dict(config)
     onnx_path, check = export(model, run, name, probe, train_config, stats, training_info)
     final_onnx = out / f"{name}.onnx"
@@ -355,6 +356,23 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     write_atomic(out / "tune.json", (json.dumps(record, indent=1) + "\n").encode())
     write_atomic(out / f"{name}.md", write_card(name, record).encode())
     return record
+
+
+def trained_ranges(base_training, shots) -> dict:
+    """The input ranges a tuned model was trained on: the base model's, widened by the bakes'.
+
+    ``viscosity_range`` covers the base's record (0.02 when it has none, the scene default it was
+    trained at) and every bake's ``fluid.viscosity``; ``speed_range_froude`` (the fastest particle in
+    sqrt(g d)) is given only when the base records one, since the base's own data are not at hand.
+    """
+    from .train import fastest_froude
+
+    low, high = base_training.get("viscosity_range") or (0.02, 0.02)
+    viscosities = [float(s.scene.fluid.viscosity) for s in shots]
+    ranges = {"viscosity_range": [min([float(low)] + viscosities), max([float(high)] + viscosities)]}
+    if base_training.get("speed_range_froude"):
+        ranges["speed_range_froude"] = [0.0, max(float(base_training["speed_range_froude"][1]), fastest_froude(shots))]
+    return ranges
 
 
 def loss_text(settings) -> str:
