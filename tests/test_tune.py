@@ -35,7 +35,9 @@ def reference_bake(tmp_path_factory):
 
 
 def scene_viscosity(scene_path):
-    return float(json.loads(Path(scene_path).read_text())["fluid"]["viscosity"])
+    from engine.scene import load_scene
+
+    return float(load_scene(scene_path).fluid.viscosity)
 
 
 def test_weights_read_back_from_the_shipped_onnx_reproduce_it():
