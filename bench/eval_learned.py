@@ -1,6 +1,6 @@
 """Evaluate the shipped learned preview on the held-out shots and the demo shot (not a timed test).
 
-    python -m bench.eval_learned [--heldout data/heldout] [--model models/preview-gn4.onnx]
+    python -m bench.eval_learned [--heldout data/heldout] [--model models/preview-gn7.onnx]
                                  [--seconds 10] [--fidelity-seconds 2] [--demo-preset small|full|none]
                                  [--splash-shots dam_column throw_wall ... | --splash-shots]
                                  [--relax-iterations N] [--shots ring stairs ...]

@@ -3,7 +3,7 @@
     nice .venv/bin/python -m bench.fused_core_estimate [--sizes 20000 50000] [--repeats 4]
 
 Needs the ``onnx`` package (installed with requirements-train.txt). It rewrites the shipped core
-(``models/preview-gn4.onnx``, weights unchanged) into a temporary graph whose fluid edge term is
+(the shipped model, weights unchanged) into a temporary graph whose fluid edge term is
 built from node-level products, and times both on the same real graph (a resting block in a tank
 after two learned steps, as bench/profile_learned.py):
 

@@ -597,7 +597,7 @@ def test_a_viscosity_the_model_was_not_trained_on_is_a_named_warning_in_the_mani
 def test_liquid_that_starts_faster_than_the_training_bakes_is_a_named_warning(tmp_path):
     """A model whose contract records the fastest particle of its training data (in sqrt(g d)) names
     a shot whose fill or stream starts faster; a slower shot, or a model without the record (the
-    shipped preview-gn4), gets none. The speed is |v| of the fill velocity (vector norm)."""
+    shipped preview model), gets none. The speed is |v| of the fill velocity (vector norm)."""
     import json as _json
 
     from engine.demo import write_demo_scene

@@ -18,7 +18,7 @@ import pytest
 
 from engine.bake import bake
 from engine.cli import main
-from engine.learned.contract import find_model, load_contract
+from engine.learned.contract import DEFAULT_MODEL_NAME, find_model, load_contract
 from engine.errors import ModelError
 
 from tests.test_bake import write_tiny_scene
@@ -62,7 +62,7 @@ def test_tune_writes_a_model_that_passes_its_contract_and_bakes(reference_bake, 
     record = json.loads(capsys.readouterr().out)
     contract, onnx_path = load_contract(out / "shot-tuned.json")
     assert onnx_path == out / "shot-tuned.onnx" and contract["name"] == "shot-tuned"
-    assert contract["training"]["base_model"] == "preview-gn4" and contract["training"]["iterations"] == 6
+    assert contract["training"]["base_model"] == DEFAULT_MODEL_NAME and contract["training"]["iterations"] == 6
     # The trained viscosity range covers the base's (0.02, the scene default it was trained at) and the bake's.
     assert contract["training"]["viscosity_range"] == [min(0.02, scene_viscosity(scene)), max(0.02, scene_viscosity(scene))]
     assert find_model(out) == onnx_path

@@ -450,7 +450,7 @@ def main(argv=None) -> int:
     parser.add_argument("--batch", type=int, help=f"Frames per iteration (default {DEFAULTS['batch']}).")
     parser.add_argument("--seed", type=int, help=f"Seed (default {DEFAULTS['seed']}).")
     parser.add_argument("--checkpoint-every", type=int, help=f"Iterations between checkpoints (default {DEFAULTS['checkpoint_every']}).")
-    parser.add_argument("--export", dest="export_to", help="Also copy the model + contract to this path stem, e.g. models/preview-gn4.")
+    parser.add_argument("--export", dest="export_to", help="Also copy the model + contract to this path stem, e.g. models/preview-gn8.")
     args = parser.parse_args(argv)
     overrides = {k: getattr(args, k) for k in ("iterations", "latent", "rounds", "noise", "lr", "batch", "seed",
                                                "radius_spacings", "density_support_spacings", "max_neighbours",

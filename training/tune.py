@@ -3,7 +3,7 @@
     python -m engine tune --bakes DIR [DIR ...] [--base MODEL] --out MODEL_DIR [--minutes M] [--iterations N]
                           [--lr RATE] [--unroll M]
 
-Continues training a shipped model (default ``models/preview-gn4``) on DFSPH
+Continues training a shipped model (default: the shipped model, ``models/preview-gn7``) on DFSPH
 bakes the artist already has (ordinary cache folders with their ``scene/``
 copy), and writes a new model folder:
 

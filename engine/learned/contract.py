@@ -32,7 +32,7 @@ from ..inputs import finite_number, read_json, safe_name, whole_number
 from . import features
 
 #: The shipped model (beside its contract models/<name>.json and card models/<name>.md).
-DEFAULT_MODEL_NAME = "preview-gn4"
+DEFAULT_MODEL_NAME = "preview-gn7"
 
 #: The folder above engine/; in a checkout or the Blender extension it holds blender_manifest.toml and models/.
 _SOURCE_ROOT = Path(__file__).resolve().parents[2]
@@ -279,5 +279,5 @@ def shipped_models_dir() -> Path:
 
 
 def default_model_path() -> Path:
-    """Path of the shipped model's .onnx file (``shipped_models_dir() / "preview-gn4.onnx"``)."""
+    """Path of the shipped model's .onnx file (``shipped_models_dir() / "preview-gn7.onnx"``)."""
     return shipped_models_dir() / f"{DEFAULT_MODEL_NAME}.onnx"

@@ -50,7 +50,7 @@ from scipy.spatial import cKDTree
 
 from ..errors import ModelError, SolverError
 from . import features
-from .contract import default_model_path, load_contract
+from .contract import DEFAULT_MODEL_NAME, default_model_path, load_contract
 from .relax import relax_density
 from .viscosity import reference_substeps, smooth_velocities, smoothing_plan
 from .runtime import DEFAULT_TILE_PARTICLES, CoreRunner
@@ -105,7 +105,7 @@ class LearnedSolver:
     Args:
         scene: accepted for the bake loop's uniform construction; unused.
         model: path of the .onnx model (its .json contract beside it); default
-            ``models/preview-gn4.onnx``.
+            ``models/preview-gn7.onnx``.
         threads: onnxruntime intra-op threads (2 measured best here).
         tile_particles: run the core in tiles of this many receivers (None, the default:
             tiles sized by ``runtime.MAX_CALL_SLOTS`` and ``TILE_RECEIVER_SLOTS``; 0: never tile).
@@ -128,8 +128,9 @@ class LearnedSolver:
             if not contract_beside.exists():
                 raise ModelError(
                     f"model file {self.model_path}: not found; the learned preview needs the shipped model "
-                    "(models/preview-gn4.onnx and .json) -- restore it from the repository, pass another model, "
-                    "or retrain with `python -m training.train` (see models/preview-gn4.md)"
+                    f"(models/{DEFAULT_MODEL_NAME}.onnx and .json) -- restore it from the repository, pass another "
+                    "model, or make one with `python -m training.train` or `python -m engine tune` "
+                    f"(models/{DEFAULT_MODEL_NAME}.md)"
                 )
         self.contract, self.onnx_path = load_contract(self.model_path)
         self.stats = self.contract["normalisation"]

@@ -5,8 +5,9 @@
 The file pins the learned preview's output so that speed work can be checked against the code
 it replaced (tests/test_learned.py, ``test_learned_steps_match_the_stored_output_of_the_code_before_the_speed_work``).
 ``rollout`` runs with whichever engine is importable: this script runs it inside ``--checkout``
-(its own engine), and the test runs it with the engine under test. The stored file came from
-commit 80d606c (main before the speed work of issue 11, item 4).
+(its own engine), and the test runs it with the engine under test. The first file came from
+commit 80d606c (main before the speed work of issue 11, item 4) with preview-gn4; it was made again
+for preview-gn7 when that model was shipped (2026-12-04), with the code the gn4 file had just passed on.
 
 The start is a block of water whose lattice positions are jittered by up to 0.15 spacings
 (seeded), so that no neighbour pair sits at the model's radius: on an exact lattice many pairs
