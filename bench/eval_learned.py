@@ -24,6 +24,10 @@ references are baked here into ``--out`` and kept when complete):
   slope of the model's one-step acceleration against the reference's, from reference frames
   (1.0 is unbiased; below 1 the preview under-predicts and runs slow), and the reverse slope
   (near 1 when the model predicts the mean of what it cannot resolve, above 1 when it is scaled down);
+- viscosity response (``--viscosity-shots``): each shot baked for ``--viscosity-seconds`` by both
+  solvers at its own viscosity and at the reference's highest setting (``VISCOSITY_MAX``); the
+  change of the kinetic energy at the last frame, preview against reference (the issue's target:
+  the same sign, and at least half the reference's change);
 - stability to ``--seconds``: the learned bake must finish with finite values;
   reported are the particle count, the max speed in sqrt(g d) over the last second
   and the kinetic energy at the end relative to its maximum in the first second
@@ -66,6 +70,12 @@ DEFAULT_SPLASH_SHOTS = ("dam_column", "throw_wall", "thin_glass", "ring_dam", "p
 #: Shots whose liquid surges along +x, and the floor height the front is measured on (None: the
 #: leading row at any height, for the stairs, whose floor steps down).
 SURGE_FLOORS = {"dam_column": 0.0, "ring_dam": 0.0, "heldout_stairs": None}
+
+#: The highest ``fluid.viscosity`` the scene format accepts (engine.scene ``_fluid``), which both solvers honour.
+VISCOSITY_MAX = 1.0
+
+#: Splash-suite shots whose viscosity response is measured by default: the same as ``DEFAULT_SPLASH_SHOTS``.
+DEFAULT_VISCOSITY_SHOTS = DEFAULT_SPLASH_SHOTS
 
 
 def stability(cache_dir, seconds_total):
@@ -274,6 +284,59 @@ def evaluate_splash(name, out, model, seconds, fidelity_seconds, log, relax_iter
                          relax_iterations)
 
 
+def _energy_at_end(cache_dir):
+    """(time s, kinetic energy J) of the last frame of the bake in ``cache_dir``."""
+    reader = open_cache(cache_dir)
+    last = reader.frames[-1]
+    data = reader.read_frame(last)
+    mass = reader.manifest["rest_density"] * reader.manifest["particle_spacing"] ** 3
+    return reader.manifest["frames"][str(last)]["time"], kinetic_energy(data["velocities"], mass)
+
+
+def viscosity_response(name, out, model, seconds=1.0, high=VISCOSITY_MAX, log=None) -> dict:
+    """Kinetic energy at ``seconds`` of splash shot ``name`` at its own viscosity and at ``high``,
+    baked by the reference and by the preview (bakes kept under ``out/viscosity_<name>``).
+
+    Returns a row: both energies per solver, the changes high - low (J) and the preview's change
+    over the reference's (``learned_over_reference_change``; the issue's target is >= 0.5).
+    """
+    from bench.splash_shots import shot
+    from engine.scene import save_scene
+    from engine.solvers import make_solver
+
+    base = shot(name, seconds=seconds)
+    low = float(base["fluid"]["viscosity"])
+    row = {"shot": name, "viscosity_low": low, "viscosity_high": float(high)}
+    for solver_name in ("sph", "learned"):
+        for label, viscosity in (("low", low), ("high", float(high))):
+            scene = Path(out) / f"viscosity_{name}" / "scene" / f"{name}_{label}.json"
+            save_scene(scene, dict(base, fluid=dict(base["fluid"], viscosity=viscosity)))
+            folder = Path(out) / f"viscosity_{name}" / f"{solver_name}_{label}"
+            solver = make_solver("learned", model=model) if solver_name == "learned" and model else None
+            bake(scene, solver_name, folder, overwrite=True, use_signals=False, solver=solver)
+            row["seconds"], row[f"{solver_name}_energy_{label}_j"] = _energy_at_end(folder)
+        row[f"{solver_name}_change_j"] = row[f"{solver_name}_energy_high_j"] - row[f"{solver_name}_energy_low_j"]
+        row[f"{solver_name}_relative_change"] = _ratio(row[f"{solver_name}_change_j"], row[f"{solver_name}_energy_low_j"])
+    row["learned_over_reference_change"] = _ratio(row["learned_change_j"], row["sph_change_j"])
+    if log is not None:
+        log(json.dumps(row))
+    return row
+
+
+def format_viscosity_table(rows):
+    """The viscosity-response table: kinetic energy at the end, low and high viscosity, per solver."""
+    lines = [f"{'shot':<12} {'t s':>5} {'visc':>11} {'ref KE lo->hi J':>17} {'preview KE lo->hi J':>21} "
+             f"{'ref rel':>7} {'prev rel':>8} {'change ratio':>12}"]
+    for r in rows:
+        ratio = r["learned_over_reference_change"]
+        lines.append(f"{r['shot']:<12} {r['seconds']:>5.2f} {r['viscosity_low']:>5g}->{r['viscosity_high']:<4g} "
+                     f"{r['sph_energy_low_j']:>8.4f}->{r['sph_energy_high_j']:<8.4f} "
+                     f"{r['learned_energy_low_j']:>10.4f}->{r['learned_energy_high_j']:<10.4f} "
+                     f"{_cell(r['sph_relative_change'], '>7.2f')} {_cell(r['learned_relative_change'], '>8.2f')} "
+                     f"{'-' if ratio is None else format(ratio, '.2f'):>12}")
+    return "\n".join(lines)
+
+
 def evaluate_job(job):
     """One evaluation as a plain dict in, a row out: here, or as a Dask task on a worker."""
     options = (job["model"], job["seconds"], job["fidelity_seconds"], None, job["relax_iterations"])
@@ -339,6 +402,11 @@ def main(argv=None):
     parser.add_argument("--splash-shots", nargs="*", default=list(DEFAULT_SPLASH_SHOTS), choices=SHOTS,
                         help="Splash-suite shots to evaluate as well (default: " + " ".join(DEFAULT_SPLASH_SHOTS)
                         + "; give the option with no names for none).")
+    parser.add_argument("--viscosity-shots", nargs="*", default=list(DEFAULT_VISCOSITY_SHOTS), choices=SHOTS,
+                        help="Splash-suite shots whose kinetic energy is compared at their own viscosity and at "
+                        f"{VISCOSITY_MAX:g} (default: " + " ".join(DEFAULT_VISCOSITY_SHOTS) + "; no names: none).")
+    parser.add_argument("--viscosity-seconds", type=float, default=1.0,
+                        help="Simulated seconds of the viscosity-response bakes (1).")
     parser.add_argument("--relax-iterations", type=int, default=None,
                         help="Density relaxation iterations per learned step (default: the solver's default).")
     parser.add_argument("--shots", nargs="*", default=None,
@@ -384,10 +452,15 @@ def main(argv=None):
             rows.append(evaluate_job(job))
             log(json.dumps(rows[-1]))
     print(format_table(rows))
-    (out / "eval_learned.json").write_text(json.dumps({"rows": rows, "args": vars(args)}, indent=1) + "\n")
+    viscosity_rows = [viscosity_response(name, out, common["model"], args.viscosity_seconds, log=log)
+                      for name in args.viscosity_shots]
+    if viscosity_rows:
+        print(format_viscosity_table(viscosity_rows))
+    result = {"rows": rows, "viscosity_rows": viscosity_rows, "args": vars(args)}
+    (out / "eval_learned.json").write_text(json.dumps(result, indent=1) + "\n")
     results = ROOT / "bench" / "results"
     if out == (results / "eval").resolve():  # the default --out: also the benchmark's usual results file
-        (results / "eval_learned.json").write_text(json.dumps({"rows": rows, "args": vars(args)}, indent=1) + "\n")
+        (results / "eval_learned.json").write_text(json.dumps(result, indent=1) + "\n")
     return 0
 
 

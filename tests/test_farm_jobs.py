@@ -141,7 +141,7 @@ def test_heldout_evaluation_on_workers_equals_serial(tmp_path, capsys):
     _, manifest = _shots(heldout)
     assert [s["name"] for s in manifest["shots"]] == ["heldout_paddle", "heldout_ring", "heldout_stairs"]
     common = ["--heldout", str(heldout), "--seconds", str(DURATION), "--fidelity-seconds", str(DURATION),
-              "--demo-preset", "none", "--splash-shots", "--shots", "ring", "stairs"]  # fmt: skip
+              "--demo-preset", "none", "--splash-shots", "--viscosity-shots", "--shots", "ring", "stairs"]  # fmt: skip
     assert evaluate(common + ["--out", str(tmp_path / "serial")]) == 0
     assert evaluate(common + ["--out", str(tmp_path / "farm"), "--workers", "2"]) == 0
     capsys.readouterr()
