@@ -358,14 +358,16 @@ class LearnedSolver:
         return relaxed * d
 
     def frame_attributes(self, state, world) -> dict:
-        """``density`` (kg/m^3, SPH estimate) and ``pressure`` (Pa, equation-of-state estimate) per particle."""
+        """``density`` (kg/m^3, SPH estimate) and ``pressure`` (Pa, equation-of-state estimate) per particle,
+        and ``whitewater_neighbours``: the density's search (pairs and counts within H), which the bake
+        passes on to the white-water measures (``engine.bake.frame_whitewater``) so a frame searches once."""
         from ..measures import sph_density
 
         boundary = world.boundary_at(state.time)
-        density, _ = sph_density(state.positions, world.particle_spacing, world.rest_density,
-                                 boundary.positions, boundary.volumes)
+        density, counts, pairs = sph_density(state.positions, world.particle_spacing, world.rest_density,
+                                             boundary.positions, boundary.volumes, with_pairs=True)
         height = float(world.upper[2] - world.lower[2])
         g = float(np.linalg.norm(world.gravity))
         sound = 10.0 * np.sqrt(max(g * height, 1e-12))
         pressure = sound**2 * np.maximum(density - world.rest_density, 0.0)
-        return {"density": density, "pressure": pressure}
+        return {"density": density, "pressure": pressure, "whitewater_neighbours": (pairs, counts)}
