@@ -474,13 +474,18 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
 # The (rows, K, C) feature arrays are updated through (rows, K * C) views with per-column vectors
 # tiled K times: every numpy pass then runs over long contiguous rows. Broadcasting over the
 # C-wide last axis instead does the same arithmetic (bit for bit) about twice as slowly
-# (bench/profile_learned.py, DEVELOPERS.md "Learned stepper notes").
+# (bench/profile_learned.py, DEVELOPERS.md "Learned stepper notes"). Per-row operands are made
+# for ``ROW_CHUNK`` rows at a time, so the temporaries stay small (and in cache).
+ROW_CHUNK = 2048
 
 
 def _gathered_minus_own(table, index, own) -> np.ndarray:
     """(R, K, C) float32 ``table[index] - own[:, None]``; table (M, C), index (R, K), own (R, C)."""
     out = np.take(table, index, axis=0)
-    _flat(out)[...] -= np.tile(own, (1, index.shape[1]))
+    flat = _flat(out)
+    for start in range(0, len(flat), ROW_CHUNK):
+        rows = slice(start, start + ROW_CHUNK)
+        flat[rows] -= np.tile(own[rows], (1, index.shape[1]))
     return out
 
 
@@ -491,7 +496,10 @@ def _scale_columns(values, factors) -> None:
 
 def _mask_entries(values, mask) -> None:
     """values (R, K, C) *= mask (R, K) for every column, in place."""
-    _flat(values)[...] *= np.repeat(np.asarray(mask, values.dtype), values.shape[2], axis=1)
+    flat, mask = _flat(values), np.asarray(mask, values.dtype)
+    for start in range(0, len(flat), ROW_CHUNK):
+        rows = slice(start, start + ROW_CHUNK)
+        flat[rows] *= np.repeat(mask[rows], values.shape[2], axis=1)
 
 
 def _flat(values) -> np.ndarray:
