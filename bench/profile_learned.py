@@ -13,7 +13,8 @@
    - network: onnxruntime's ``run`` calls;
    - tiling: ``CoreRunner.run`` outside onnxruntime (halo search, subgraph copies); the halo's
      recomputation itself is inside "network" -- compare the untiled and tiled sizes;
-   - relaxation: ``relax_density`` (and ``symmetric_table``);
+   - relaxation: ``relax_density`` (and ``symmetric_table``); CPU of all its row-block threads
+     (``threads``), so its wall time is lower than this on a free second core;
    - boundary: ``World.boundary_at``, ``enforce_bounds`` and ``emit``;
    - other: the rest of ``advance`` (Python per-call overhead, state updates, health checks).
    The fastest of ``--repeats`` runs of ``--steps`` steps is kept; particle-steps per second

@@ -484,19 +484,24 @@ def _solver_record(stats):
     return {name: _json_ready(getattr(stats, name)) for name in names if hasattr(stats, name)}
 
 
-def frame_whitewater(state, world) -> dict:
-    """Zone and white-water potentials of a state's particles (``engine.whitewater``), any solver."""
+def frame_whitewater(state, world, neighbours=None) -> dict:
+    """Zone and white-water potentials of a state's particles (``engine.whitewater``), any solver.
+
+    ``neighbours``: optional (pairs, counts) within H at the state's positions, with the boundary
+    of ``world.boundary_at(state.time)``, found already (``whitewater``'s argument)."""
     from .whitewater import ATTRIBUTES, whitewater
 
     boundary = world.boundary_at(state.time).positions if hasattr(world, "boundary_at") else None
-    result = whitewater(state.positions, state.velocities, world.particle_spacing, boundary)
+    result = whitewater(state.positions, state.velocities, world.particle_spacing, boundary, neighbours)
     return {name: result[name] for name in ATTRIBUTES}
 
 
 def _write(writer, solver, world, state, frame, substeps, seconds, stats=None):
     """Write one frame's PLY + manifest entry, then the checkpoint (in that order; see ``engine.cache``).
 
-    Every frame also carries the white-water attributes (``frame_whitewater``), whatever the solver.
+    Every frame also carries the white-water attributes (``frame_whitewater``), whatever the solver;
+    a solver whose ``frame_attributes`` also returns ``whitewater_neighbours`` (its own search at the
+    frame's positions, see ``frame_whitewater``) saves the white-water search.
 
     The manifest entry carries the energy audit (``engine.energy.frame_audit``) and the
     solver's counts for the frame; the state's over-energy flags are updated first, so
@@ -512,7 +517,7 @@ def _write(writer, solver, world, state, frame, substeps, seconds, stats=None):
         "density": attributes["density"],
         "pressure": attributes["pressure"],
     }
-    arrays.update(frame_whitewater(state, world))
+    arrays.update(frame_whitewater(state, world, attributes.get("whitewater_neighbours")))
     extra = {"energy": energy.frame_audit(state, world, top), "solver": _solver_record(stats)}
     writer.write_frame(frame, arrays, time=state.time, substeps=substeps, seconds=seconds, extra=extra)
     writer.write_checkpoint(state, frame)

@@ -72,7 +72,7 @@ def clamp_potential(values, low, high) -> np.ndarray:
     return (np.minimum(values, high) - np.minimum(values, low)) / (high - low)
 
 
-def whitewater(positions, velocities, particle_spacing, boundary_positions=None) -> dict:
+def whitewater(positions, velocities, particle_spacing, boundary_positions=None, neighbours=None) -> dict:
     """Zone and white-water potentials of each particle (see the module docstring).
 
     Args:
@@ -80,6 +80,11 @@ def whitewater(positions, velocities, particle_spacing, boundary_positions=None)
         particle_spacing: d in m (> 0).
         boundary_positions: optional (B, 3) wall and collider particles, m; they count towards the
             interior test only.
+        neighbours: optional (pairs, counts) already found at these positions, as
+            ``engine.measures.sph_density(..., with_pairs=True)`` returns them: the fluid pairs
+            within H ((P, 2) int, i < j) and each particle's fluid + boundary neighbours within H
+            ((N,) int, of ``boundary_positions``). Saves this function's own search; the result
+            is the same.
 
     Returns:
         dict of (N,) arrays: ``zone`` int8, ``trapped_air``, ``wave_crest``, ``foam`` float32,
@@ -96,14 +101,19 @@ def whitewater(positions, velocities, particle_spacing, boundary_positions=None)
                 "raw_trapped_air": np.zeros(0), "raw_wave_crest": np.zeros(0), "raw_kinetic": np.zeros(0)}
     unit = np.sqrt(STANDARD_GRAVITY * d)
     v = v / unit
-    tree = cKDTree(x)
-    pairs = tree.query_pairs(support * (1 - 1e-12), output_type="ndarray")
+    if neighbours is None:
+        pairs = cKDTree(x).query_pairs(support * (1 - 1e-12), output_type="ndarray")
+    else:
+        pairs = np.asarray(neighbours[0]).reshape(-1, 2)
     i, j = pairs[:, 0], pairs[:, 1]
     fluid_count = np.bincount(i, minlength=n) + np.bincount(j, minlength=n)
-    count = fluid_count.copy()
-    if boundary_positions is not None and len(boundary_positions):
-        boundary = cKDTree(np.asarray(boundary_positions, np.float64).reshape(-1, 3))
-        count += boundary.query_ball_point(x, support * (1 - 1e-12), return_length=True)
+    if neighbours is not None:
+        count = np.asarray(neighbours[1])
+    else:
+        count = fluid_count.copy()
+        if boundary_positions is not None and len(boundary_positions):
+            boundary = cKDTree(np.asarray(boundary_positions, np.float64).reshape(-1, 3))
+            count += boundary.query_ball_point(x, support * (1 - 1e-12), return_length=True)
     zone = np.full(n, ZONE_SURFACE, np.int8)
     zone[count >= INTERIOR_NEIGHBOURS] = ZONE_INTERIOR
     zone[fluid_count < SPRAY_NEIGHBOURS] = ZONE_SPRAY

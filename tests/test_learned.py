@@ -403,14 +403,15 @@ def lattice(n, spacing=1.0):
     return np.stack(np.meshgrid(*[np.arange(n)] * 3, indexing="ij"), axis=-1).reshape(-1, 3) * float(spacing)
 
 
-def relaxed(x, iterations, boundary=None):
+def relaxed(x, iterations, boundary=None, threads=1):
     from engine.learned.relax import relax_density
 
     index, mask, _, _ = features.fluid_neighbour_table(x, 2.0, 64)
     if boundary is None:
-        return relax_density(x, index, mask, iterations=iterations)
+        return relax_density(x, index, mask, iterations=iterations, threads=threads)
     bindex, bmask, _ = features.boundary_neighbour_table(x, boundary.positions, 2.0, 64)
-    return relax_density(x, index, mask, boundary.positions, boundary.volumes, bindex, bmask, iterations=iterations)
+    return relax_density(x, index, mask, boundary.positions, boundary.volumes, bindex, bmask, iterations=iterations,
+                         threads=threads)
 
 
 def test_relaxation_drives_a_compressed_lattice_back_to_rest_density():
@@ -450,7 +451,8 @@ def test_relaxation_matches_a_per_particle_loop():
     """One Jacobi iteration against a slow per-particle loop written from the equations in
     the section header (brute-force neighbours by cdist, fluid + boundary, float64). Tolerance
     1e-5 d: relax does its pair arithmetic in float32 (relative rounding ~1e-7 on offsets of a
-    few d, summed over ~30 neighbours)."""
+    few d, summed over ~30 neighbours). Split into row blocks worked on by several threads
+    (``threads``), every row does the same arithmetic, so the result must be the same bits."""
     from engine.kernels import kernel, kernel_gradient
 
     rng = np.random.default_rng(7)
@@ -481,7 +483,10 @@ def test_relaxation_matches_a_per_particle_loop():
         for b in np.flatnonzero(bnear[i]):
             expected[i] += lam[i] * wall.volumes[b] * kernel_gradient((x[i] - wall.positions[b])[None], H)[0]
     assert (lam < 0).any()  # some constraints are active, or the check would be empty
-    np.testing.assert_allclose(relaxed(x, 1, wall), expected, atol=1e-5)
+    one_thread = relaxed(x, 1, wall)
+    np.testing.assert_allclose(one_thread, expected, atol=1e-5)
+    np.testing.assert_array_equal(relaxed(x, 1, wall, threads=3), one_thread)
+    np.testing.assert_array_equal(relaxed(x, 3, wall, threads=3), relaxed(x, 3, wall))
 
 
 def test_relaxation_kernel_matches_the_float64_kernel_inside_and_beyond_the_support():

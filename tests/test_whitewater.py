@@ -78,6 +78,30 @@ def test_boundary_particles_make_a_layer_on_the_floor_interior():
     assert np.all(standing[bottom_centre] == ZONE_INTERIOR)
 
 
+def test_the_density_search_passed_in_gives_the_same_measures_and_lattice_counts():
+    """The learned bake hands ``whitewater`` the pairs and counts of its SPH density search
+    (engine.measures.sph_density, with_pairs=True) instead of searching again: every measure must
+    come out the same, and the counts are the lattice's (26 within H = 2 d in the bulk, 17 on a
+    flat face, counted by hand; physics-references.md section 1), floor particles included."""
+    from engine.measures import sph_density
+
+    rng = np.random.default_rng(7)
+    block = lattice(8) + rng.uniform(-0.1, 0.1, (8**3, 3)) * SPACING
+    floor = lattice(10, origin=(-SPACING, -SPACING, -SPACING))
+    floor = floor[floor[:, 2] < 0]
+    velocities = rng.normal(size=block.shape)
+    _, counts, pairs = sph_density(block, SPACING, 1000.0, floor, np.full(len(floor), SPACING**3), with_pairs=True)
+    alone = whitewater(block, velocities, SPACING, boundary_positions=floor)
+    shared = whitewater(block, velocities, SPACING, boundary_positions=floor, neighbours=(pairs, counts))
+    for name in alone:
+        np.testing.assert_array_equal(shared[name], alone[name], err_msg=name)
+    exact = lattice(8)
+    _, counts, _ = sph_density(exact + 1e-9, SPACING, 1000.0, with_pairs=True)
+    inner = np.all((exact > SPACING) & (exact < 7 * SPACING), axis=1)
+    face = (exact[:, 2] > 7 * SPACING) & np.all((exact[:, :2] > SPACING) & (exact[:, :2] < 7 * SPACING), axis=1)
+    assert np.all(counts[inner] == 26) and np.all(counts[face] == 17)
+
+
 def test_trapped_air_matches_the_published_sum_and_hand_solved_pairs():
     """Random cloud: the vectorised potential equals the per-particle loop of the formula.
     Two particles d apart (H = 2 d, weight 1/2) closing head-on at relative speed s (in

@@ -435,27 +435,30 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
     x32 = (x - centre).astype(np.float32)
     v32 = v.astype(np.float32)
     inverse_radius = np.float32(1.0 / radius)
-    # Padding entries point at the particle itself, so their offsets are already zero; only
-    # the distance column (inf there) and a wider density search need the mask.
-    edge = np.empty(index.shape + (EDGE_FEATURES,), np.float32)
-    np.subtract(np.take(x32, index, axis=0), x32[:, None, :], out=edge[..., 0:3])
-    edge[..., 0:3] *= inverse_radius
+    # Each particle's row of gathered quantities (x, 0, v); an edge is the neighbour's row minus
+    # its own. Padding entries point at the particle itself, so their offsets are already zero;
+    # only the distance column (inf there) and a wider density search need the mask.
+    own = np.zeros((n, EDGE_FEATURES), np.float32)
+    own[:, 0:3], own[:, 4:7] = x32, v32
+    edge = _gathered_minus_own(own, index, own)
+    _scale_columns(edge, [inverse_radius] * 3 + [1.0] * 4)
     edge[..., 3] = np.where(mask > 0, distances * (1.0 / radius), 0.0)
-    np.subtract(np.take(v32, index, axis=0), v32[:, None, :], out=edge[..., 4:7])
     if is_wider_search:
-        edge *= mask[..., None]
+        _mask_entries(edge, mask)
 
-    # Boundary rows (valid entries come first in each row).
-    bfeat = np.zeros(bindex.shape + (BOUNDARY_FEATURES,), np.float32)
+    # Boundary rows (valid entries come first in each row): the boundary particle's row
+    # (x_b, 0, n_b, v_b, V_b / d^3) minus the fluid particle's (x_i, 0, 0, v_i, 0).
     if n and bmask.any():
-        bx32 = (bx - centre).astype(np.float32)
-        np.subtract(np.take(bx32, bindex, axis=0), x32[brows, None, :], out=bfeat[..., 0:3])
-        bfeat[..., 0:3] *= inverse_radius
+        table = np.zeros((len(bx), BOUNDARY_FEATURES), np.float32)
+        table[:, 0:3], table[:, 4:7], table[:, 7:10], table[:, 10] = bx - centre, bn, bv, bvol
+        receiver = np.zeros((len(brows), BOUNDARY_FEATURES), np.float32)
+        receiver[:, 0:3], receiver[:, 7:10] = x32[brows], v32[brows]
+        bfeat = _gathered_minus_own(table, bindex, receiver)
+        _scale_columns(bfeat, [inverse_radius] * 3 + [1.0] * 8)
         bfeat[..., 3] = np.where(bmask > 0, bdist * (1.0 / radius), 0.0)
-        bfeat[..., 4:7] = np.take(bn.astype(np.float32), bindex, axis=0)
-        np.subtract(np.take(bv.astype(np.float32), bindex, axis=0), v32[brows, None, :], out=bfeat[..., 7:10])
-        bfeat[..., 10] = bvol_pairs
-        bfeat *= bmask[..., None]
+        _mask_entries(bfeat, bmask)
+    else:
+        bfeat = np.zeros(bindex.shape + (BOUNDARY_FEATURES,), np.float32)
 
     node = np.empty((n, NODE_FEATURES), np.float32)
     node[:, 0:3] = v
@@ -466,6 +469,42 @@ def build_graph(positions, velocities, previous_velocities, boundary, units, rad
                  edge_features=edge, boundary_rows=brows, boundary_slot=bslot, boundary_features=bfeat,
                  boundary_mask=bmask.astype(np.float32), boundary_index=bindex, density_ratio=rho,
                  truncated_rows=truncated)
+
+
+# The (rows, K, C) feature arrays are updated through (rows, K * C) views with per-column vectors
+# tiled K times: every numpy pass then runs over long contiguous rows. Broadcasting over the
+# C-wide last axis instead does the same arithmetic (bit for bit) about twice as slowly
+# (bench/profile_learned.py, DEVELOPERS.md "Learned stepper notes"). Per-row operands are made
+# for ``ROW_CHUNK`` rows at a time, so the temporaries stay small (and in cache).
+ROW_CHUNK = 2048
+
+
+def _gathered_minus_own(table, index, own) -> np.ndarray:
+    """(R, K, C) float32 ``table[index] - own[:, None]``; table (M, C), index (R, K), own (R, C)."""
+    out = np.take(table, index, axis=0)
+    flat = _flat(out)
+    for start in range(0, len(flat), ROW_CHUNK):
+        rows = slice(start, start + ROW_CHUNK)
+        flat[rows] -= np.tile(own[rows], (1, index.shape[1]))
+    return out
+
+
+def _scale_columns(values, factors) -> None:
+    """values (R, K, C) float32 *= factors (C,), in place."""
+    _flat(values)[...] *= np.tile(np.asarray(factors, np.float32), values.shape[1])
+
+
+def _mask_entries(values, mask) -> None:
+    """values (R, K, C) *= mask (R, K) for every column, in place."""
+    flat, mask = _flat(values), np.asarray(mask, values.dtype)
+    for start in range(0, len(flat), ROW_CHUNK):
+        rows = slice(start, start + ROW_CHUNK)
+        flat[rows] *= np.repeat(mask[rows], values.shape[2], axis=1)
+
+
+def _flat(values) -> np.ndarray:
+    """A (R, K * C) view of a C-contiguous (R, K, C) array (a (R, C) array as it is)."""
+    return values.reshape(values.shape[0], int(np.prod(values.shape[1:])))
 
 
 def normalise(graph, stats, in_place=False) -> dict:
@@ -486,15 +525,14 @@ def normalise(graph, stats, in_place=False) -> dict:
         dict of float32 / int64 arrays keyed by ONNX input name.
     """
     def scaled(values, mean, std, mask=None) -> np.ndarray:
-        if in_place and values.dtype == np.float32:
-            out = values
-            out -= np.asarray(mean, np.float32)
-        else:
-            out = values - np.asarray(mean, np.float32)
-        out /= np.asarray(std, np.float32)
+        out = values if in_place and values.dtype == np.float32 else values.astype(np.float32)
+        width = out.shape[1] if out.ndim == 3 else 1
+        flat = _flat(out)  # see _gathered_minus_own
+        flat -= np.tile(np.asarray(mean, np.float32), width)
+        flat /= np.tile(np.asarray(std, np.float32), width)
         if mask is not None:
-            out *= mask[..., None]
-        return out.astype(np.float32, copy=False)
+            _mask_entries(out, mask)
+        return out
 
     return {
         "node_features": scaled(graph.node_features, stats["node_mean"], stats["node_std"]),

@@ -27,6 +27,8 @@ iteration, as in Macklin & Mueller's Algorithm 1; distances are recomputed each
 iteration.
 """
 
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 
 from ..kernels import kernel
@@ -39,7 +41,7 @@ DEFAULT_EPSILON = 1e-3
 
 def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions=None,
                   boundary_volumes=None, boundary_index=None, boundary_mask=None, iterations=2,
-                  support=2.0, epsilon=DEFAULT_EPSILON, boundary_rows=None) -> np.ndarray:
+                  support=2.0, epsilon=DEFAULT_EPSILON, boundary_rows=None, threads=1) -> np.ndarray:
     """Move particles to reduce SPH over-density (see the module docstring).
 
     Args:
@@ -58,6 +60,9 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
         iterations: Jacobi iterations (0 returns a copy of the input).
         support: kernel support H in d.
         epsilon: constraint-force mixing (1/d^2).
+        threads: the fluid rows are split into this many blocks, each worked on in its own
+            thread (numpy releases the GIL in its array loops); every row's arithmetic is the
+            same whatever the count, so the result is too.
 
     Returns:
         (N, 3) float64 positions in d (a new array; the inputs are not changed).
@@ -83,42 +88,81 @@ def relax_density(positions, neighbour_index, neighbour_mask, boundary_positions
         bpos = (np.asarray(boundary_positions, np.float64)[bcols] - centre).astype(np.float32)
         bvol = np.asarray(boundary_volumes, np.float64)[bcols].astype(np.float32)
     w0 = float(kernel(0.0, support))
+    blocks = _row_blocks(n, threads)
 
     def row_sums(weights, columns) -> np.ndarray:
-        """(N, 3) float64: sum over each row of weights * columns[c], for c = 0, 1, 2."""
+        """(rows, 3) float64: sum over each row of weights * columns[c], for c = 0, 1, 2."""
         return np.stack([np.einsum("nk,nk->n", weights, column) for column in columns], axis=1).astype(np.float64)
 
     def boundary_sum3(scale, offsets) -> np.ndarray:
         return np.stack([np.bincount(brows, scale * offsets[:, c], minlength=n) for c in range(3)], axis=1)
 
-    for _ in range(int(iterations)):
-        x32 = (x - centre).astype(np.float32)
-        offsets = [column[:, None] - np.take(column, index) for column in x32.T.copy()]  # x_i - x_j, 3 x (N, K)
+    def fluid_terms(rows, columns) -> tuple:
+        """Offsets, (dW/dr)/r and the density, gradient and gradient-norm sums of a row block."""
+        block = index[rows]
+        offsets = [column[rows, None] - np.take(column, block) for column in columns]  # x_i - x_j, 3 x (n, K)
         r2 = offsets[0] * offsets[0]
         r2 += offsets[1] * offsets[1]
         r2 += offsets[2] * offsets[2]
         w, f = _kernel_terms32(r2, support)
         # Padding entries (j = i) have zero offsets, so they add nothing to the gradient sums;
         # only the density sum needs the mask.
-        ratio = w0 + np.einsum("nk,nk->n", w, mask).astype(np.float64)
-        grad_self = row_sums(f, offsets)
+        ratio = w0 + np.einsum("nk,nk->n", w, mask[rows]).astype(np.float64)
         grad_others = np.einsum("nk,nk->n", f * f, r2).astype(np.float64)  # sum_j |grad_j C_i|^2
-        if use_boundary:
-            boffsets = x32[brows] - bpos
-            wb, fb = _kernel_terms32(np.einsum("pc,pc->p", boffsets, boffsets), support)
-            ratio += np.bincount(brows, wb * bvol, minlength=n)
-            fb *= bvol
-            grad_self += boundary_sum3(fb, boffsets)
-        constraint = np.maximum(ratio - 1.0, 0.0)
-        lam = (-constraint / (grad_others + np.einsum("nc,nc->n", grad_self, grad_self) + epsilon)).astype(np.float32)
-        weights = np.take(lam, index)
-        weights += lam[:, None]
+        return offsets, f, ratio, row_sums(f, offsets), grad_others
+
+    def fluid_step(rows, offsets, f, lam) -> np.ndarray:
+        """sum_j (lambda_i + lambda_j) grad_i W_ij over a row block."""
+        weights = np.take(lam, index[rows])
+        weights += lam[rows, None]
         weights *= f
-        step = row_sums(weights, offsets)  # sum_j (lambda_i + lambda_j) grad_i W_ij
-        if use_boundary:
-            step += boundary_sum3(lam[brows] * fb, boffsets)
-        x += step
+        return row_sums(weights, offsets)
+
+    with _BlockRunner(len(blocks)) as run:
+        for _ in range(int(iterations)):
+            x32 = (x - centre).astype(np.float32)
+            columns = x32.T.copy()
+            parts = run(lambda rows: fluid_terms(rows, columns), blocks)
+            ratio, grad_self, grad_others = (np.concatenate([part[k] for part in parts]) for k in (2, 3, 4))
+            if use_boundary:
+                boffsets = x32[brows] - bpos
+                wb, fb = _kernel_terms32(np.einsum("pc,pc->p", boffsets, boffsets), support)
+                ratio += np.bincount(brows, wb * bvol, minlength=n)
+                fb *= bvol
+                grad_self += boundary_sum3(fb, boffsets)
+            constraint = np.maximum(ratio - 1.0, 0.0)
+            lam = (-constraint / (grad_others + np.einsum("nc,nc->n", grad_self, grad_self) + epsilon)).astype(np.float32)
+            step = np.concatenate(run(lambda rows, part: fluid_step(rows, part[0], part[1], lam), blocks, parts))
+            if use_boundary:
+                step += boundary_sum3(lam[brows] * fb, boffsets)
+            x += step
     return x
+
+
+def _row_blocks(count, threads) -> list:
+    """``threads`` (at least 1) contiguous slices of ``range(count)``, none empty."""
+    edges = np.linspace(0, count, max(1, min(int(threads), count)) + 1).astype(int)
+    return [slice(a, b) for a, b in zip(edges[:-1], edges[1:])]
+
+
+class _BlockRunner:
+    """``run(function, blocks, *per_block)``: ``function(block, *items)`` for every block, in a pool
+    of threads when there is more than one block; the results in block order."""
+
+    def __init__(self, count):
+        self.pool = ThreadPoolExecutor(count) if count > 1 else None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        if self.pool is not None:
+            self.pool.shutdown()
+
+    def __call__(self, function, blocks, *per_block) -> list:
+        if self.pool is None:
+            return [function(*items) for items in zip(blocks, *per_block)]
+        return list(self.pool.map(function, blocks, *per_block))
 
 
 def _kernel_terms32(r2, support):

@@ -106,7 +106,8 @@ class LearnedSolver:
         scene: accepted for the bake loop's uniform construction; unused.
         model: path of the .onnx model (its .json contract beside it); default
             ``models/preview-gn7.onnx``.
-        threads: onnxruntime intra-op threads (2 measured best here).
+        threads: onnxruntime intra-op threads (2 measured best here), and the row blocks the density
+            relaxation works on in parallel (``relax.relax_density``).
         tile_particles: run the core in tiles of this many receivers (None, the default:
             tiles sized by ``runtime.MAX_CALL_SLOTS`` and ``TILE_RECEIVER_SLOTS``; 0: never tile).
         relax_iterations: density relaxation iterations after each learned step (0: none).
@@ -122,6 +123,7 @@ class LearnedSolver:
         if int(relax_iterations) != relax_iterations or relax_iterations < 0:
             raise ValueError(f"relax_iterations {relax_iterations!r}: use a whole number >= 0 (0 turns relaxation off)")
         self.relax_iterations = int(relax_iterations)
+        self.threads = int(threads)
         self.model_path = Path(model) if model is not None else default_model_path()
         if not self.model_path.exists() and self.model_path.suffix != ".json":
             contract_beside = self.model_path.with_suffix(".json")
@@ -354,18 +356,20 @@ class LearnedSolver:
         relaxed = relax_density(positions / d, index, mask, boundary.positions / d,
                                 boundary.volumes / d**3, graph.boundary_index, graph.boundary_mask,
                                 iterations=self.relax_iterations, support=self.contract["density_support_spacings"],
-                                boundary_rows=graph.boundary_rows)
+                                boundary_rows=graph.boundary_rows, threads=self.threads)
         return relaxed * d
 
     def frame_attributes(self, state, world) -> dict:
-        """``density`` (kg/m^3, SPH estimate) and ``pressure`` (Pa, equation-of-state estimate) per particle."""
+        """``density`` (kg/m^3, SPH estimate) and ``pressure`` (Pa, equation-of-state estimate) per particle,
+        and ``whitewater_neighbours``: the density's search (pairs and counts within H), which the bake
+        passes on to the white-water measures (``engine.bake.frame_whitewater``) so a frame searches once."""
         from ..measures import sph_density
 
         boundary = world.boundary_at(state.time)
-        density, _ = sph_density(state.positions, world.particle_spacing, world.rest_density,
-                                 boundary.positions, boundary.volumes)
+        density, counts, pairs = sph_density(state.positions, world.particle_spacing, world.rest_density,
+                                             boundary.positions, boundary.volumes, with_pairs=True)
         height = float(world.upper[2] - world.lower[2])
         g = float(np.linalg.norm(world.gravity))
         sound = 10.0 * np.sqrt(max(g * height, 1e-12))
         pressure = sound**2 * np.maximum(density - world.rest_density, 0.0)
-        return {"density": density, "pressure": pressure}
+        return {"density": density, "pressure": pressure, "whitewater_neighbours": (pairs, counts)}
