@@ -212,3 +212,27 @@ def test_tune_refuses_a_negative_unroll(reference_bake, tmp_path, capsys):
     _, reference = reference_bake
     assert main(["tune", "--bakes", str(reference), "--out", str(tmp_path / "m"), "--unroll", "-1"]) == 64
     assert "--unroll -1: give a whole number of frames >= 0" in capsys.readouterr().err
+
+
+def test_tune_refuses_to_resume_a_run_under_another_unroll(reference_bake, tmp_path, capsys):
+    """A checkpoint trained with one pushforward depth is not a start for another loss: resuming it with
+    another --unroll is refused with the setting to add, and the finished run is left as it was."""
+    pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
+    from engine.errors import TuneResumeError
+
+    _, reference = reference_bake
+    out = tmp_path / "m"
+    args = ["tune", "--bakes", str(reference), "--out", str(out), "--iterations", "2", "--checkpoint-every", "1"]
+    assert main(args + ["--unroll", "2"]) == 0
+    capsys.readouterr()
+    checkpoint = (out / "run" / "checkpoint.pt").read_bytes()
+    config = (out / "run" / "config.json").read_text()
+    assert main(args[:5] + ["--iterations", "4", "--unroll", "3"]) == TuneResumeError.exit_code == 64
+    err = capsys.readouterr().err
+    assert "trained with --unroll 2, not 3" in err and "add --unroll 2 to resume it" in err
+    assert "Traceback" not in err
+    assert (out / "run" / "checkpoint.pt").read_bytes() == checkpoint
+    assert (out / "run" / "config.json").read_text() == config
+    # The same loss resumes.
+    assert main(args[:5] + ["--iterations", "3", "--unroll", "2"]) == 0
+    assert "resumed at iteration 2" in capsys.readouterr().err

@@ -53,7 +53,7 @@ from pathlib import Path
 import numpy as np
 
 from engine.cache import open_cache, write_atomic
-from engine.errors import ModelError, SplashdraftError, UsageError
+from engine.errors import ModelError, SplashdraftError, TuneResumeError, UsageError
 from engine.learned import contract as contract_module
 from engine.learned.contract import default_model_path
 
@@ -254,6 +254,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         if not same:
             raise UsageError(f"--out {out}: holds a tune run of another base model or other bakes; "
                              "choose another --out, or re-run the command that started it to resume")  # fmt: skip
+        check_resumable_settings(out, previous.get("settings", {}), settings)
     write_atomic(config_path, (json.dumps(record_key, indent=1) + "\n").encode())
 
     model = weights_from_onnx(base_onnx, config["latent"], config["rounds"])
@@ -356,6 +357,24 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     write_atomic(out / "tune.json", (json.dumps(record, indent=1) + "\n").encode())
     write_atomic(out / f"{name}.md", write_card(name, record).encode())
     return record
+
+
+#: Settings that change what a checkpoint's weights were trained for: a resume must keep them.
+LOSS_SETTINGS = {"unroll": "--unroll", "hold_back": "--hold-back"}
+
+
+def check_resumable_settings(out, previous, settings) -> None:
+    """UsageError when resuming the run in ``out`` would change a setting of ``LOSS_SETTINGS``.
+
+    ``previous`` is the settings record of the run's ``config.json``; a key it lacks (a run from an
+    older version) is not checked. The iteration count, time budget and learning rate may change.
+    """
+    for key, flag in LOSS_SETTINGS.items():
+        if key in previous and previous[key] != settings[key]:
+            raise TuneResumeError(
+                f"--out {out}: holds a tune run trained with {flag} {previous[key]:g}, not {settings[key]:g}; "
+                f"its checkpoint means another loss, so it cannot be continued with this one: add {flag} "
+                f"{previous[key]:g} to resume it, or choose another --out to start a new tune")  # fmt: skip
 
 
 def trained_ranges(base_training, shots) -> dict:
