@@ -236,3 +236,79 @@ def test_tune_refuses_to_resume_a_run_under_another_unroll(reference_bake, tmp_p
     # The same loss resumes.
     assert main(args[:5] + ["--iterations", "3", "--unroll", "2"]) == 0
     assert "resumed at iteration 2" in capsys.readouterr().err
+
+
+def test_reach_tangent_matches_finite_differences_of_the_features(reference_bake):
+    """The reach loss (training/reach.py) carries the gradient across a preview step through the first-order
+    change of the core's inputs with the state. Oracle: the preview's own numpy features
+    (``features.build_graph``) at a state moved by a small random step, against the same features at the
+    state itself, pair by pair (matched by particle and neighbour, since table order may change), the
+    central-difference check of a derivative (common practice; e.g. Nocedal & Wright 2006, "Numerical
+    Optimization", 2nd ed., section 8.1, from memory). Tolerance: the step is 1e-4 spacings (and
+    1e-4 sqrt(g d)); second-order terms are ~1e-8 of the features and float32 rounding ~1e-7 of values of
+    order 1, so the tangent must agree to 1 % of the largest change (it did to ~0.1 % when written).
+    """
+    torch = pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
+    import numpy as np
+
+    from engine.learned import features
+    from engine.learned.contract import default_model_path
+    from training.pushforward import preview_stepper, push
+    from training.reach import tangent_inputs
+    from training.tune import load_bakes, weights_from_onnx
+
+    _, reference = reference_bake
+    c, onnx_path = load_contract(default_model_path())
+    (shot,) = load_bakes([reference], c)
+    model = weights_from_onnx(onnx_path, c["architecture"]["latent"], c["rounds"])
+    state = push(preview_stepper(model, onnx_path), shot, 2, 4)
+    stats = {key: np.asarray(value, np.float64) for key, value in c["normalisation"].items()}
+
+    def graph_at(x, v, v_prev):
+        return features.build_graph(x, v, v_prev, shot.boundary(4), shot.units, c["radius_spacings"],
+                                    c["density_support_spacings"], c["max_neighbours"], c["max_boundary_neighbours"],
+                                    step_froude=shot.dt / shot.units.time)  # fmt: skip
+
+    def pairs(graph, edge_values, boundary_values):
+        """{(row, neighbour): normalised features} of the fluid and boundary pairs."""
+        out = {}
+        for kind, index, mask, values, rows in (
+            ("fluid", graph.neighbour_index, graph.neighbour_mask, edge_values, np.arange(len(graph.neighbour_index))),
+            ("wall", graph.boundary_index, graph.boundary_mask, boundary_values, graph.boundary_rows),
+        ):  # fmt: skip
+            for r, j in zip(*np.nonzero(mask)):
+                out[(kind, int(rows[r]), int(index[r, j]))] = values[r, j]
+        return out
+
+    x, v = state.positions, state.velocities
+    v_prev = state.particle_arrays["learned_previous_velocity"]
+    rng = np.random.default_rng(7)
+    step = 1e-4
+    moves = [rng.normal(size=x.shape) * step * scale for scale in (shot.units.spacing, shot.units.velocity,
+                                                                   shot.units.velocity)]  # fmt: skip
+    here = graph_at(x, v, v_prev)
+    inputs = features.normalise(here, c["normalisation"])
+    tangent = tangent_inputs(inputs, tuple(torch.from_numpy(m) for m in moves), shot.units, stats,
+                             c["radius_spacings"], c["density_support_spacings"])  # fmt: skip
+    ahead = features.normalise(graph_at(x + moves[0], v + moves[1], v_prev + moves[2]), c["normalisation"])
+    behind = features.normalise(graph_at(x - moves[0], v - moves[1], v_prev - moves[2]), c["normalisation"])
+    graph_ahead = graph_at(x + moves[0], v + moves[1], v_prev + moves[2])
+    graph_behind = graph_at(x - moves[0], v - moves[1], v_prev - moves[2])
+
+    node_change = (ahead["node_features"].astype(np.float64) - behind["node_features"]) / 2
+    predicted = tangent["node_features"].double().numpy() - inputs["node_features"]
+    assert np.abs(node_change).max() > 1e-5  # the move really changes the features
+    assert np.abs(predicted - node_change).max() < 0.01 * np.abs(node_change).max()
+
+    base = pairs(here, inputs["edge_features"], inputs["boundary_features"])
+    moved = pairs(here, tangent["edge_features"].double().numpy(), tangent["boundary_features"].double().numpy())
+    forward = pairs(graph_ahead, ahead["edge_features"], ahead["boundary_features"])
+    backward = pairs(graph_behind, behind["edge_features"], behind["boundary_features"])
+    common = [key for key in base if key in forward and key in backward]
+    assert len(common) > 0.99 * len(base) and any(key[0] == "wall" for key in common)
+    for kind in ("fluid", "wall"):
+        chosen = [key for key in common if key[0] == kind]
+        finite = np.array([(forward[key].astype(np.float64) - backward[key]) / 2 for key in chosen])
+        first_order = np.array([moved[key] - base[key] for key in chosen])
+        assert np.abs(finite).max() > 1e-5
+        assert np.abs(first_order - finite).max() < 0.01 * np.abs(finite).max(), kind

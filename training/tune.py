@@ -65,7 +65,7 @@ from . import dataset
 #: (3e-4: 0.634 -> 0.964, over-fitting the few one-step samples; 3e-5: 0.634 -> 0.691). The one-step loss
 #: (--unroll 0) keeps its own default rate, ONE_STEP_LR.
 TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-4, "batch": 2, "noise": 0.02, "seed": 0, "hold_back": 0.25,
-                 "checkpoint_every": 50, "unroll": 8}  # fmt: skip
+                 "checkpoint_every": 50, "unroll": 8, "reach": 0}  # fmt: skip
 ONE_STEP_LR = 3e-5
 
 
@@ -191,7 +191,7 @@ def _evaluate(shots, held, onnx_path, out_dir, label):
 
 
 def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, checkpoint_every=None, seed=None,
-         command=None, log=print, lr=None, unroll=None) -> dict:
+         command=None, log=print, lr=None, unroll=None, reach=None) -> dict:
     """Fine-tune ``base`` on ``bakes`` into the model folder ``out``; returns the tune record dict."""
     try:
         import torch
@@ -201,6 +201,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         raise DependencyError("fine-tuning needs PyTorch, which is not installed; run "
                               "pip install -r requirements-train.txt (CPU build, about 200 MB)") from None  # fmt: skip
     from .pushforward import preview_stepper, pushforward_pool, train_on_pushforward
+    from .reach import GradientCore, train_on_reach
     from .train import _normalised_sample, _save_torch, export, train_on_pool
 
     torch.set_num_threads(2)
@@ -215,7 +216,8 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     if unroll == 0 and lr is None:
         settings["lr"] = ONE_STEP_LR
     for key, value in (("iterations", iterations), ("hold_back", hold_back), ("seed", seed),
-                       ("checkpoint_every", checkpoint_every), ("lr", lr), ("unroll", unroll)):  # fmt: skip
+                       ("checkpoint_every", checkpoint_every), ("lr", lr), ("unroll", unroll),
+                       ("reach", reach)):  # fmt: skip
         if value is not None:
             settings[key] = value
     if not 0.05 <= settings["hold_back"] <= 0.8:
@@ -224,6 +226,9 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         raise UsageError(f"--lr {settings['lr']}: give a learning rate above 0 and at most 0.1")
     if int(settings["unroll"]) != settings["unroll"] or settings["unroll"] < 0:
         raise UsageError(f"--unroll {settings['unroll']}: give a whole number of frames >= 0 (0: one-step loss)")
+    if int(settings["reach"]) != settings["reach"] or settings["reach"] < 0:
+        raise UsageError(f"--reach {settings['reach']}: give a whole number of frames >= 0 (0: no gradient "
+                         "through the preview's steps)")
     if int(settings["iterations"]) < 1:
         raise UsageError(f"--iterations {settings['iterations']}: give at least 1")
     shots = load_bakes(bakes, base_contract)
@@ -231,7 +236,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     for shot in shots:
         training, held[shot.name] = split_frames(shot, settings["hold_back"])
         pool += [(shot, k, 1) for k in training]
-    if settings["unroll"]:
+    if settings["unroll"] or settings["reach"]:
         pool = pushforward_pool(shots, {s.name: held_back_start(s, settings["hold_back"]) for s in shots})
     if not pool:
         raise UsageError("--bakes: no training frames left after holding back the tail; give longer bakes")
@@ -267,7 +272,9 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         raise ModelError(f"model file {base_onnx}: weights read back from the ONNX file differ from it by "
                          f"{mismatch:.3g} relative; it cannot be fine-tuned, retrain it with python -m training.train")
     optimiser = torch.optim.Adam(model.parameters(), lr=settings["lr"])
-    stepper = preview_stepper(model, base_onnx) if settings["unroll"] else None
+    stepper = preview_stepper(model, base_onnx) if settings["unroll"] or settings["reach"] else None
+    gradient_core = GradientCore(model, base_contract) if settings["reach"] else None
+    last = {s.name: held_back_start(s, settings["hold_back"]) - 1 for s in shots}
     iteration, seconds_before, history = 0, 0.0, []
     if checkpoint_path.exists():
         payload = torch.load(checkpoint_path, weights_only=True)
@@ -296,7 +303,10 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         if minutes is not None and time.monotonic() - started > 60 * minutes:
             log(f"tune: time budget of {minutes} min reached at iteration {iteration}")
             break
-        if stepper is not None:
+        if gradient_core is not None:
+            loss = train_on_reach(model, optimiser, pool, stepper, gradient_core, rng, settings["batch"],
+                                  int(settings["unroll"]), int(settings["reach"]), last)  # fmt: skip
+        elif stepper is not None:
             loss, _ = train_on_pushforward(model, optimiser, pool, stepper, config, stats, rng, settings["batch"],
                                            int(settings["unroll"]))  # fmt: skip
         else:
@@ -360,7 +370,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
 
 
 #: Settings that change what a checkpoint's weights were trained for: a resume must keep them.
-LOSS_SETTINGS = {"unroll": "--unroll", "hold_back": "--hold-back"}
+LOSS_SETTINGS = {"unroll": "--unroll", "reach": "--reach", "hold_back": "--hold-back"}
 
 
 def check_resumable_settings(out, previous, settings) -> None:
@@ -396,6 +406,11 @@ def trained_ranges(base_training, shots) -> dict:
 
 def loss_text(settings) -> str:
     """One sentence naming the training loss of a tune run, for the card."""
+    if settings.get("reach"):
+        return (f"reach (training/reach.py): up to {settings['reach']} frames of the preview's own steps, rolled "
+                f"with gradient from the state the model itself reached in 0..{settings['unroll']} preview steps "
+                f"from a reference frame, scored on the squared distance from the reference's frames; "
+                f"lr {settings['lr']:g}.")  # fmt: skip
     if settings.get("unroll"):
         return (f"pushforward (training/pushforward.py): each step trained from the state the model itself "
                 f"reached in 1..{settings['unroll']} preview steps from a reference frame, target landing on the "
