@@ -312,3 +312,43 @@ def test_reach_tangent_matches_finite_differences_of_the_features(reference_bake
         first_order = np.array([moved[key] - base[key] for key in chosen])
         assert np.abs(finite).max() > 1e-5
         assert np.abs(first_order - finite).max() < 0.01 * np.abs(finite).max(), kind
+
+
+def test_reach_roll_keeps_the_preview_values_and_scores_them(reference_bake, tmp_path):
+    """The reach loss rolls the preview's own steps with gradient, and the gradient must not change the
+    values: from the first frame, its score over three frames must equal the one measured on the preview's
+    own bake of the shot. Oracles: ``engine.bake`` with the learned solver (onnxruntime, not PyTorch) and
+    ``engine.measures.chamfer_distance`` for the Chamfer score; the identity-matched mean squared distance
+    written out here for the distance score. Tolerance: PyTorch against onnxruntime ~1e-6 relative per
+    step and float32 cache positions (~1e-9 m), far below the 1e-4 relative allowed.
+    """
+    pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
+    import numpy as np
+
+    from engine.cache import open_cache
+    from engine.learned.contract import default_model_path
+    from engine.measures import chamfer_distance
+    from training.pushforward import preview_stepper
+    from training.reach import GradientCore, reach_loss
+    from training.tune import load_bakes, weights_from_onnx
+
+    scene, reference = reference_bake
+    contract, onnx_path = load_contract(default_model_path())
+    (shot,) = load_bakes([reference], contract)
+    model = weights_from_onnx(onnx_path, contract["architecture"]["latent"], contract["rounds"])
+    stepper, core = preview_stepper(model, onnx_path), GradientCore(model, contract)
+    bake(scene, "learned", tmp_path / "preview", frames=(1, 4), use_signals=False)
+    preview = open_cache(tmp_path / "preview")
+    d = shot.scene.particle_spacing
+    chamfer, squared = [], []
+    for k in (1, 2, 3):
+        frame = preview.read_frame(shot.frames[k])
+        chamfer.append(chamfer_distance(frame["positions"], shot.positions[k])[0] / d)
+        order = np.argsort(frame["ids"])
+        where = shot.lookup(k, frame["ids"][order])
+        assert (where >= 0).all()
+        squared.append((((frame["positions"][order] - shot.positions[k][where]) / d) ** 2).sum(1).mean())
+    for score, expected in (("chamfer", np.mean(chamfer)), ("distance", np.mean(squared))):
+        loss = reach_loss(stepper, core, shot, 0, 0, 3, score)
+        assert loss.requires_grad and expected > 1e-3
+        assert abs(float(loss) - expected) < 1e-4 * expected, score

@@ -135,7 +135,7 @@ def acceleration_tensor(output, stats, units):
     return units.g * (gravity_frame @ torch.from_numpy(units.rotation))
 
 
-def reach_loss(stepper, core, shot, j, start, steps):
+def reach_loss(stepper, core, shot, j, start, steps, score="distance"):
     """Mean over ``steps`` frames of the mean squared distance [d^2] from the reference, rolled with gradient.
 
     The roll starts at frame position ``start`` from the state the model reaches in ``start - j``
@@ -149,13 +149,13 @@ def reach_loss(stepper, core, shot, j, start, steps):
     try:
         state = push(stepper, shot, j, start)
         stepper.runner = core
-        return _roll(stepper, core, shot, j, start, steps, state)
+        return _roll(stepper, core, shot, j, start, steps, state, score)
     finally:
         stepper.runner = saved
         core.deviation = None
 
 
-def _roll(stepper, core, shot, j, start, steps, state):
+def _roll(stepper, core, shot, j, start, steps, state, score):
     """``reach_loss`` after the push: ``steps`` preview steps with gradient from ``state``."""
     import torch
 
@@ -178,6 +178,9 @@ def _roll(stepper, core, shot, j, start, steps, state):
         x = x_integrated + (torch.from_numpy(following.positions) - x_integrated.detach())
         v = v_integrated + (torch.from_numpy(following.velocities) - v_integrated.detach())
         state = following
+        if score == "chamfer":
+            losses.append(chamfer_tensor(x / d, shot.positions[k + 1] / d))
+            continue
         where = shot.lookup(k + 1, state.ids)
         chosen = np.flatnonzero((where >= 0) & scored)
         if len(chosen):
@@ -186,7 +189,26 @@ def _roll(stepper, core, shot, j, start, steps, state):
     return torch.stack(losses).mean() if losses else None
 
 
-def train_on_reach(model, optimiser, pool, stepper, core, rng, batch, unroll, reach, last) -> "float | None":
+def chamfer_tensor(points, reference):
+    """``measures.chamfer_distance`` of the (N, 3) tensor ``points`` from the (M, 3) numpy ``reference``, as a
+    tensor: 0.5 (mean_i |p_i - r_nn(i)| + mean_j |r_j - p_nn(j)|), the nearest partners found on the values
+    (piecewise constant), so the gradient pulls each point toward its partner."""
+    import torch
+    from scipy.spatial import cKDTree
+
+    if len(points) == 0 or len(reference) == 0:
+        return None
+    values = points.detach().numpy()
+    to_reference = cKDTree(reference).query(values, k=1)[1]
+    to_points = cKDTree(values).query(reference, k=1)[1]
+    target = torch.from_numpy(reference)
+    ahead = ((points - target[to_reference]) ** 2).sum(1).add(1e-12).sqrt().mean()
+    behind = ((points[to_points] - target) ** 2).sum(1).add(1e-12).sqrt().mean()
+    return 0.5 * (ahead + behind)
+
+
+def train_on_reach(model, optimiser, pool, stepper, core, rng, batch, unroll, reach, last,
+                   score="distance") -> "float | None":
     """One optimiser step on ``batch`` rolls: each picks a (shot, k) of ``pool``, pushes from the
     reference frame k - m (m uniform in 1..min(unroll, k); the first frame, k = 0, from the
     initial state) and rolls min(reach, last[shot] - k) frames with gradient (``reach_loss``),
@@ -198,7 +220,7 @@ def train_on_reach(model, optimiser, pool, stepper, core, rng, batch, unroll, re
     for i in rng.integers(0, len(pool), batch):
         shot, k = pool[i]
         m = int(rng.integers(min(1, k), min(unroll, k) + 1)) if unroll else 0
-        loss = reach_loss(stepper, core, shot, k - m, k, min(reach, last[shot.name] - k))
+        loss = reach_loss(stepper, core, shot, k - m, k, min(reach, last[shot.name] - k), score)
         if loss is not None:
             losses.append(loss)
     if not losses:

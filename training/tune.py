@@ -65,7 +65,7 @@ from . import dataset
 #: (3e-4: 0.634 -> 0.964, over-fitting the few one-step samples; 3e-5: 0.634 -> 0.691). The one-step loss
 #: (--unroll 0) keeps its own default rate, ONE_STEP_LR.
 TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-4, "batch": 2, "noise": 0.02, "seed": 0, "hold_back": 0.25,
-                 "checkpoint_every": 50, "unroll": 8, "reach": 0}  # fmt: skip
+                 "checkpoint_every": 50, "unroll": 8, "reach": 0, "score": "distance"}  # fmt: skip
 ONE_STEP_LR = 3e-5
 
 
@@ -191,7 +191,7 @@ def _evaluate(shots, held, onnx_path, out_dir, label):
 
 
 def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, checkpoint_every=None, seed=None,
-         command=None, log=print, lr=None, unroll=None, reach=None) -> dict:
+         command=None, log=print, lr=None, unroll=None, reach=None, score=None) -> dict:
     """Fine-tune ``base`` on ``bakes`` into the model folder ``out``; returns the tune record dict."""
     try:
         import torch
@@ -217,7 +217,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         settings["lr"] = ONE_STEP_LR
     for key, value in (("iterations", iterations), ("hold_back", hold_back), ("seed", seed),
                        ("checkpoint_every", checkpoint_every), ("lr", lr), ("unroll", unroll),
-                       ("reach", reach)):  # fmt: skip
+                       ("reach", reach), ("score", score)):  # fmt: skip
         if value is not None:
             settings[key] = value
     if not 0.05 <= settings["hold_back"] <= 0.8:
@@ -229,6 +229,8 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     if int(settings["reach"]) != settings["reach"] or settings["reach"] < 0:
         raise UsageError(f"--reach {settings['reach']}: give a whole number of frames >= 0 (0: no gradient "
                          "through the preview's steps)")
+    if settings["score"] not in SCORE_TEXT:
+        raise UsageError(f"--score {settings['score']}: give one of {', '.join(SCORE_TEXT)}")
     if int(settings["iterations"]) < 1:
         raise UsageError(f"--iterations {settings['iterations']}: give at least 1")
     shots = load_bakes(bakes, base_contract)
@@ -305,7 +307,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
             break
         if gradient_core is not None:
             loss = train_on_reach(model, optimiser, pool, stepper, gradient_core, rng, settings["batch"],
-                                  int(settings["unroll"]), int(settings["reach"]), last)  # fmt: skip
+                                  int(settings["unroll"]), int(settings["reach"]), last, settings["score"])  # fmt: skip
         elif stepper is not None:
             loss, _ = train_on_pushforward(model, optimiser, pool, stepper, config, stats, rng, settings["batch"],
                                            int(settings["unroll"]))  # fmt: skip
@@ -370,7 +372,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
 
 
 #: Settings that change what a checkpoint's weights were trained for: a resume must keep them.
-LOSS_SETTINGS = {"unroll": "--unroll", "reach": "--reach", "hold_back": "--hold-back"}
+LOSS_SETTINGS = {"unroll": "--unroll", "reach": "--reach", "score": "--score", "hold_back": "--hold-back"}
 
 
 def check_resumable_settings(out, previous, settings) -> None:
@@ -382,9 +384,9 @@ def check_resumable_settings(out, previous, settings) -> None:
     for key, flag in LOSS_SETTINGS.items():
         if key in previous and previous[key] != settings[key]:
             raise TuneResumeError(
-                f"--out {out}: holds a tune run trained with {flag} {previous[key]:g}, not {settings[key]:g}; "
+                f"--out {out}: holds a tune run trained with {flag} {previous[key]}, not {settings[key]}; "
                 f"its checkpoint means another loss, so it cannot be continued with this one: add {flag} "
-                f"{previous[key]:g} to resume it, or choose another --out to start a new tune")  # fmt: skip
+                f"{previous[key]} to resume it, or choose another --out to start a new tune")  # fmt: skip
 
 
 def trained_ranges(base_training, shots) -> dict:
@@ -404,12 +406,16 @@ def trained_ranges(base_training, shots) -> dict:
     return ranges
 
 
+SCORE_TEXT = {"distance": "each particle's squared distance from itself in the reference's frames",
+              "chamfer": "the Chamfer distance from the reference's frames"}
+
+
 def loss_text(settings) -> str:
     """One sentence naming the training loss of a tune run, for the card."""
     if settings.get("reach"):
         return (f"reach (training/reach.py): up to {settings['reach']} frames of the preview's own steps, rolled "
                 f"with gradient from the state the model itself reached in 0..{settings['unroll']} preview steps "
-                f"from a reference frame, scored on the squared distance from the reference's frames; "
+                f"from a reference frame, scored on {SCORE_TEXT[settings.get('score', 'distance')]}; "
                 f"lr {settings['lr']:g}.")  # fmt: skip
     if settings.get("unroll"):
         return (f"pushforward (training/pushforward.py): each step trained from the state the model itself "
