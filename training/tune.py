@@ -67,6 +67,10 @@ from . import dataset
 TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-4, "batch": 2, "noise": 0.02, "seed": 0, "hold_back": 0.25,
                  "checkpoint_every": 50, "unroll": 8, "reach": 0, "score": "distance"}  # fmt: skip
 ONE_STEP_LR = 3e-5
+#: PyTorch threads of a tune. One: on the 2 shared cores with other jobs running (load average 4-5), a roll
+#: of 8 preview steps with gradient on a 1,210-particle bake took 15-18 s with 2 threads and 0.5 s with 1
+#: (README "Fine-tuning"): the graphs of a few thousand particles are too small to share between threads.
+TORCH_THREADS = 1
 
 
 def weights_from_onnx(onnx_path, latent, rounds) -> "torch.nn.Module":
@@ -204,7 +208,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     from .reach import GradientCore, train_on_reach
     from .train import _normalised_sample, _save_torch, export, train_on_pool
 
-    torch.set_num_threads(2)
+    torch.set_num_threads(TORCH_THREADS)
     started_wall = time.monotonic()
     out = Path(out)
     name = out.name
