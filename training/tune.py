@@ -1,7 +1,7 @@
 """Fine-tuning the preview on an artist's own reference bakes (``python -m engine tune``).
 
     python -m engine tune --bakes DIR [DIR ...] [--base MODEL] --out MODEL_DIR [--minutes M] [--iterations N]
-                          [--lr RATE] [--unroll M]
+                          [--lr RATE] [--unroll M] [--reach K] [--score distance|chamfer]
 
 Continues training a shipped model (default: the shipped model, ``models/preview-gn7``) on DFSPH
 bakes the artist already has (ordinary cache folders with their ``scene/``
@@ -36,7 +36,10 @@ step k -> k + 1 starts from the state the model being trained reaches in m = 1..
 steps (no gradient) from the reference frame k - m, and its target lands the preview's integrator
 on the reference's frame k + 1; the card's figure is such a free rollout, which a one-step loss
 from the reference's own state never shows the network. With M = 0 the one-step loss of
-``training.train`` (velocity-walk noise). Both use ``train.train_step``.
+``training.train`` (velocity-walk noise). Both use ``train.train_step``. With ``--reach K`` > 0 the reach
+loss of training/reach.py instead: from the same pushed start, K frames of the preview's own step
+rolled with gradient and scored on positions (``--score``); M = 0 then starts from the reference frame.
+Settings that change what the checkpoint was trained for (``LOSS_SETTINGS``) must match on resume.
 
 Normalisation statistics stay the base model's (the weights were trained
 against them). Resumable: ``checkpoint.pt`` (our own state dicts, loaded
@@ -157,8 +160,13 @@ def load_bakes(bakes, contract) -> list:
 
 
 def held_back_start(shot, hold_back) -> int:
-    """Position of the first held-back frame: the last ``hold_back`` share of the frames, at least two."""
-    return len(shot.frames) - max(2, int(round(hold_back * len(shot.frames))))
+    """Position of the first held-back frame of ``shot`` (``first_held_back``)."""
+    return first_held_back(len(shot.frames), hold_back)
+
+
+def first_held_back(frame_count, hold_back) -> int:
+    """Position of the first held-back frame of ``frame_count``: the last ``hold_back`` share, at least two."""
+    return frame_count - max(2, int(round(hold_back * frame_count)))
 
 
 def split_frames(shot, hold_back) -> tuple[list, list]:
