@@ -79,7 +79,7 @@ def tangent_inputs(inputs, deviation, units, stats, radius, support) -> dict:
     """
     import torch
 
-    def raw(name, prefix):
+    def raw(name, prefix) -> np.ndarray:
         values = inputs[name].astype(np.float64) * stats[f"{prefix}_std"] + stats[f"{prefix}_mean"]
         return values
 
@@ -126,7 +126,7 @@ def tangent_inputs(inputs, deviation, units, stats, radius, support) -> dict:
     }
 
 
-def acceleration_tensor(output, stats, units):
+def acceleration_tensor(output, stats, units) -> "torch.Tensor":
     """``features.acceleration_from_output`` in PyTorch: world-space accelerations (N, 3) m/s^2, float64."""
     import torch
 
@@ -135,7 +135,7 @@ def acceleration_tensor(output, stats, units):
     return units.g * (gravity_frame @ torch.from_numpy(units.rotation))
 
 
-def reach_loss(stepper, core, shot, j, start, steps, score="distance"):
+def reach_loss(stepper, core, shot, j, start, steps, score="distance") -> "torch.Tensor | None":
     """Mean over ``steps`` frames of the mean squared distance [d^2] from the reference, rolled with gradient.
 
     The roll starts at frame position ``start`` from the state the model reaches in ``start - j``
@@ -155,7 +155,7 @@ def reach_loss(stepper, core, shot, j, start, steps, score="distance"):
         core.deviation = None
 
 
-def _roll(stepper, core, shot, j, start, steps, state, score):
+def _roll(stepper, core, shot, j, start, steps, state, score) -> "torch.Tensor | None":
     """``reach_loss`` after the push: ``steps`` preview steps with gradient from ``state``."""
     import torch
 
@@ -179,7 +179,9 @@ def _roll(stepper, core, shot, j, start, steps, state, score):
         v = v_integrated + (torch.from_numpy(following.velocities) - v_integrated.detach())
         state = following
         if score == "chamfer":
-            losses.append(chamfer_tensor(x / d, shot.positions[k + 1] / d))
+            chamfer = chamfer_tensor(x / d, shot.positions[k + 1] / d)
+            if chamfer is not None:
+                losses.append(chamfer)
             continue
         where = shot.lookup(k + 1, state.ids)
         chosen = np.flatnonzero((where >= 0) & scored)
@@ -189,7 +191,7 @@ def _roll(stepper, core, shot, j, start, steps, state, score):
     return torch.stack(losses).mean() if losses else None
 
 
-def chamfer_tensor(points, reference):
+def chamfer_tensor(points, reference) -> "torch.Tensor | None":
     """``measures.chamfer_distance`` of the (N, 3) tensor ``points`` from the (M, 3) numpy ``reference``, as a
     tensor: 0.5 (mean_i |p_i - r_nn(i)| + mean_j |r_j - p_nn(j)|), the nearest partners found on the values
     (piecewise constant), so the gradient pulls each point toward its partner."""
