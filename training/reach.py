@@ -5,8 +5,10 @@ lands the integrator on the reference's next frame, but the preview's step goes 
 integrator (density relaxation, viscosity smoothing, hard constraints), and an error in one step
 changes what the network sees in the next, which that loss never shows it. Here the model rolls
 ``reach`` frames forward from a state it reached itself, each step the preview's own
-(``LearnedSolver.advance``), and the loss is the mean squared distance, in spacings, of the
-particles from the reference's frames along the way; its gradient runs back through all the steps.
+(``LearnedSolver.advance``), and the loss scores the frames along the way against the reference's,
+in spacings: by the Chamfer distance of the two point sets (``score="chamfer"``, the measure the
+tune card reports) or by each particle's squared distance from itself (``"distance"``). Its
+gradient runs back through all the steps.
 
 How the gradient crosses a step (values stay exactly the preview's):
 
@@ -135,8 +137,9 @@ def acceleration_tensor(output, stats, units) -> "torch.Tensor":
     return units.g * (gravity_frame @ torch.from_numpy(units.rotation))
 
 
-def reach_loss(stepper, core, shot, j, start, steps, score="distance") -> "torch.Tensor | None":
-    """Mean over ``steps`` frames of the mean squared distance [d^2] from the reference, rolled with gradient.
+def reach_loss(stepper, core, shot, j, start, steps, score="chamfer") -> "torch.Tensor | None":
+    """Mean over ``steps`` frames of the score (``score``: Chamfer distance [d] or mean squared distance
+    [d^2] of each particle from itself) against the reference, rolled with gradient.
 
     The roll starts at frame position ``start`` from the state the model reaches in ``start - j``
     preview steps (no gradient) from the reference frame j, then takes ``steps`` preview steps with
@@ -210,7 +213,7 @@ def chamfer_tensor(points, reference) -> "torch.Tensor | None":
 
 
 def train_on_reach(model, optimiser, pool, stepper, core, rng, batch, unroll, reach, last,
-                   score="distance") -> "float | None":
+                   score="chamfer") -> "float | None":
     """One optimiser step on ``batch`` rolls: each picks a (shot, k) of ``pool``, pushes from the
     reference frame k - m (m uniform in 1..min(unroll, k); the first frame, k = 0, from the
     initial state) and rolls min(reach, last[shot] - k) frames with gradient (``reach_loss``),
