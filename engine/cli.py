@@ -222,7 +222,8 @@ def build_parser() -> argparse.ArgumentParser:
                       "reference frame (pushforward); 0 trains one step from the reference's own state. Default: 8.")
     tune.add_argument("--reach", type=int, metavar="K",
                       help="Score K frames of the preview's own steps on positions, with the gradient through "
-                      "all of them (training/reach.py); 0 trains each step on its own (pushforward). Default: 8.")
+                      "all of them (training/reach.py); best in short runs (a few hundred iterations), worse than 0 over 30 "
+                      "minutes (README). 0 trains each step on its own (pushforward). Default: 0.")
     tune.add_argument("--score", choices=("distance", "chamfer"),
                       help="With --reach: score the rolled frames by each particle's squared distance from itself "
                       "in the reference (distance) or by the Chamfer distance of the two point sets (chamfer). "
