@@ -220,6 +220,14 @@ def build_parser() -> argparse.ArgumentParser:
     tune.add_argument("--unroll", type=int, metavar="M",
                       help="Train each step from a state the model itself reached, rolled up to M frames from a "
                       "reference frame (pushforward); 0 trains one step from the reference's own state. Default: 8.")
+    tune.add_argument("--reach", type=int, metavar="K",
+                      help="Score K frames of the preview's own steps on positions, with the gradient through "
+                      "all of them (training/reach.py); best in short runs (a few hundred iterations), worse than 0 over 30 "
+                      "minutes (README). 0 trains each step on its own (pushforward). Default: 0.")
+    tune.add_argument("--score", choices=("distance", "chamfer"),
+                      help="With --reach: score the rolled frames by each particle's squared distance from itself "
+                      "in the reference (distance) or by the Chamfer distance of the two point sets (chamfer). "
+                      "Default: chamfer.")
     tune.add_argument("--json", action="store_true", help="Print the tune record as JSON on stdout.")
 
     # The compare command is handled by engine.compare.main_compare (see main); listed here for --help.
@@ -512,13 +520,14 @@ def command_tune(args) -> int:
     words = ["python -m engine tune", "--bakes", *args.bakes, "--out", args.out]
     for flag, value in (("--base", args.base), ("--minutes", args.minutes), ("--iterations", args.iterations),
                         ("--hold-back", args.hold_back), ("--checkpoint-every", args.checkpoint_every),
-                        ("--lr", args.lr), ("--unroll", args.unroll)):
+                        ("--lr", args.lr), ("--unroll", args.unroll), ("--reach", args.reach),
+                        ("--score", args.score)):
         if value is not None:
             words += [flag, str(value)]
     command = " ".join(words)
     record = tune(args.bakes, args.out, base=args.base, minutes=args.minutes, iterations=args.iterations,
                   hold_back=args.hold_back, checkpoint_every=args.checkpoint_every, command=command, log=_say,
-                  lr=args.lr, unroll=args.unroll)
+                  lr=args.lr, unroll=args.unroll, reach=args.reach, score=args.score)
     if args.json:
         _print_json(record)
     before, after = record["before"], record["after"]

@@ -53,6 +53,10 @@ class UsageError(SplashdraftError):
     exit_code = 64
 
 
+class TuneResumeError(UsageError):
+    """A resumed fine-tune would continue a checkpoint under other loss settings than it was trained with."""
+
+
 class DependencyError(SplashdraftError):
     """An optional dependency a command needs is not installed (the message names the install command)."""
 

@@ -212,3 +212,143 @@ def test_tune_refuses_a_negative_unroll(reference_bake, tmp_path, capsys):
     _, reference = reference_bake
     assert main(["tune", "--bakes", str(reference), "--out", str(tmp_path / "m"), "--unroll", "-1"]) == 64
     assert "--unroll -1: give a whole number of frames >= 0" in capsys.readouterr().err
+
+
+def test_tune_refuses_to_resume_a_run_under_another_unroll(reference_bake, tmp_path, capsys):
+    """A checkpoint trained with one pushforward depth is not a start for another loss: resuming it with
+    another --unroll is refused with the setting to add, and the finished run is left as it was."""
+    pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
+    from engine.errors import TuneResumeError
+
+    _, reference = reference_bake
+    out = tmp_path / "m"
+    args = ["tune", "--bakes", str(reference), "--out", str(out), "--iterations", "2", "--checkpoint-every", "1"]
+    assert main(args + ["--unroll", "2"]) == 0
+    capsys.readouterr()
+    checkpoint = (out / "run" / "checkpoint.pt").read_bytes()
+    config = (out / "run" / "config.json").read_text()
+    assert main(args[:5] + ["--iterations", "4", "--unroll", "3"]) == TuneResumeError.exit_code == 64
+    err = capsys.readouterr().err
+    assert "trained with --unroll 2, not 3" in err and "add --unroll 2 to resume it" in err
+    assert "Traceback" not in err
+    assert (out / "run" / "checkpoint.pt").read_bytes() == checkpoint
+    assert (out / "run" / "config.json").read_text() == config
+    # The same loss resumes.
+    assert main(args[:5] + ["--iterations", "3", "--unroll", "2"]) == 0
+    assert "resumed at iteration 2" in capsys.readouterr().err
+
+
+def test_reach_tangent_matches_finite_differences_of_the_features(reference_bake):
+    """The reach loss (training/reach.py) carries the gradient across a preview step through the first-order
+    change of the core's inputs with the state. Oracle: the preview's own numpy features
+    (``features.build_graph``) at a state moved by a small random step, against the same features at the
+    state itself, pair by pair (matched by particle and neighbour, since table order may change), the
+    central-difference check of a derivative (common practice; e.g. Nocedal & Wright 2006, "Numerical
+    Optimization", 2nd ed., section 8.1, from memory). Tolerance: the step is 1e-4 spacings (and
+    1e-4 sqrt(g d)); second-order terms are ~1e-8 of the features and float32 rounding ~1e-7 of values of
+    order 1, so the tangent must agree to 1 % of the largest change (it did to ~0.1 % when written).
+    """
+    torch = pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
+    import numpy as np
+
+    from engine.learned import features
+    from engine.learned.contract import default_model_path
+    from training.pushforward import preview_stepper, push
+    from training.reach import tangent_inputs
+    from training.tune import load_bakes, weights_from_onnx
+
+    _, reference = reference_bake
+    c, onnx_path = load_contract(default_model_path())
+    (shot,) = load_bakes([reference], c)
+    model = weights_from_onnx(onnx_path, c["architecture"]["latent"], c["rounds"])
+    state = push(preview_stepper(model, onnx_path), shot, 2, 4)
+    stats = {key: np.asarray(value, np.float64) for key, value in c["normalisation"].items()}
+
+    def graph_at(x, v, v_prev):
+        return features.build_graph(x, v, v_prev, shot.boundary(4), shot.units, c["radius_spacings"],
+                                    c["density_support_spacings"], c["max_neighbours"], c["max_boundary_neighbours"],
+                                    step_froude=shot.dt / shot.units.time)  # fmt: skip
+
+    def pairs(graph, edge_values, boundary_values):
+        """{(row, neighbour): normalised features} of the fluid and boundary pairs."""
+        out = {}
+        for kind, index, mask, values, rows in (
+            ("fluid", graph.neighbour_index, graph.neighbour_mask, edge_values, np.arange(len(graph.neighbour_index))),
+            ("wall", graph.boundary_index, graph.boundary_mask, boundary_values, graph.boundary_rows),
+        ):  # fmt: skip
+            for r, j in zip(*np.nonzero(mask)):
+                out[(kind, int(rows[r]), int(index[r, j]))] = values[r, j]
+        return out
+
+    x, v = state.positions, state.velocities
+    v_prev = state.particle_arrays["learned_previous_velocity"]
+    rng = np.random.default_rng(7)
+    step = 1e-4
+    moves = [rng.normal(size=x.shape) * step * scale for scale in (shot.units.spacing, shot.units.velocity,
+                                                                   shot.units.velocity)]  # fmt: skip
+    here = graph_at(x, v, v_prev)
+    inputs = features.normalise(here, c["normalisation"])
+    tangent = tangent_inputs(inputs, tuple(torch.from_numpy(m) for m in moves), shot.units, stats,
+                             c["radius_spacings"], c["density_support_spacings"])  # fmt: skip
+    ahead = features.normalise(graph_at(x + moves[0], v + moves[1], v_prev + moves[2]), c["normalisation"])
+    behind = features.normalise(graph_at(x - moves[0], v - moves[1], v_prev - moves[2]), c["normalisation"])
+    graph_ahead = graph_at(x + moves[0], v + moves[1], v_prev + moves[2])
+    graph_behind = graph_at(x - moves[0], v - moves[1], v_prev - moves[2])
+
+    node_change = (ahead["node_features"].astype(np.float64) - behind["node_features"]) / 2
+    predicted = tangent["node_features"].double().numpy() - inputs["node_features"]
+    assert np.abs(node_change).max() > 1e-5  # the move really changes the features
+    assert np.abs(predicted - node_change).max() < 0.01 * np.abs(node_change).max()
+
+    base = pairs(here, inputs["edge_features"], inputs["boundary_features"])
+    moved = pairs(here, tangent["edge_features"].double().numpy(), tangent["boundary_features"].double().numpy())
+    forward = pairs(graph_ahead, ahead["edge_features"], ahead["boundary_features"])
+    backward = pairs(graph_behind, behind["edge_features"], behind["boundary_features"])
+    common = [key for key in base if key in forward and key in backward]
+    assert len(common) > 0.99 * len(base) and any(key[0] == "wall" for key in common)
+    for kind in ("fluid", "wall"):
+        chosen = [key for key in common if key[0] == kind]
+        finite = np.array([(forward[key].astype(np.float64) - backward[key]) / 2 for key in chosen])
+        first_order = np.array([moved[key] - base[key] for key in chosen])
+        assert np.abs(finite).max() > 1e-5
+        assert np.abs(first_order - finite).max() < 0.01 * np.abs(finite).max(), kind
+
+
+def test_reach_roll_keeps_the_preview_values_and_scores_them(reference_bake, tmp_path):
+    """The reach loss rolls the preview's own steps with gradient, and the gradient must not change the
+    values: from the first frame, its score over three frames must equal the one measured on the preview's
+    own bake of the shot. Oracles: ``engine.bake`` with the learned solver (onnxruntime, not PyTorch) and
+    ``engine.measures.chamfer_distance`` for the Chamfer score; the identity-matched mean squared distance
+    written out here for the distance score. Tolerance: PyTorch against onnxruntime ~1e-6 relative per
+    step and float32 cache positions (~1e-9 m), far below the 1e-4 relative allowed.
+    """
+    pytest.importorskip("torch", reason="PyTorch is optional (requirements-train.txt); tune needs it")
+    import numpy as np
+
+    from engine.cache import open_cache
+    from engine.learned.contract import default_model_path
+    from engine.measures import chamfer_distance
+    from training.pushforward import preview_stepper
+    from training.reach import GradientCore, reach_loss
+    from training.tune import load_bakes, weights_from_onnx
+
+    scene, reference = reference_bake
+    contract, onnx_path = load_contract(default_model_path())
+    (shot,) = load_bakes([reference], contract)
+    model = weights_from_onnx(onnx_path, contract["architecture"]["latent"], contract["rounds"])
+    stepper, core = preview_stepper(model, onnx_path), GradientCore(model, contract)
+    bake(scene, "learned", tmp_path / "preview", frames=(1, 4), use_signals=False)
+    preview = open_cache(tmp_path / "preview")
+    d = shot.scene.particle_spacing
+    chamfer, squared = [], []
+    for k in (1, 2, 3):
+        frame = preview.read_frame(shot.frames[k])
+        chamfer.append(chamfer_distance(frame["positions"], shot.positions[k])[0] / d)
+        order = np.argsort(frame["ids"])
+        where = shot.lookup(k, frame["ids"][order])
+        assert (where >= 0).all()
+        squared.append((((frame["positions"][order] - shot.positions[k][where]) / d) ** 2).sum(1).mean())
+    for score, expected in (("chamfer", np.mean(chamfer)), ("distance", np.mean(squared))):
+        loss = reach_loss(stepper, core, shot, 0, 0, 3, score)
+        assert loss.requires_grad and expected > 1e-3
+        assert abs(float(loss.detach()) - expected) < 1e-4 * expected, score

@@ -1,7 +1,7 @@
 """Fine-tuning the preview on an artist's own reference bakes (``python -m engine tune``).
 
     python -m engine tune --bakes DIR [DIR ...] [--base MODEL] --out MODEL_DIR [--minutes M] [--iterations N]
-                          [--lr RATE] [--unroll M]
+                          [--lr RATE] [--unroll M] [--reach K] [--score distance|chamfer]
 
 Continues training a shipped model (default: the shipped model, ``models/preview-gn7``) on DFSPH
 bakes the artist already has (ordinary cache folders with their ``scene/``
@@ -36,7 +36,10 @@ step k -> k + 1 starts from the state the model being trained reaches in m = 1..
 steps (no gradient) from the reference frame k - m, and its target lands the preview's integrator
 on the reference's frame k + 1; the card's figure is such a free rollout, which a one-step loss
 from the reference's own state never shows the network. With M = 0 the one-step loss of
-``training.train`` (velocity-walk noise). Both use ``train.train_step``.
+``training.train`` (velocity-walk noise). Both use ``train.train_step``. With ``--reach K`` > 0 the reach
+loss of training/reach.py instead: from the same pushed start, K frames of the preview's own step
+rolled with gradient and scored on positions (``--score``); M = 0 then starts from the reference frame.
+Settings that change what the checkpoint was trained for (``LOSS_SETTINGS``) must match on resume.
 
 Normalisation statistics stay the base model's (the weights were trained
 against them). Resumable: ``checkpoint.pt`` (our own state dicts, loaded
@@ -53,7 +56,7 @@ from pathlib import Path
 import numpy as np
 
 from engine.cache import open_cache, write_atomic
-from engine.errors import ModelError, SplashdraftError, UsageError
+from engine.errors import ModelError, SplashdraftError, TuneResumeError, UsageError
 from engine.learned import contract as contract_module
 from engine.learned.contract import default_model_path
 
@@ -63,9 +66,12 @@ from . import dataset
 #: the pushforward loss (unroll 8) at lr 3e-4 lowered the held-back rollout Chamfer (0.629 -> 0.533 spacings
 #: in 210 iterations, 0.527 in 30 minutes), where the one-step loss made it worse at every rate tried
 #: (3e-4: 0.634 -> 0.964, over-fitting the few one-step samples; 3e-5: 0.634 -> 0.691). The one-step loss
-#: (--unroll 0) keeps its own default rate, ONE_STEP_LR.
+#: (--unroll 0) keeps its own default rate, ONE_STEP_LR. With the base preview-gn7 (README): in 4-minute runs
+#: the reach loss (--reach 8, Chamfer score) did best, 0.581 -> 0.509 held back and 0.582 -> 0.507 on unseen
+#: bakes (pushforward alone 0.534 / 0.531), but over 29 minutes its own training loss rose again after
+#: ~600 iterations and it ended at 0.562 / 0.560, energy 1.26; so it is not the default.
 TUNE_DEFAULTS = {"iterations": 300, "lr": 3e-4, "batch": 2, "noise": 0.02, "seed": 0, "hold_back": 0.25,
-                 "checkpoint_every": 50, "unroll": 8}  # fmt: skip
+                 "checkpoint_every": 50, "unroll": 8, "reach": 0, "score": "chamfer"}  # fmt: skip
 ONE_STEP_LR = 3e-5
 #: PyTorch threads of a tune. One: on the 2 shared cores with other jobs running (load average 4-5), a roll
 #: of 8 preview steps with gradient on a 1,210-particle bake took 15-18 s with 2 threads and 0.5 s with 1
@@ -157,8 +163,13 @@ def load_bakes(bakes, contract) -> list:
 
 
 def held_back_start(shot, hold_back) -> int:
-    """Position of the first held-back frame: the last ``hold_back`` share of the frames, at least two."""
-    return len(shot.frames) - max(2, int(round(hold_back * len(shot.frames))))
+    """Position of the first held-back frame of ``shot`` (``first_held_back``)."""
+    return first_held_back(len(shot.frames), hold_back)
+
+
+def first_held_back(frame_count, hold_back) -> int:
+    """Position of the first held-back frame of ``frame_count``: the last ``hold_back`` share, at least two."""
+    return frame_count - max(2, int(round(hold_back * frame_count)))
 
 
 def split_frames(shot, hold_back) -> tuple[list, list]:
@@ -195,7 +206,7 @@ def _evaluate(shots, held, onnx_path, out_dir, label):
 
 
 def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, checkpoint_every=None, seed=None,
-         command=None, log=print, lr=None, unroll=None) -> dict:
+         command=None, log=print, lr=None, unroll=None, reach=None, score=None) -> dict:
     """Fine-tune ``base`` on ``bakes`` into the model folder ``out``; returns the tune record dict."""
     try:
         import torch
@@ -205,6 +216,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         raise DependencyError("fine-tuning needs PyTorch, which is not installed; run "
                               "pip install -r requirements-train.txt (CPU build, about 200 MB)") from None  # fmt: skip
     from .pushforward import preview_stepper, pushforward_pool, train_on_pushforward
+    from .reach import GradientCore, train_on_reach
     from .train import _normalised_sample, _save_torch, export, train_on_pool
 
     torch.set_num_threads(TORCH_THREADS)
@@ -219,7 +231,8 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     if unroll == 0 and lr is None:
         settings["lr"] = ONE_STEP_LR
     for key, value in (("iterations", iterations), ("hold_back", hold_back), ("seed", seed),
-                       ("checkpoint_every", checkpoint_every), ("lr", lr), ("unroll", unroll)):  # fmt: skip
+                       ("checkpoint_every", checkpoint_every), ("lr", lr), ("unroll", unroll),
+                       ("reach", reach), ("score", score)):  # fmt: skip
         if value is not None:
             settings[key] = value
     if not 0.05 <= settings["hold_back"] <= 0.8:
@@ -228,6 +241,11 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         raise UsageError(f"--lr {settings['lr']}: give a learning rate above 0 and at most 0.1")
     if int(settings["unroll"]) != settings["unroll"] or settings["unroll"] < 0:
         raise UsageError(f"--unroll {settings['unroll']}: give a whole number of frames >= 0 (0: one-step loss)")
+    if int(settings["reach"]) != settings["reach"] or settings["reach"] < 0:
+        raise UsageError(f"--reach {settings['reach']}: give a whole number of frames >= 0 (0: no gradient "
+                         "through the preview's steps)")
+    if settings["score"] not in SCORE_TEXT:
+        raise UsageError(f"--score {settings['score']}: give one of {', '.join(SCORE_TEXT)}")
     if int(settings["iterations"]) < 1:
         raise UsageError(f"--iterations {settings['iterations']}: give at least 1")
     shots = load_bakes(bakes, base_contract)
@@ -235,7 +253,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     for shot in shots:
         training, held[shot.name] = split_frames(shot, settings["hold_back"])
         pool += [(shot, k, 1) for k in training]
-    if settings["unroll"]:
+    if settings["unroll"] or settings["reach"]:
         pool = pushforward_pool(shots, {s.name: held_back_start(s, settings["hold_back"]) for s in shots})
     if not pool:
         raise UsageError("--bakes: no training frames left after holding back the tail; give longer bakes")
@@ -258,6 +276,7 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         if not same:
             raise UsageError(f"--out {out}: holds a tune run of another base model or other bakes; "
                              "choose another --out, or re-run the command that started it to resume")  # fmt: skip
+        check_resumable_settings(out, previous.get("settings", {}), settings)
     write_atomic(config_path, (json.dumps(record_key, indent=1) + "\n").encode())
 
     model = weights_from_onnx(base_onnx, config["latent"], config["rounds"])
@@ -270,7 +289,9 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         raise ModelError(f"model file {base_onnx}: weights read back from the ONNX file differ from it by "
                          f"{mismatch:.3g} relative; it cannot be fine-tuned, retrain it with python -m training.train")
     optimiser = torch.optim.Adam(model.parameters(), lr=settings["lr"])
-    stepper = preview_stepper(model, base_onnx) if settings["unroll"] else None
+    stepper = preview_stepper(model, base_onnx) if settings["unroll"] or settings["reach"] else None
+    gradient_core = GradientCore(model, base_contract) if settings["reach"] else None
+    last = {s.name: held_back_start(s, settings["hold_back"]) - 1 for s in shots}
     iteration, seconds_before, history = 0, 0.0, []
     if checkpoint_path.exists():
         payload = torch.load(checkpoint_path, weights_only=True)
@@ -299,7 +320,10 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
         if minutes is not None and time.monotonic() - started > 60 * minutes:
             log(f"tune: time budget of {minutes} min reached at iteration {iteration}")
             break
-        if stepper is not None:
+        if gradient_core is not None:
+            loss = train_on_reach(model, optimiser, pool, stepper, gradient_core, rng, settings["batch"],
+                                  int(settings["unroll"]), int(settings["reach"]), last, settings["score"])  # fmt: skip
+        elif stepper is not None:
             loss, _ = train_on_pushforward(model, optimiser, pool, stepper, config, stats, rng, settings["batch"],
                                            int(settings["unroll"]))  # fmt: skip
         else:
@@ -362,6 +386,24 @@ def tune(bakes, out, base=None, minutes=None, iterations=None, hold_back=None, c
     return record
 
 
+#: Settings that change what a checkpoint's weights were trained for: a resume must keep them.
+LOSS_SETTINGS = {"unroll": "--unroll", "reach": "--reach", "score": "--score", "hold_back": "--hold-back"}
+
+
+def check_resumable_settings(out, previous, settings) -> None:
+    """UsageError when resuming the run in ``out`` would change a setting of ``LOSS_SETTINGS``.
+
+    ``previous`` is the settings record of the run's ``config.json``; a key it lacks (a run from an
+    older version) is not checked. The iteration count, time budget and learning rate may change.
+    """
+    for key, flag in LOSS_SETTINGS.items():
+        if key in previous and previous[key] != settings[key]:
+            raise TuneResumeError(
+                f"--out {out}: holds a tune run trained with {flag} {previous[key]}, not {settings[key]}; "
+                f"its checkpoint means another loss, so it cannot be continued with this one: add {flag} "
+                f"{previous[key]} to resume it, or choose another --out to start a new tune")  # fmt: skip
+
+
 def trained_ranges(base_training, shots) -> dict:
     """The input ranges a tuned model was trained on: the base model's, widened by the bakes'.
 
@@ -379,8 +421,17 @@ def trained_ranges(base_training, shots) -> dict:
     return ranges
 
 
+SCORE_TEXT = {"distance": "each particle's squared distance from itself in the reference's frames",
+              "chamfer": "the Chamfer distance from the reference's frames"}
+
+
 def loss_text(settings) -> str:
     """One sentence naming the training loss of a tune run, for the card."""
+    if settings.get("reach"):
+        return (f"reach (training/reach.py): up to {settings['reach']} frames of the preview's own steps, rolled "
+                f"with gradient from the state the model itself reached in 0..{settings['unroll']} preview steps "
+                f"from a reference frame, scored on {SCORE_TEXT[settings.get('score', 'distance')]}; "
+                f"lr {settings['lr']:g}.")  # fmt: skip
     if settings.get("unroll"):
         return (f"pushforward (training/pushforward.py): each step trained from the state the model itself "
                 f"reached in 1..{settings['unroll']} preview steps from a reference frame, target landing on the "
