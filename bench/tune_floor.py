@@ -79,8 +79,9 @@ def main(argv=None) -> int:
     result = {"rows": rows, "mean_chamfer_spacings": means, "changes": {"jitter": "fill jitter 0.001 spacing",
               "tolerance": "density and divergence tolerances halved"}}  # fmt: skip
     print(json.dumps(result))
-    (ROOT / "bench" / "results").mkdir(parents=True, exist_ok=True)
-    (ROOT / "bench" / "results" / "tune_floor.json").write_text(json.dumps(result, indent=1) + "\n")
+    from bench.bench_reference import write_json
+
+    write_json(result, ROOT / "bench" / "results" / "tune_floor.json")
     return 0
 
 

@@ -155,8 +155,9 @@ def main(argv=None):
               "unseen": [str(Path(b).resolve()) for b in args.unseen], "held_back_frames": held,
               "rows": results}  # fmt: skip
     print(json.dumps(result))
-    (ROOT / "bench" / "results").mkdir(parents=True, exist_ok=True)
-    (ROOT / "bench" / "results" / "tune_study.json").write_text(json.dumps(result, indent=1) + "\n")
+    from bench.bench_reference import write_json
+
+    write_json(result, ROOT / "bench" / "results" / "tune_study.json")
     return 0
 
 
