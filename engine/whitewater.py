@@ -72,6 +72,17 @@ def clamp_potential(values, low, high) -> np.ndarray:
     return (np.minimum(values, high) - np.minimum(values, low)) / (high - low)
 
 
+def _neighbours_within(x, support, boundary_positions) -> tuple[np.ndarray, np.ndarray]:
+    """(pairs, counts): fluid pairs closer than ``support`` ((P, 2), i < j) and each particle's fluid +
+    boundary neighbours within it, the layout ``whitewater``'s ``neighbours`` argument takes."""
+    pairs = cKDTree(x).query_pairs(support * (1 - 1e-12), output_type="ndarray")
+    count = np.bincount(pairs[:, 0], minlength=len(x)) + np.bincount(pairs[:, 1], minlength=len(x))
+    if boundary_positions is not None and len(boundary_positions):
+        boundary = cKDTree(np.asarray(boundary_positions, np.float64).reshape(-1, 3))
+        count += boundary.query_ball_point(x, support * (1 - 1e-12), return_length=True)
+    return pairs, count
+
+
 def whitewater(positions, velocities, particle_spacing, boundary_positions=None, neighbours=None) -> dict:
     """Zone and white-water potentials of each particle (see the module docstring).
 
@@ -101,19 +112,11 @@ def whitewater(positions, velocities, particle_spacing, boundary_positions=None,
                 "raw_trapped_air": np.zeros(0), "raw_wave_crest": np.zeros(0), "raw_kinetic": np.zeros(0)}
     unit = np.sqrt(STANDARD_GRAVITY * d)
     v = v / unit
-    if neighbours is None:
-        pairs = cKDTree(x).query_pairs(support * (1 - 1e-12), output_type="ndarray")
-    else:
-        pairs = np.asarray(neighbours[0]).reshape(-1, 2)
+    pairs, count = neighbours if neighbours is not None else _neighbours_within(x, support, boundary_positions)
+    pairs = np.asarray(pairs).reshape(-1, 2)
     i, j = pairs[:, 0], pairs[:, 1]
     fluid_count = np.bincount(i, minlength=n) + np.bincount(j, minlength=n)
-    if neighbours is not None:
-        count = np.asarray(neighbours[1])
-    else:
-        count = fluid_count.copy()
-        if boundary_positions is not None and len(boundary_positions):
-            boundary = cKDTree(np.asarray(boundary_positions, np.float64).reshape(-1, 3))
-            count += boundary.query_ball_point(x, support * (1 - 1e-12), return_length=True)
+    count = np.asarray(count)
     zone = np.full(n, ZONE_SURFACE, np.int8)
     zone[count >= INTERIOR_NEIGHBOURS] = ZONE_INTERIOR
     zone[fluid_count < SPRAY_NEIGHBOURS] = ZONE_SPRAY
