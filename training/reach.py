@@ -82,8 +82,7 @@ def tangent_inputs(inputs, deviation, units, stats, radius, support) -> dict:
     import torch
 
     def raw(name, prefix) -> np.ndarray:
-        values = inputs[name].astype(np.float64) * stats[f"{prefix}_std"] + stats[f"{prefix}_mean"]
-        return values
+        return inputs[name].astype(np.float64) * stats[f"{prefix}_std"] + stats[f"{prefix}_mean"]
 
     rotation = torch.from_numpy(units.rotation.T.copy())
     dx, dv, dv_prev = deviation
