@@ -28,6 +28,7 @@ from engine.compare import count_penetrating
 from engine.measures import chamfer_distance, sph_density
 from engine.errors import ModelError
 from engine.learned import LearnedSolver, default_model_path, features
+from engine.learned import relax as relax_module
 from engine.learned.contract import load_contract
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -447,7 +448,7 @@ def test_relaxation_leaves_a_lattice_at_rest_unchanged():
     np.testing.assert_array_equal(relaxed(x, 4), x)
 
 
-def test_relaxation_matches_a_per_particle_loop():
+def test_relaxation_matches_a_per_particle_loop(monkeypatch):
     """One Jacobi iteration against a slow per-particle loop written from the equations in
     the section header (brute-force neighbours by cdist, fluid + boundary, float64). Tolerance
     1e-5 d: relax does its pair arithmetic in float32 (relative rounding ~1e-7 on offsets of a
@@ -485,6 +486,9 @@ def test_relaxation_matches_a_per_particle_loop():
     assert (lam < 0).any()  # some constraints are active, or the check would be empty
     one_thread = relaxed(x, 1, wall)
     np.testing.assert_allclose(one_thread, expected, atol=1e-5)
+    # Row blocks in threads give the same bits (blocks of a few rows here, so that there are three).
+    monkeypatch.setattr(relax_module, "MIN_BLOCK_ROWS", 1)
+    assert len(relax_module._row_blocks(n, 3)) == 3
     np.testing.assert_array_equal(relaxed(x, 1, wall, threads=3), one_thread)
     np.testing.assert_array_equal(relaxed(x, 3, wall, threads=3), relaxed(x, 3, wall))
 
