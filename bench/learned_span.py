@@ -38,14 +38,14 @@ from engine.world import build_world
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def hermite(p0, v0, p1, v1, h, s):
+def hermite(p0, v0, p1, v1, h, s) -> np.ndarray:
     """Cubic Hermite position at fraction ``s`` of a step of ``h`` s between (p0, v0) and (p1, v1)."""
     h00, h10 = 2 * s**3 - 3 * s**2 + 1, s**3 - 2 * s**2 + s
     h01, h11 = -2 * s**3 + 3 * s**2, s**3 - s**2
     return h00 * p0 + h10 * h * v0 + h01 * p1 + h11 * h * v1
 
 
-def spanned_frames(scene, world, solver, span, last):
+def spanned_frames(scene, world, solver, span, last) -> tuple[dict, float]:
     """{frame: (positions, velocities)} from ``scene.frame_start`` to ``last``, one learned step per
     ``span`` frames, and the seconds the steps took."""
     state = solver.start(world)
@@ -94,7 +94,7 @@ def measure(name, scene_path, reference_dir, span, seconds, model=None) -> dict:
             "kinetic_energy_ratio_summed": energy_learned / energy_reference, "learned_step_seconds": wall}
 
 
-def shots(eval_dir, heldout):
+def shots(eval_dir, heldout) -> dict:
     """{name: (scene path, reference cache)} of every shot with a reference under the two folders."""
     found = {}
     manifest = heldout / "data_manifest.json"
@@ -109,7 +109,7 @@ def shots(eval_dir, heldout):
     return found
 
 
-def main(argv=None):
+def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--eval-dir", default=str(ROOT / "bench" / "results" / "eval"),
                         help="bench.eval_learned's --out, with the splash shots' and demo's reference bakes.")
