@@ -122,9 +122,12 @@ def main(argv=None) -> int:
     eval_dir = Path(args.eval_dir)
     found = shots(eval_dir, Path(args.heldout))
     names = [n for n in found if args.shots is None or any(word in n for word in args.shots)]
-    if not names or any(span < 1 for span in args.spans):
-        print("error: no shot with a reference bake found (run bench.eval_learned first), or a span below 1",
-              file=sys.stderr)
+    if any(span < 1 for span in args.spans):
+        print(f"error: --spans {' '.join(map(str, args.spans))}: each span must be 1 or more frames", file=sys.stderr)
+        return 64
+    if not names:
+        print(f"error: no shot with a reference bake under --eval-dir {eval_dir} or --heldout {args.heldout}; "
+              "run bench.eval_learned first and give its --out as --eval-dir", file=sys.stderr)
         return 64
     rows = []
     print(f"{'shot':<16} {'span':>4} {'step':>5} {'chamfer':>8} {'max':>6} {'KE':>6} {'wall s':>7}")
